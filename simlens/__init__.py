@@ -1,0 +1,33 @@
+"""simlens: synthetic multi-band survey cutouts of galaxy-scale strong gravitational lenses.
+
+The pipeline, one module a stage::
+
+    recipe.py      TOML recipe -> validated, frozen settings (Recipe)
+    population.py  Recipe + system_id -> System (the truth, plain numbers)
+    mass/          deflectors (SIS, SIE, PointMass, ExternalShear, ConvergenceSheet)
+    light.py       surface brightness (Sersic, sums of components)
+    raytrace.py    System -> Scene per band (ray map once, lensed source + lens light)
+    observe.py     Scene -> ObservedBand (GalSim PSF, pixel, sky, CCD noise)
+    render.py      System -> RenderedSystem (all bands + measured truth)
+    output/        FITS cutouts with WCS, truth catalogue, manifest
+    pipeline.py    a whole run into a folder
+
+Five lines::
+
+    import simlens
+    recipe = simlens.load_recipe("recipes/demo.toml")
+    system = simlens.PopulationSampler(recipe).draw(0)
+    rendered = simlens.render_system(system, recipe.survey, recipe.reference_band)
+    image = rendered.band("r").image
+"""
+
+__version__ = "0.1.0"
+
+from .errors import RecipeError, SimlensError
+from .pipeline import run
+from .population import PopulationSampler, System
+from .recipe import Recipe, load_recipe, parse_recipe
+from .render import RenderedSystem, render_system
+
+__all__ = ["__version__", "SimlensError", "RecipeError", "Recipe", "load_recipe", "parse_recipe",
+           "PopulationSampler", "System", "render_system", "RenderedSystem", "run"]

@@ -1,0 +1,105 @@
+"""Command line: a thin shell over the Python API.
+
+    simlens make RECIPE [--out DIR] [--n N] [--seed S] [--overwrite]
+    simlens check RECIPE
+
+User errors print one line (``simlens: error: ...``) and exit with status 2; no traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .errors import SimlensError
+from .recipe import load_recipe
+
+__all__ = ["main"]
+
+
+def _make(args) -> int:
+    from tqdm import tqdm
+
+    from .pipeline import default_output_folder, run
+
+    recipe = load_recipe(args.recipe).with_overrides(count=args.n, seed=args.seed)
+    out = Path(args.out) if args.out else default_output_folder(recipe)
+
+    def progress(ids):
+        return tqdm(ids, total=recipe.count, desc=f"simlens {recipe.name}", unit="system",
+                    disable=args.quiet, file=sys.stderr)
+
+    summary = run(recipe, out, overwrite=args.overwrite, progress=progress)
+    print(summary.describe())
+    return 0
+
+
+def _check(args) -> int:
+    from .population import PopulationSampler
+
+    recipe = load_recipe(args.recipe).with_overrides(count=args.n, seed=args.seed)
+    survey = recipe.survey
+    print(f"{recipe.origin}: valid recipe '{recipe.name}'")
+    print(f"  survey {survey.name!r}: bands {', '.join(survey.band_names)} (reference {recipe.reference_band}); "
+          f"{survey.cutout_size}x{survey.cutout_size} pixels of {survey.pixel_scale:g} arcsec; "
+          f"supersampling {survey.supersampling}")
+    cells = recipe.grid_shape
+    grid_text = " x ".join(str(n) for n in cells) if cells else "none"
+    print(f"  {recipe.count} systems, seed {recipe.seed}; grid cells: {grid_text}")
+    if cells and recipe.count < int(np.prod(cells)):
+        print(f"  note: count {recipe.count} is smaller than the {int(np.prod(cells))} grid cells; some cells get no system")
+    print("  parameters:")
+    for path, param in recipe.parameters():
+        print(f"    {path:<42} {param.describe()}")
+    sampler = PopulationSampler(recipe)
+    n = min(recipe.count, args.sample)
+    systems = [sampler.draw(i) for i in range(n)]
+    theta = np.array([s.einstein_radius for s in systems])
+    mags = np.array([s.source_magnitude(recipe.reference_band) for s in systems])
+    print(f"  drawn truth of the first {n} systems (no images): Einstein radius "
+          f"{theta.min():.2f} / {np.median(theta):.2f} / {theta.max():.2f} arcsec (min / median / max); "
+          f"source {recipe.reference_band} magnitude {mags.min():.1f} / {np.median(mags):.1f} / {mags.max():.1f}")
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="simlens", description="Synthetic survey cutouts of strong gravitational lenses.")
+    parser.add_argument("--version", action="version", version=f"simlens {__version__}")
+    verbs = parser.add_subparsers(dest="verb", required=True, metavar="{make,check}")
+
+    make = verbs.add_parser("make", help="render the systems of a recipe into a run folder")
+    make.add_argument("recipe", help="recipe file (TOML)")
+    make.add_argument("--out", help="run folder (default: outputs/<recipe name>)")
+    make.add_argument("--n", type=int, help="number of systems (overrides the recipe's count)")
+    make.add_argument("--seed", type=int, help="random seed (overrides the recipe's seed)")
+    make.add_argument("--overwrite", action="store_true", help="replace an existing run folder")
+    make.add_argument("--quiet", action="store_true", help="no progress bar")
+    make.set_defaults(func=_make)
+
+    check = verbs.add_parser("check", help="validate a recipe and summarise what would be drawn")
+    check.add_argument("recipe", help="recipe file (TOML)")
+    check.add_argument("--n", type=int, help="number of systems (overrides the recipe's count)")
+    check.add_argument("--seed", type=int, help="random seed (overrides the recipe's seed)")
+    check.add_argument("--sample", type=int, default=1000, help="systems to draw for the summary (default 1000)")
+    check.set_defaults(func=_check)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        return args.func(args)
+    except SimlensError as exc:
+        print(f"simlens: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("simlens: interrupted; nothing was written under the final run folder", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,166 @@
+"""Ray shooting: the lensed, noiseless scene of one system, per band, before the PSF.
+
+Pixel convention (documented once here, tested in tests/test_output.py): a cutout of ``N x N``
+pixels of side ``s`` arcsec has its centre at 0-based pixel index ``((N - 1) / 2, (N - 1) / 2)``, i.e.
+at the 1-based FITS reference pixel ``CRPIX = (N + 1) / 2``.  Pixel ``(row, col)`` is centred at
+``x = (col - (N - 1) / 2) s`` and ``y = (row - (N - 1) / 2) s`` arcsec; arrays are indexed
+``[row, col] = [y, x]``.  For even ``N`` the lens centre lies on a pixel corner.
+
+The scene is computed on a *padded, supersampled* grid: ``padding`` extra pixels on every side (so
+that the PSF can spread light from outside the cutout into it) and ``supersampling^2`` rays per
+pixel.  The deflection is achromatic, so the ray map is computed once per system and reused for all
+bands.  Each fine pixel gets ``surface_brightness(beta) * fine_pixel_area`` (the midpoint rule),
+which conserves surface brightness (lensing changes the solid angle, not the surface brightness).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .light import LightProfile, PointSource, split_points
+from .mass import MassModel
+
+__all__ = ["PixelGrid", "RayMap", "Scene", "trace_rays", "render_scene"]
+
+
+@dataclass(frozen=True)
+class PixelGrid:
+    """A square cutout, its padding and supersampling.
+
+    Parameters
+    ----------
+    size : pixels per side of the cutout.
+    pixel_scale : arcsec per pixel.
+    supersampling : rays per pixel side (>= 1).
+    padding : pixels added on every side for the PSF's reach (>= 0).
+    """
+
+    size: int
+    pixel_scale: float
+    supersampling: int = 4
+    padding: int = 0
+
+    def __post_init__(self):
+        if self.size < 1 or self.supersampling < 1 or self.padding < 0 or not self.pixel_scale > 0:
+            raise ValueError(f"invalid PixelGrid {self!r}")
+
+    @property
+    def padded_size(self) -> int:
+        return self.size + 2 * self.padding
+
+    @property
+    def fine_size(self) -> int:
+        return self.padded_size * self.supersampling
+
+    @property
+    def fine_scale(self) -> float:
+        return self.pixel_scale / self.supersampling
+
+    @property
+    def fine_pixel_area(self) -> float:
+        return self.fine_scale**2
+
+    @property
+    def half_width(self) -> float:
+        """Half the side of the padded field (arcsec)."""
+        return 0.5 * self.padded_size * self.pixel_scale
+
+    def fine_axis(self) -> np.ndarray:
+        """Centres of the fine pixels along one axis (arcsec, relative to the cutout centre)."""
+        k = np.arange(self.fine_size)
+        return ((k + 0.5) / self.supersampling - 0.5 * self.padded_size) * self.pixel_scale
+
+    def pixel_axis(self) -> np.ndarray:
+        """Centres of the cutout's pixels along one axis (arcsec)."""
+        return (np.arange(self.size) - 0.5 * (self.size - 1)) * self.pixel_scale
+
+    def fine_coordinates(self) -> tuple[np.ndarray, np.ndarray]:
+        axis = self.fine_axis()
+        x, y = np.meshgrid(axis, axis)  # [row, col] = [y, x]
+        return x, y
+
+    def bin_to_pixels(self, fine: np.ndarray) -> np.ndarray:
+        """Sum ``supersampling x supersampling`` blocks: fine padded grid -> padded pixels."""
+        n, ss = self.padded_size, self.supersampling
+        return fine.reshape(n, ss, n, ss).sum(axis=(1, 3))
+
+    def crop(self, padded: np.ndarray) -> np.ndarray:
+        """The cutout from a padded pixel image."""
+        p = self.padding
+        return padded[p:p + self.size, p:p + self.size] if p else padded
+
+
+@dataclass(frozen=True)
+class RayMap:
+    """Source-plane positions of the rays through every fine pixel centre (arcsec)."""
+
+    grid: PixelGrid
+    x: np.ndarray
+    y: np.ndarray
+    beta_x: np.ndarray
+    beta_y: np.ndarray
+
+
+def trace_rays(mass: MassModel, grid: PixelGrid) -> RayMap:
+    """Shoot one ray through each fine pixel centre: ``beta = theta - alpha(theta)``."""
+    x, y = grid.fine_coordinates()
+    beta_x, beta_y = mass.ray_shoot(x, y)
+    return RayMap(grid=grid, x=x, y=y, beta_x=beta_x, beta_y=beta_y)
+
+
+@dataclass(frozen=True)
+class Scene:
+    """One band's noiseless scene on the padded fine grid, in counts per fine pixel, before the PSF."""
+
+    band: str
+    grid: PixelGrid
+    lens_light: np.ndarray
+    lensed_source: np.ndarray
+    source_flux_unlensed: float
+
+    @property
+    def lensed_source_flux(self) -> float:
+        return float(self.lensed_source.sum())
+
+    @property
+    def magnification(self) -> float:
+        """Extended-source magnification: lensed flux on the padded field over unlensed flux."""
+        if self.source_flux_unlensed <= 0:
+            return float("nan")
+        return self.lensed_source_flux / self.source_flux_unlensed
+
+
+def deposit_points(image: np.ndarray, grid: PixelGrid, points: tuple) -> None:
+    """Add point sources to a fine image by cloud-in-cell weights (flux-conserving; a point at a fine
+    pixel centre lands in that pixel alone).  Points outside the padded field are dropped."""
+    n = grid.fine_size
+    for p in points:
+        fx = p.center[0] / grid.fine_scale + 0.5 * n - 0.5
+        fy = p.center[1] / grid.fine_scale + 0.5 * n - 0.5
+        ix, iy = int(np.floor(fx)), int(np.floor(fy))
+        wx, wy = fx - ix, fy - iy
+        for dy, wy_ in ((0, 1 - wy), (1, wy)):
+            for dx, wx_ in ((0, 1 - wx), (1, wx)):
+                r, c = iy + dy, ix + dx
+                if 0 <= r < n and 0 <= c < n and wx_ * wy_ > 0:
+                    image[r, c] += p.flux * wx_ * wy_
+
+
+def render_scene(band: str, ray_map: RayMap, lens_light: LightProfile | None, source: LightProfile) -> Scene:
+    """Evaluate the source at the rays' source-plane positions and the lens light at the image-plane
+    positions, both as counts per fine pixel.  Point sources in the lens light (stars) are deposited
+    on the grid; point sources behind the lens need their images found first and are refused here."""
+    grid = ray_map.grid
+    area = grid.fine_pixel_area
+    source_extended, source_points = split_points(source)
+    if source_points:
+        raise ValueError("render_scene: point sources behind the lens are not ray-traceable; "
+                         "render their images as lens-plane PointSource objects instead")
+    lensed = source_extended.surface_brightness(ray_map.beta_x, ray_map.beta_y) * area
+    lens_extended, lens_points = split_points(lens_light)
+    lens = np.zeros_like(lensed) if lens_extended is None else lens_extended.surface_brightness(ray_map.x, ray_map.y) * area
+    deposit_points(lens, grid, lens_points)
+    return Scene(band=band, grid=grid, lens_light=lens, lensed_source=lensed,
+                 source_flux_unlensed=source.flux)

@@ -1,0 +1,576 @@
+"""Recipes: TOML files that describe a survey, a cosmology and the lens and source populations.
+
+A recipe is data.  It is read with the standard library's ``tomllib``, checked completely before any
+work starts, and turned into the frozen settings objects below -- the same objects the Python API
+takes.  Nothing in a recipe is evaluated as code.
+
+The settings classes *are* the schema: each field's metadata says what it accepts (a number or a
+distribution, its range, whether it must be an integer, text choices), and one validator walks them.
+To add a recipe key, add a field to the right class; the validator, the error messages and
+``simlens check`` pick it up.
+
+Numeric parameters (fields made with :func:`parameter`) accept::
+
+    q = 0.8                                   # a fixed value
+    q = { uniform = [0.5, 1.0] }
+    einstein_radius = { log_uniform = [0.5, 3.0] }
+    velocity_dispersion = { normal = [230, 40], within = [150, 350] }
+    sersic_index = { choice = [1, 2, 4], weights = [2, 1, 1] }
+    psf.fwhm = { grid = [0.6, 0.8, 1.0] }      # systematic values; grids combine as a product
+
+See ``recipes/demo.toml`` for a complete, commented example.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Iterator, Mapping
+
+from .errors import RecipeError
+from .sampling import Choice, Fixed, Grid, LogUniform, Parameter, TruncatedNormal, Uniform
+
+__all__ = [
+    "Recipe",
+    "SurveySettings",
+    "BandSettings",
+    "PsfSettings",
+    "CosmologySettings",
+    "FootprintSettings",
+    "LensSettings",
+    "MassSettings",
+    "ShearSettings",
+    "LensLightSettings",
+    "SourceSettings",
+    "SourcePositionSettings",
+    "ClumpSettings",
+    "load_recipe",
+    "parse_recipe",
+]
+
+_INF = math.inf
+
+
+# ------------------------------------------------------------------------------------------------
+# Field declarations
+# ------------------------------------------------------------------------------------------------
+def parameter(default: float | None = None, *, low: float = -_INF, high: float = _INF,
+              low_open: bool = False, high_open: bool = False, integer: bool = False,
+              optional: bool = False, doc: str = "", unit: str = ""):
+    """A numeric parameter that may be fixed, a distribution or a grid (see the module docstring)."""
+    meta = dict(kind="parameter", low=low, high=high, low_open=low_open, high_open=high_open,
+                integer=integer, doc=doc, unit=unit)
+    if default is not None:
+        return field(default=Fixed(default), metadata=meta)
+    if optional:
+        return field(default=None, metadata=meta)
+    return field(metadata=meta)
+
+
+def number(default: float | None = None, *, low: float = -_INF, high: float = _INF,
+           low_open: bool = False, high_open: bool = False, integer: bool = False,
+           optional: bool = False, doc: str = "", unit: str = ""):
+    """A plain number (no distribution), e.g. the pixel scale or the seed."""
+    meta = dict(kind="number", low=low, high=high, low_open=low_open, high_open=high_open,
+                integer=integer, doc=doc, unit=unit)
+    if default is not None:
+        return field(default=default, metadata=meta)
+    if optional:
+        return field(default=None, metadata=meta)
+    return field(metadata=meta)
+
+
+def text(default: str | None = None, *, choices: tuple[str, ...] = (), optional: bool = False, doc: str = ""):
+    meta = dict(kind="text", choices=choices, doc=doc)
+    if default is not None:
+        return field(default=default, metadata=meta)
+    if optional:
+        return field(default=None, metadata=meta)
+    return field(metadata=meta)
+
+
+def table(factory, *, doc: str = "", optional: bool = False):
+    """A sub-table parsed into the settings class ``factory``."""
+    meta = dict(kind="table", cls=factory, doc=doc)
+    if optional:
+        return field(default=None, metadata=meta)
+    return field(default_factory=factory, metadata=meta)
+
+
+def band_colors(*, doc: str = ""):
+    """``{ band = parameter }`` giving ``m_band - m_reference`` for every non-reference band."""
+    return field(default_factory=dict, metadata=dict(kind="band_colors", doc=doc))
+
+
+# ------------------------------------------------------------------------------------------------
+# Settings (frozen; the schema lives in the field metadata)
+# ------------------------------------------------------------------------------------------------
+@dataclass(frozen=True, kw_only=True)
+class PsfSettings:
+    profile: str = text("moffat", choices=("moffat", "kolmogorov"),
+                        doc="PSF shape: Moffat (with beta) or Kolmogorov")
+    fwhm: Parameter = parameter(low=0, low_open=True, unit="arcsec", doc="PSF full width at half maximum")
+    beta: Parameter = parameter(3.0, low=1.1, low_open=True, doc="Moffat beta (ignored for kolmogorov)")
+
+
+@dataclass(frozen=True, kw_only=True)
+class BandSettings:
+    zero_point: Parameter = parameter(low=0, low_open=True, unit="mag",
+                                      doc="AB magnitude of a source giving 1 electron per second")
+    sky_brightness: Parameter = parameter(low=0, low_open=True, unit="mag/arcsec^2",
+                                          doc="sky surface brightness (AB)")
+    exposure_time: Parameter = parameter(low=0, low_open=True, unit="s", doc="total exposure time")
+    gain: Parameter = parameter(low=0, low_open=True, unit="electron/adu", doc="detector gain")
+    read_noise: Parameter = parameter(0.0, low=0, unit="electron", doc="read noise per pixel (all exposures)")
+    psf: PsfSettings = table(PsfSettings, doc="point-spread function")
+    name: str = ""  # filled from the table key
+
+
+@dataclass(frozen=True, kw_only=True)
+class SurveySettings:
+    name: str = text("unnamed survey", doc="survey name, copied to outputs")
+    pixel_scale: float = number(low=0, low_open=True, unit="arcsec/pixel", doc="pixel scale")
+    cutout_size: int = number(64, low=8, high=4096, integer=True, unit="pixel", doc="cutout side")
+    supersampling: int = number(4, low=1, high=32, integer=True,
+                                doc="rays per pixel side for the lensed scene")
+    reference_band: str = text(optional=True, doc="band in which magnitudes are given (default: first)")
+    bands: tuple = field(default=(), metadata=dict(kind="bands", doc="one table per band"))
+
+    def band(self, name: str) -> BandSettings:
+        for b in self.bands:
+            if b.name == name:
+                return b
+        raise KeyError(name)
+
+    @property
+    def band_names(self) -> tuple[str, ...]:
+        return tuple(b.name for b in self.bands)
+
+
+@dataclass(frozen=True, kw_only=True)
+class CosmologySettings:
+    name: str = text(optional=True, doc="an astropy realisation, e.g. Planck18")
+    H0: float = number(optional=True, low=0, low_open=True, unit="km/s/Mpc", doc="Hubble constant")
+    Om0: float = number(optional=True, low=0, high=2, doc="matter density today")
+    Ode0: float = number(optional=True, low=-1, high=3, doc="dark-energy density (omit for flat)")
+    Tcmb0: float = number(0.0, low=0, unit="K", doc="CMB temperature")
+
+    def build(self):
+        from .cosmology import flat_or_curved_cosmology, named_cosmology
+
+        if self.name is not None:
+            return named_cosmology(self.name)
+        return flat_or_curved_cosmology(self.H0, self.Om0, self.Ode0, self.Tcmb0)
+
+
+@dataclass(frozen=True, kw_only=True)
+class FootprintSettings:
+    # Default: an invented field, "Corvus Deep Patch" (illustrative, not a real survey field).
+    ra: float = number(182.5, low=0, high=360, unit="deg", doc="centre right ascension")
+    dec: float = number(-21.0, low=-90, high=90, unit="deg", doc="centre declination")
+    radius: float = number(1.0, low=0, low_open=True, high=180, unit="deg", doc="footprint radius")
+
+
+@dataclass(frozen=True, kw_only=True)
+class MassSettings:
+    q: Parameter = parameter(0.8, low=0, low_open=True, high=1, doc="mass axis ratio (SIE)")
+    angle: Parameter = parameter(0.0, unit="deg", doc="major-axis angle, CCW from +x")
+
+
+@dataclass(frozen=True, kw_only=True)
+class ShearSettings:
+    gamma: Parameter = parameter(0.0, low=0, high=0.5, doc="external shear strength")
+    angle: Parameter = parameter(0.0, unit="deg", doc="shear angle, CCW from +x")
+
+
+@dataclass(frozen=True, kw_only=True)
+class LensLightSettings:
+    magnitude: Parameter = parameter(low=0, high=40, unit="mag", doc="AB magnitude in the reference band")
+    colors: dict = band_colors(doc="m_band - m_reference for each other band")
+    half_light_radius: Parameter = parameter(low=0, low_open=True, unit="arcsec", doc="circularised R_e")
+    sersic_index: Parameter = parameter(4.0, low=0.3, high=8.0, doc="Sersic n")
+    q: Parameter = parameter(0.8, low=0, low_open=True, high=1, doc="light axis ratio")
+    angle: Parameter = parameter(0.0, unit="deg", doc="light major-axis angle, CCW from +x")
+
+
+@dataclass(frozen=True, kw_only=True)
+class LensSettings:
+    redshift: Parameter = parameter(low=0, low_open=True, doc="lens redshift")
+    velocity_dispersion: Parameter = parameter(low=0, low_open=True, high=2000, unit="km/s",
+                                               doc="stellar velocity dispersion (sets the Einstein radius)")
+    mass: MassSettings = table(MassSettings, doc="SIE mass")
+    shear: ShearSettings = table(ShearSettings, doc="external shear")
+    light: LensLightSettings = table(LensLightSettings, doc="lens light (Sersic)")
+
+
+@dataclass(frozen=True, kw_only=True)
+class SourcePositionSettings:
+    radius_in_einstein_radii: Parameter = parameter(
+        optional=True, low=0, doc="uniform in area inside this many Einstein radii of the lens centre")
+    x: Parameter = parameter(optional=True, unit="arcsec", doc="source-plane x offset from the lens centre")
+    y: Parameter = parameter(optional=True, unit="arcsec", doc="source-plane y offset from the lens centre")
+
+
+@dataclass(frozen=True, kw_only=True)
+class ClumpSettings:
+    count: Parameter = parameter(0, low=0, high=50, integer=True, doc="number of star-forming clumps")
+    flux_fraction: Parameter = parameter(0.2, low=0, high=1, high_open=True,
+                                         doc="fraction of the source flux in all clumps together")
+    half_light_radius: Parameter = parameter(0.08, low=0, low_open=True, unit="arcsec",
+                                             doc="clump half-light radius (Gaussian clumps)")
+    spread: Parameter = parameter(1.0, low=0, low_open=True,
+                                  doc="clump offsets: Gaussian sigma in units of the source R_e")
+    colors: dict = band_colors(doc="clump colours, m_band - m_reference (default: the source's)")
+
+
+@dataclass(frozen=True, kw_only=True)
+class SourceSettings:
+    redshift: Parameter = parameter(low=0, low_open=True, doc="source redshift")
+    magnitude: Parameter = parameter(low=0, high=40, unit="mag", doc="unlensed AB magnitude, reference band")
+    colors: dict = band_colors(doc="m_band - m_reference for each other band")
+    half_light_radius: Parameter = parameter(low=0, low_open=True, unit="arcsec", doc="circularised R_e")
+    sersic_index: Parameter = parameter(1.0, low=0.3, high=8.0, doc="Sersic n")
+    q: Parameter = parameter(0.7, low=0, low_open=True, high=1, doc="axis ratio")
+    angle: Parameter = parameter(0.0, unit="deg", doc="major-axis angle, CCW from +x")
+    position: SourcePositionSettings = table(SourcePositionSettings, doc="where the source lies")
+    clumps: ClumpSettings = table(ClumpSettings, doc="compact star-forming knots")
+
+
+@dataclass(frozen=True, kw_only=True)
+class Recipe:
+    """A validated recipe.  Build with :func:`load_recipe` / :func:`parse_recipe`, or directly."""
+
+    survey: SurveySettings = table(SurveySettings, doc="the survey")
+    lens: LensSettings = table(LensSettings, doc="the lens population")
+    source: SourceSettings = table(SourceSettings, doc="the source population")
+    cosmology: CosmologySettings = table(CosmologySettings, doc="cosmology")
+    footprint: FootprintSettings = table(FootprintSettings, doc="sky area for RA/Dec")
+    name: str = text("simlens-run", doc="run name (default: the recipe file's stem)")
+    count: int = number(100, low=1, high=10_000_000, integer=True, doc="number of systems")
+    seed: int = number(0, low=0, high=2**63 - 1, integer=True, doc="random seed of the run")
+    source_text: str = ""  # the recipe file's text, kept for the manifest
+    origin: str = "<recipe>"  # where it came from
+
+    # -- convenience ----------------------------------------------------------------------------
+    def with_overrides(self, *, count: int | None = None, seed: int | None = None) -> "Recipe":
+        changes = {}
+        if count is not None:
+            _check_number(self.origin, "count", count, Recipe.__dataclass_fields__["count"].metadata)
+            changes["count"] = int(count)
+        if seed is not None:
+            _check_number(self.origin, "seed", seed, Recipe.__dataclass_fields__["seed"].metadata)
+            changes["seed"] = int(seed)
+        return dataclasses.replace(self, **changes)
+
+    @property
+    def reference_band(self) -> str:
+        return self.survey.reference_band or self.survey.bands[0].name
+
+    def parameters(self) -> Iterator[tuple[str, Parameter]]:
+        """Every numeric parameter as ``(key_path, Parameter)``, in a fixed schema order."""
+        yield from _walk_parameters(self, "")
+
+    def grid_parameters(self) -> list[tuple[str, Grid]]:
+        return [(path, p) for path, p in self.parameters() if isinstance(p, Grid)]
+
+    @property
+    def grid_shape(self) -> tuple[int, ...]:
+        return tuple(len(p.values) for _, p in self.grid_parameters())
+
+
+def _walk_parameters(obj, prefix: str) -> Iterator[tuple[str, Parameter]]:
+    for f in dataclasses.fields(obj):
+        kind = f.metadata.get("kind")
+        value = getattr(obj, f.name)
+        path = f"{prefix}{f.name}"
+        if kind == "parameter" and value is not None:
+            yield path, value
+        elif kind == "table" and value is not None:
+            yield from _walk_parameters(value, path + ".")
+        elif kind == "bands":
+            for band in value:
+                yield from _walk_parameters(band, f"{path}.{band.name}.")
+        elif kind == "band_colors":
+            for band_name in sorted(value):
+                yield f"{path}.{band_name}", value[band_name]
+
+
+# ------------------------------------------------------------------------------------------------
+# Parsing and validation
+# ------------------------------------------------------------------------------------------------
+def load_recipe(path: str | Path) -> Recipe:
+    """Read and validate a recipe file; raises :class:`~simlens.errors.RecipeError`."""
+    path = Path(path)
+    try:
+        raw = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise RecipeError(str(path), "", "file not found") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise RecipeError(str(path), "", f"cannot be read: {exc}") from None
+    return parse_recipe(raw, origin=str(path), default_name=path.stem)
+
+
+def parse_recipe(raw: str, origin: str = "<recipe>", default_name: str = "simlens-run") -> Recipe:
+    """Validate recipe text (TOML) into a :class:`Recipe`."""
+    try:
+        data = tomllib.loads(raw)
+    except tomllib.TOMLDecodeError as exc:
+        raise RecipeError(origin, "", f"is not valid TOML: {exc}") from None
+    data = dict(data)
+    data.setdefault("name", default_name)
+    recipe = _build(Recipe, data, origin, "")
+    recipe = dataclasses.replace(recipe, source_text=raw, origin=origin)
+    _check_consistency(recipe)
+    return recipe
+
+
+_INTERNAL_FIELDS = {"source_text", "origin"}
+
+
+def _build(cls, data: Any, origin: str, prefix: str):
+    where = prefix.rstrip(".") or "(top level)"
+    if not isinstance(data, Mapping):
+        raise RecipeError(origin, where, f"must be a table, got {_show(data)}", "a TOML table [ ... ]")
+    fields = {f.name: f for f in dataclasses.fields(cls)
+              if f.name not in _INTERNAL_FIELDS and not (cls is BandSettings and f.name == "name")}
+    for key in data:
+        if key not in fields:
+            hint = difflib.get_close_matches(key, list(fields), n=1, cutoff=0.5)
+            accepted = f"did you mean '{hint[0]}'?" if hint else "one of " + ", ".join(sorted(fields))
+            raise RecipeError(origin, f"{prefix}{key}", "unknown key", accepted)
+    values = {}
+    for name, f in fields.items():
+        path = f"{prefix}{name}"
+        kind = f.metadata.get("kind")
+        if name not in data:
+            if f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING:
+                if kind == "bands":
+                    raise RecipeError(origin, path, "is missing", "at least one [survey.bands.NAME] table")
+                raise RecipeError(origin, path, "is missing", f.metadata.get("doc", ""))
+            continue
+        value = data[name]
+        if kind == "parameter":
+            values[name] = _parse_parameter(origin, path, value, f.metadata)
+        elif kind == "number":
+            values[name] = _check_number(origin, path, value, f.metadata)
+        elif kind == "text":
+            values[name] = _check_text(origin, path, value, f.metadata)
+        elif kind == "table":
+            values[name] = _build(f.metadata["cls"], value, origin, path + ".")
+        elif kind == "bands":
+            values[name] = _parse_bands(origin, path, value)
+        elif kind == "band_colors":
+            values[name] = _parse_colors(origin, path, value)
+        else:  # pragma: no cover - schema bug
+            raise AssertionError(f"field {cls.__name__}.{name} has no kind")
+    return cls(**values)
+
+
+def _parse_bands(origin: str, path: str, value: Any) -> tuple:
+    if not isinstance(value, Mapping) or not value:
+        raise RecipeError(origin, path, f"must hold one table per band, got {_show(value)}",
+                          "[survey.bands.g], [survey.bands.r], ...")
+    bands = []
+    for band_name, band_data in value.items():
+        if not band_name.replace("_", "").replace("-", "").isalnum():
+            raise RecipeError(origin, f"{path}.{band_name}", "band names must be letters, digits, '_' or '-'")
+        band = _build(BandSettings, band_data, origin, f"{path}.{band_name}.")
+        bands.append(dataclasses.replace(band, name=band_name))
+    return tuple(bands)
+
+
+def _parse_colors(origin: str, path: str, value: Any) -> dict:
+    if not isinstance(value, Mapping):
+        raise RecipeError(origin, path, f"must be a table of band = colour, got {_show(value)}",
+                          "e.g. colors = { g = 0.8, i = -0.3 }")
+    return {band: _parse_parameter(origin, f"{path}.{band}", v, dict(kind="parameter", low=-20, high=20))
+            for band, v in value.items()}
+
+
+_FORMS = ("a number, { uniform = [low, high] }, { log_uniform = [low, high] }, "
+          "{ normal = [mean, sigma], within = [low, high] }, { choice = [...], weights = [...] } "
+          "or { grid = [...] }")
+
+
+def _is_number(v: Any) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool)
+
+
+def _parse_parameter(origin: str, path: str, value: Any, meta: Mapping) -> Parameter:
+    integer = meta.get("integer", False)
+    if _is_number(value):
+        param: Parameter = Fixed(value)
+    elif isinstance(value, Mapping):
+        forms = {"uniform", "log_uniform", "normal", "choice", "grid"}
+        chosen = [k for k in value if k in forms]
+        extras = {k for k in value if k not in forms}
+        if len(chosen) != 1:
+            raise RecipeError(origin, path, f"needs exactly one distribution, got {_show(value)}", _FORMS)
+        form = chosen[0]
+        allowed_extras = {"normal": {"within"}, "choice": {"weights"}}.get(form, set())
+        if extras - allowed_extras:
+            bad = sorted(extras - allowed_extras)[0]
+            hint = sorted(allowed_extras)
+            raise RecipeError(origin, f"{path}.{bad}", f"unknown key for a {form} distribution",
+                              f"{hint[0]}" if hint else "no other key")
+        args = value[form]
+        try:
+            param = _make_distribution(form, args, value)
+        except (TypeError, ValueError) as exc:
+            raise RecipeError(origin, path, f"{exc}", _FORMS) from None
+        if integer and form in ("uniform", "log_uniform", "normal"):
+            raise RecipeError(origin, path, f"must be an integer, so a {form} distribution does not fit",
+                              "an integer, { choice = [...] } or { grid = [...] }")
+    else:
+        raise RecipeError(origin, path, f"must be a number or a distribution, got {_show(value)}", _FORMS)
+    if integer:
+        values = [param.value] if isinstance(param, Fixed) else list(param.values)
+        if not all(float(v).is_integer() for v in values):
+            raise RecipeError(origin, path, f"must be an integer, got {_show(value)}", "whole numbers")
+    _check_support(origin, path, param, meta)
+    return param
+
+
+def _number_list(args: Any, form: str, size: int | None = None) -> tuple[float, ...]:
+    if not isinstance(args, list) or not all(_is_number(a) for a in args):
+        raise ValueError(f"{form} needs a list of numbers, got {_show(args)}")
+    if size is not None and len(args) != size:
+        raise ValueError(f"{form} needs {size} numbers, got {len(args)}")
+    return tuple(args)
+
+
+def _make_distribution(form: str, args: Any, table_: Mapping) -> Parameter:
+    if form == "uniform":
+        low, high = _number_list(args, "uniform", 2)
+        return Uniform(low, high)
+    if form == "log_uniform":
+        low, high = _number_list(args, "log_uniform", 2)
+        return LogUniform(low, high)
+    if form == "normal":
+        mean, sigma = _number_list(args, "normal", 2)
+        low, high = _number_list(table_.get("within", [-_INF, _INF]), "within", 2)
+        return TruncatedNormal(mean, sigma, low, high)
+    if form == "choice":
+        values = _number_list(args, "choice")
+        weights = table_.get("weights")
+        return Choice(values, None if weights is None else _number_list(weights, "weights"))
+    values = _number_list(args, "grid")
+    return Grid(values)
+
+
+def _range_text(meta: Mapping) -> str:
+    lo, hi = meta["low"], meta["high"]
+    left = "(" if meta.get("low_open") or lo == -_INF else "["
+    right = ")" if meta.get("high_open") or hi == _INF else "]"
+    return f"{left}{lo:g}, {hi:g}{right}"
+
+
+def _inside(v: float, meta: Mapping) -> bool:
+    lo, hi = meta["low"], meta["high"]
+    above = v > lo if meta.get("low_open") else v >= lo
+    below = v < hi if meta.get("high_open") else v <= hi
+    return above and below and not math.isnan(v)
+
+
+def _check_support(origin: str, path: str, param: Parameter, meta: Mapping) -> None:
+    lo, hi = param.support
+    for v in (lo, hi):
+        if not _inside(v, meta):
+            what = f"{param.describe()} can give {v:g}" if not isinstance(param, Fixed) else f"{v:g}"
+            unit = f" {meta['unit']}" if meta.get("unit") else ""
+            raise RecipeError(origin, path, f"out of range: {what}",
+                              f"values in {_range_text(meta)}{unit}" + (
+                                  "; bound a normal with within = [low, high]"
+                                  if isinstance(param, TruncatedNormal) else ""))
+
+
+def _check_number(origin: str, path: str, value: Any, meta: Mapping):
+    if not _is_number(value):
+        raise RecipeError(origin, path, f"must be a number, got {_show(value)}",
+                          f"a number in {_range_text(meta)}")
+    if meta.get("integer") and not float(value).is_integer():
+        raise RecipeError(origin, path, f"must be a whole number, got {value!r}", "an integer")
+    if not _inside(float(value), meta):
+        raise RecipeError(origin, path, f"out of range: {value!r}", f"values in {_range_text(meta)}")
+    return int(value) if meta.get("integer") else float(value)
+
+
+def _check_text(origin: str, path: str, value: Any, meta: Mapping) -> str:
+    choices = meta.get("choices", ())
+    if not isinstance(value, str):
+        raise RecipeError(origin, path, f"must be text, got {_show(value)}",
+                          " or ".join(repr(c) for c in choices) if choices else "a quoted string")
+    if choices and value not in choices:
+        hint = difflib.get_close_matches(value, choices, n=1, cutoff=0.5)
+        raise RecipeError(origin, path, f"unknown value {value!r}" + (f"; did you mean {hint[0]!r}?" if hint else ""),
+                          ", ".join(repr(c) for c in choices))
+    return value
+
+
+def _check_consistency(recipe: Recipe) -> None:
+    """Checks that involve several keys."""
+    origin = recipe.origin
+    survey = recipe.survey
+    names = survey.band_names
+    if not names:
+        raise RecipeError(origin, "survey.bands", "is missing", "at least one [survey.bands.NAME] table")
+    if survey.reference_band is not None and survey.reference_band not in names:
+        raise RecipeError(origin, "survey.reference_band", f"{survey.reference_band!r} is not a band",
+                          ", ".join(repr(n) for n in names))
+    ref = recipe.reference_band
+    others = [n for n in names if n != ref]
+    for path, colors, required in (("lens.light.colors", recipe.lens.light.colors, True),
+                                   ("source.colors", recipe.source.colors, True),
+                                   ("source.clumps.colors", recipe.source.clumps.colors, False)):
+        for band in colors:
+            if band not in others:
+                why = "is the reference band (its colour is 0 by definition)" if band == ref else "is not a band"
+                raise RecipeError(origin, f"{path}.{band}", why,
+                                  "the bands " + ", ".join(repr(n) for n in others) if others else "no colours")
+        if required or colors:
+            missing = [n for n in others if n not in colors]
+            if missing:
+                raise RecipeError(origin, path, f"has no colour for band {missing[0]!r}",
+                                  f"m_band - m_{ref} for each of " + ", ".join(repr(n) for n in others))
+    z_l_max = recipe.lens.redshift.support[1]
+    z_s_min = recipe.source.redshift.support[0]
+    if z_s_min <= z_l_max:
+        raise RecipeError(origin, "source.redshift",
+                          f"can be {z_s_min:g}, not behind lenses at redshift up to {z_l_max:g} (lens.redshift)",
+                          "source redshifts all above the largest lens redshift")
+    pos = recipe.source.position
+    if pos.radius_in_einstein_radii is not None and (pos.x is not None or pos.y is not None):
+        raise RecipeError(origin, "source.position", "gives both radius_in_einstein_radii and x/y",
+                          "either radius_in_einstein_radii, or x and y")
+    if (pos.x is None) != (pos.y is None):
+        raise RecipeError(origin, "source.position", "gives only one of x and y", "both x and y")
+    cosmo = recipe.cosmology
+    if cosmo.name is not None:
+        from .cosmology import available_names
+
+        if any(v is not None for v in (cosmo.H0, cosmo.Om0, cosmo.Ode0)):
+            raise RecipeError(origin, "cosmology", "gives both a name and parameters",
+                              "either name = 'Planck18' or H0, Om0 (and optionally Ode0)")
+        if cosmo.name not in available_names():
+            hint = difflib.get_close_matches(cosmo.name, available_names(), n=1, cutoff=0.4)
+            raise RecipeError(origin, "cosmology.name", f"unknown cosmology {cosmo.name!r}"
+                              + (f"; did you mean {hint[0]!r}?" if hint else ""),
+                              ", ".join(available_names()))
+    elif cosmo.H0 is None or cosmo.Om0 is None:
+        raise RecipeError(origin, "cosmology", "needs a name or both H0 and Om0",
+                          "name = 'Planck18', or H0 = 70, Om0 = 0.3")
+
+
+def _show(value: Any) -> str:
+    text_ = repr(value)
+    return text_ if len(text_) <= 60 else text_[:57] + "..."
+
+
+def grid_cells(recipe: Recipe) -> int:
+    shape = recipe.grid_shape
+    return int(math.prod(shape)) if shape else 1
+

@@ -1,0 +1,212 @@
+"""Parameter distributions, grids and per-system random streams.
+
+Every numeric parameter of a recipe becomes one of the small frozen objects below. They draw from a
+``numpy.random.Generator`` and know their *support* (the closed range of values they can produce),
+which the recipe validator compares with the range a parameter accepts *before* any work is done.
+
+Randomness: a run has one integer seed. System ``i`` draws everything from streams derived from
+``numpy.random.SeedSequence(seed, spawn_key=(i,))``, so a system can be re-drawn alone, identically,
+whatever the order or the number of processes that draw the others.
+
+Grids: parameters given as ``{ grid = [...] }`` span a Cartesian product of cells (in the order the
+recipe schema lists the parameters). System ``i`` takes cell ``i mod n_cells``; a count of
+``k * n_cells`` gives ``k`` realisations of every cell.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Sequence, Union
+
+import numpy as np
+from scipy import stats
+
+__all__ = [
+    "Fixed",
+    "Uniform",
+    "LogUniform",
+    "TruncatedNormal",
+    "Choice",
+    "Grid",
+    "Parameter",
+    "system_streams",
+    "grid_cell",
+]
+
+
+@dataclass(frozen=True)
+class Fixed:
+    """A parameter that always takes ``value``."""
+
+    value: float
+
+    def draw(self, rng: np.random.Generator) -> float:
+        return self.value
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (self.value, self.value)
+
+    def describe(self) -> str:
+        return f"{self.value:g}"
+
+
+@dataclass(frozen=True)
+class Uniform:
+    """Uniform on ``[low, high]``."""
+
+    low: float
+    high: float
+
+    def __post_init__(self):
+        if not self.high > self.low:
+            raise ValueError(f"uniform needs low < high, got [{self.low}, {self.high}]")
+
+    def draw(self, rng: np.random.Generator) -> float:
+        return float(rng.uniform(self.low, self.high))
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (self.low, self.high)
+
+    def describe(self) -> str:
+        return f"uniform [{self.low:g}, {self.high:g}]"
+
+
+@dataclass(frozen=True)
+class LogUniform:
+    """Uniform in ``log(value)`` on ``[low, high]``, with ``0 < low < high``."""
+
+    low: float
+    high: float
+
+    def __post_init__(self):
+        if not (self.low > 0 and self.high > self.low):
+            raise ValueError(f"log_uniform needs 0 < low < high, got [{self.low}, {self.high}]")
+
+    def draw(self, rng: np.random.Generator) -> float:
+        return float(math.exp(rng.uniform(math.log(self.low), math.log(self.high))))
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (self.low, self.high)
+
+    def describe(self) -> str:
+        return f"log-uniform [{self.low:g}, {self.high:g}]"
+
+
+@dataclass(frozen=True)
+class TruncatedNormal:
+    """A normal distribution (``mean``, ``sigma``) truncated to ``[low, high]``.
+
+    ``low``/``high`` may be infinite; the support is then unbounded on that side.
+    Drawn by inverting the truncated CDF (scipy.stats.truncnorm), one uniform per draw.
+    """
+
+    mean: float
+    sigma: float
+    low: float = -math.inf
+    high: float = math.inf
+
+    def __post_init__(self):
+        if not self.sigma > 0:
+            raise ValueError(f"normal needs sigma > 0, got {self.sigma}")
+        if not self.high > self.low:
+            raise ValueError(f"normal needs a range with low < high, got [{self.low}, {self.high}]")
+        a, b = (self.low - self.mean) / self.sigma, (self.high - self.mean) / self.sigma
+        if stats.norm.cdf(b) - stats.norm.cdf(a) < 1e-12:
+            raise ValueError(
+                f"normal({self.mean}, {self.sigma}) has no probability in [{self.low}, {self.high}]"
+            )
+
+    def draw(self, rng: np.random.Generator) -> float:
+        a, b = (self.low - self.mean) / self.sigma, (self.high - self.mean) / self.sigma
+        u = rng.uniform()
+        return float(stats.truncnorm.ppf(u, a, b, loc=self.mean, scale=self.sigma))
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (self.low, self.high)
+
+    def describe(self) -> str:
+        return f"normal({self.mean:g}, {self.sigma:g}) within [{self.low:g}, {self.high:g}]"
+
+
+@dataclass(frozen=True)
+class Choice:
+    """One of ``values``, with optional ``weights`` (normalised here)."""
+
+    values: tuple[float, ...]
+    weights: tuple[float, ...] | None = None
+
+    def __post_init__(self):
+        if len(self.values) == 0:
+            raise ValueError("choice needs at least one value")
+        if self.weights is not None:
+            if len(self.weights) != len(self.values):
+                raise ValueError(
+                    f"choice has {len(self.values)} values but {len(self.weights)} weights"
+                )
+            if any(w < 0 for w in self.weights) or sum(self.weights) <= 0:
+                raise ValueError("choice weights must be >= 0 with a positive sum")
+
+    def draw(self, rng: np.random.Generator) -> float:
+        p = None
+        if self.weights is not None:
+            w = np.asarray(self.weights, dtype=float)
+            p = w / w.sum()
+        return self.values[int(rng.choice(len(self.values), p=p))]
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (min(self.values), max(self.values))
+
+    def describe(self) -> str:
+        return "choice of " + ", ".join(f"{v:g}" for v in self.values)
+
+
+@dataclass(frozen=True)
+class Grid:
+    """Systematic values: the system's grid cell picks one (see the module docstring)."""
+
+    values: tuple[float, ...]
+
+    def __post_init__(self):
+        if len(self.values) == 0:
+            raise ValueError("grid needs at least one value")
+
+    def draw(self, rng: np.random.Generator) -> float:  # pragma: no cover - guarded
+        raise TypeError("grid parameters take their value from the system's grid cell")
+
+    def at(self, index: int) -> float:
+        return self.values[index]
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (min(self.values), max(self.values))
+
+    def describe(self) -> str:
+        return "grid of " + ", ".join(f"{v:g}" for v in self.values)
+
+
+Parameter = Union[Fixed, Uniform, LogUniform, TruncatedNormal, Choice, Grid]
+
+
+def system_streams(seed: int, system_id: int, names: Sequence[str]) -> dict[str, np.random.Generator]:
+    """Independent generators for one system, one per named purpose.
+
+    The streams depend only on ``(seed, system_id)`` and the position of each name in ``names``,
+    never on which process draws the system or in which order.
+    """
+    root = np.random.SeedSequence(entropy=int(seed), spawn_key=(int(system_id),))
+    children = root.spawn(len(names))
+    return {name: np.random.Generator(np.random.PCG64(child)) for name, child in zip(names, children)}
+
+
+def grid_cell(system_id: int, grid_sizes: Sequence[int]) -> tuple[int, ...]:
+    """Indices into each grid parameter for ``system_id`` (cell ``system_id mod n_cells``)."""
+    if not grid_sizes:
+        return ()
+    n_cells = int(np.prod(grid_sizes))
+    return tuple(int(i) for i in np.unravel_index(system_id % n_cells, tuple(grid_sizes)))

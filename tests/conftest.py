@@ -1,0 +1,79 @@
+"""Shared fixtures: a small, fast recipe (two bands, 32x32 cutouts)."""
+
+from __future__ import annotations
+
+import textwrap
+
+import pytest
+
+from simlens.recipe import parse_recipe
+
+SMALL_RECIPE = textwrap.dedent("""
+    name = "small"
+    count = 6
+    seed = 42
+
+    [survey]
+    name = "Test survey (illustrative)"
+    pixel_scale = 0.2
+    cutout_size = 32
+    supersampling = 4
+    reference_band = "r"
+
+    [survey.bands.g]
+    zero_point = 26.6
+    sky_brightness = 22.0
+    exposure_time = 900.0
+    gain = 4.0
+    read_noise = 7.0
+    psf = { profile = "moffat", beta = 3.0, fwhm = 0.9 }
+
+    [survey.bands.r]
+    zero_point = 26.8
+    sky_brightness = 21.2
+    exposure_time = 900.0
+    gain = 4.0
+    read_noise = 7.0
+    psf = { profile = "kolmogorov", fwhm = { uniform = [0.7, 0.9] } }
+
+    [cosmology]
+    name = "Planck18"
+
+    [lens]
+    redshift = { uniform = [0.3, 0.6] }
+    velocity_dispersion = { normal = [250.0, 30.0], within = [180.0, 320.0] }
+
+    [lens.mass]
+    q = { uniform = [0.6, 1.0] }
+    angle = { uniform = [0.0, 180.0] }
+
+    [lens.shear]
+    gamma = { uniform = [0.0, 0.05] }
+    angle = { uniform = [0.0, 180.0] }
+
+    [lens.light]
+    magnitude = { uniform = [19.0, 20.0] }
+    colors = { g = 1.4 }
+    half_light_radius = { log_uniform = [0.6, 1.2] }
+    q = 0.8
+    angle = 20.0
+
+    [source]
+    redshift = { uniform = [1.5, 2.5] }
+    magnitude = { uniform = [22.0, 23.0] }
+    colors = { g = 0.3 }
+    half_light_radius = 0.25
+
+    [source.clumps]
+    count = { choice = [0, 2] }
+""")
+
+
+@pytest.fixture
+def small_recipe_text() -> str:
+    return SMALL_RECIPE
+
+
+@pytest.fixture
+def small_recipe():
+    return parse_recipe(SMALL_RECIPE, origin="small.toml", default_name="small")

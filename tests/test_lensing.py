@@ -1,0 +1,77 @@
+"""Point-source images and extended-source magnification against textbook results."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from simlens.lens_equation import find_images
+from simlens.light import Sersic
+from simlens.mass import SIE, SIS, ExternalShear
+from simlens.raytrace import PixelGrid, render_scene, trace_rays
+
+WINDOWS = [(4.0, 0.05), (2.0, 0.01)]
+
+
+@pytest.mark.parametrize("beta", [0.05, 0.3, 0.7])
+def test_sis_images_and_total_magnification(beta):
+    # SIS, beta < theta_E: two images at beta + theta_E and beta - theta_E on the source's axis, with
+    # total magnification 2 theta_E / beta (Schneider, Ehlers & Falco 1992, sect. 8.1.4).
+    theta_e = 1.2
+    images = find_images(SIS(einstein_radius=theta_e), beta, 0.0, WINDOWS)
+    assert len(images) == 2
+    order = np.argsort(images.x)
+    np.testing.assert_allclose(images.x[order], [beta - theta_e, beta + theta_e], atol=1e-7)
+    np.testing.assert_allclose(images.y, 0.0, atol=1e-7)
+    assert np.sum(np.abs(images.magnification)) == pytest.approx(2 * theta_e / beta, rel=1e-5)
+    # The inner image is a saddle point (negative parity).
+    assert images.magnification[order][0] < 0 < images.magnification[order][1]
+
+
+def test_sis_source_outside_einstein_radius_has_one_image():
+    images = find_images(SIS(einstein_radius=1.0), 1.3, 0.0, WINDOWS)
+    assert len(images) == 1
+    assert images.x[0] == pytest.approx(2.3, abs=1e-7)
+
+
+def test_sie_quad_and_double():
+    # An SIE produces four images for a source inside the inner (astroid) caustic and two outside it
+    # (Kormann, Schneider & Bartelmann 1994).  For q = 0.6 the astroid's cusps on the minor axis of the
+    # source plane lie near 0.2 theta_E (computed, not quoted); 0.02 is well inside and 0.6 outside.
+    lens = SIE(einstein_radius=1.0, q=0.6, angle=0.0)
+    quad = find_images(lens, 0.02, 0.01, WINDOWS)
+    double = find_images(lens, 0.6, 0.0, WINDOWS)
+    assert len(quad) == 4
+    assert len(double) == 2
+    for images, (sx, sy) in ((quad, (0.02, 0.01)), (double, (0.6, 0.0))):
+        bx, by = lens.ray_shoot(images.x, images.y)
+        np.testing.assert_allclose(bx, sx, atol=1e-6)
+        np.testing.assert_allclose(by, sy, atol=1e-6)
+
+
+def _lensed_and_unlensed_flux(lens, source, grid):
+    scene = render_scene("x", trace_rays(lens, grid), None, source)
+    return scene.lensed_source_flux, source.flux
+
+
+@pytest.mark.parametrize("lens, source_position", [
+    (SIS(einstein_radius=1.0), (0.3, 0.0)),
+    (SIE(einstein_radius=1.0, q=0.7, angle=25.0) + ExternalShear(gamma=0.04, angle=70.0), (0.25, -0.35)),
+])
+def test_surface_brightness_conservation_gives_point_magnification(lens, source_position):
+    # Lensing conserves surface brightness, so a source small compared with the scale on which the
+    # magnification varies has lensed/unlensed flux = sum |mu_i| of the point-source images
+    # (SEF 1992, sect. 5.2).  Within 1 %.
+    source = Sersic(flux=1.0, half_light_radius=0.01, sersic_index=0.5, center=source_position)
+    grid = PixelGrid(size=200, pixel_scale=0.02, supersampling=4)
+    lensed, unlensed = _lensed_and_unlensed_flux(lens, source, grid)
+    images = find_images(lens, *source_position, WINDOWS)
+    assert lensed / unlensed == pytest.approx(np.sum(np.abs(images.magnification)), rel=0.01)
+
+
+def test_unlensed_flux_is_recovered_without_a_lens():
+    # Control: a negligible deflector leaves the source's flux unchanged (the grid integrates it).
+    source = Sersic(flux=5.0, half_light_radius=0.3, sersic_index=1.0, center=(0.2, 0.1))
+    grid = PixelGrid(size=64, pixel_scale=0.1, supersampling=4)
+    lensed, unlensed = _lensed_and_unlensed_flux(SIS(einstein_radius=1e-8), source, grid)
+    assert lensed == pytest.approx(unlensed, rel=1e-3)

@@ -1,0 +1,101 @@
+"""Whole runs: determinism, re-rendering one system, the run folder's safety, the CLI."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from astropy.io import fits
+from astropy.table import Table
+
+import simlens
+from simlens.cli import main
+from simlens.errors import SimlensError
+
+
+def image_data(folder):
+    out = {}
+    for path in sorted((folder / "cutouts").glob("*.fits")):
+        with fits.open(path) as hdul:
+            out[path.name] = [np.array(h.data) for h in hdul[1:]]
+    return out
+
+
+def test_same_recipe_and_seed_give_identical_image_data(small_recipe, tmp_path):
+    simlens.run(small_recipe, tmp_path / "a")
+    simlens.run(small_recipe, tmp_path / "b")
+    a, b = image_data(tmp_path / "a"), image_data(tmp_path / "b")
+    assert a.keys() == b.keys() and len(a) == 6
+    for name in a:
+        for x, y in zip(a[name], b[name]):
+            np.testing.assert_array_equal(x, y)
+    ta, tb = Table.read(tmp_path / "a" / "truth.fits"), Table.read(tmp_path / "b" / "truth.fits")
+    for col in ta.colnames:
+        assert np.array_equal(ta[col], tb[col]), col
+    # A different seed changes the data.
+    simlens.run(small_recipe.with_overrides(seed=43), tmp_path / "c")
+    c = image_data(tmp_path / "c")
+    assert not np.array_equal(a["system_000000.fits"][0], c["system_000000.fits"][0])
+
+
+def test_one_system_re_rendered_alone_is_identical(small_recipe, tmp_path):
+    simlens.run(small_recipe, tmp_path / "run")
+    system = simlens.PopulationSampler(small_recipe).draw(3)
+    rendered = simlens.render_system(system, small_recipe.survey, small_recipe.reference_band)
+    with fits.open(tmp_path / "run" / "cutouts" / "system_000003.fits") as hdul:
+        np.testing.assert_array_equal(hdul["r"].data, rendered.band("r").image.astype(np.float32))
+        np.testing.assert_array_equal(hdul["g_SOURCE"].data, rendered.band("g").lensed_source.astype(np.float32))
+
+
+def test_existing_run_is_not_overwritten_without_permission(small_recipe, tmp_path):
+    small = small_recipe.with_overrides(count=1)
+    simlens.run(small, tmp_path / "run")
+    with pytest.raises(SimlensError, match="--overwrite"):
+        simlens.run(small, tmp_path / "run")
+    simlens.run(small.with_overrides(count=2), tmp_path / "run", overwrite=True)
+    assert len(list((tmp_path / "run" / "cutouts").iterdir())) == 2
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["run"]  # no partial or old folders left
+
+
+def test_failed_run_leaves_no_run_folder(small_recipe, tmp_path, monkeypatch):
+    import simlens.pipeline as pipeline
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("disk on fire")
+
+    monkeypatch.setattr(pipeline, "write_truth", broken)
+    with pytest.raises(RuntimeError):
+        simlens.run(small_recipe.with_overrides(count=1), tmp_path / "run")
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_unwritable_output_folder_is_a_clear_error(small_recipe, tmp_path, capsys):
+    blocker = tmp_path / "file"
+    blocker.write_text("not a folder")
+    with pytest.raises(SimlensError, match="cannot create"):
+        simlens.run(small_recipe.with_overrides(count=1), blocker / "run")
+
+
+def test_cli_make_and_check(tmp_path, capsys, small_recipe_text):
+    recipe = tmp_path / "small.toml"
+    recipe.write_text(small_recipe_text)
+    assert main(["check", str(recipe)]) == 0
+    out = capsys.readouterr().out
+    assert "valid recipe 'small'" in out and "lens.mass.q" in out and "Einstein radius" in out
+    assert not (tmp_path / "outputs").exists()
+    assert main(["make", str(recipe), "--out", str(tmp_path / "run"), "--n", "2", "--seed", "9", "--quiet"]) == 0
+    out = capsys.readouterr().out
+    assert "wrote 2 systems" in out
+    assert len(Table.read(tmp_path / "run" / "truth.ecsv")) == 2
+    assert main(["make", str(recipe), "--out", str(tmp_path / "run"), "--quiet"]) == 2
+    assert "--overwrite" in capsys.readouterr().err
+
+
+def test_python_dash_m_entry_point(tmp_path, small_recipe_text):
+    import subprocess
+    import sys
+
+    recipe = tmp_path / "small.toml"
+    recipe.write_text(small_recipe_text.replace('q = { uniform = [0.6, 1.0] }', 'q = 1.5'))
+    result = subprocess.run([sys.executable, "-m", "simlens", "check", str(recipe)], capture_output=True, text=True)
+    assert result.returncode == 2
+    assert "lens.mass.q" in result.stderr and "Traceback" not in result.stderr
