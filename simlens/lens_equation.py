@@ -102,6 +102,8 @@ def find_images(mass: MassModel, source_x: float, source_y: float,
         step_y = np.where(safe, (-a12 * fx + a11 * fy) / det, 0.0)
         x = x - step_x
         y = y - step_y
+        if np.all(np.hypot(step_x, step_y) < 1e-3 * SOLUTION_TOLERANCE):
+            break
     bx, by = mass.ray_shoot(x, y)
     residual = np.hypot(bx - source_x, by - source_y)
     ok = (residual < SOLUTION_TOLERANCE) & (np.abs(x - center[0]) <= limit) & (np.abs(y - center[1]) <= limit)

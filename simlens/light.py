@@ -106,20 +106,25 @@ class Sersic(LightProfile):
         norm = 2.0 * math.pi * n * self.half_light_radius**2 * math.exp(b) * b ** (-2.0 * n) * math.gamma(2.0 * n)
         return self.flux / norm
 
-    def elliptical_radius(self, x, y) -> np.ndarray:
+    def elliptical_radius_squared(self, x, y) -> np.ndarray:
+        """``R^2 = q x'^2 + y'^2 / q`` (arcsec^2) in the frame of the major axis."""
         c, s = math.cos(math.radians(self.angle)), math.sin(math.radians(self.angle))
         dx = np.asarray(x, dtype=float) - self.center[0]
         dy = np.asarray(y, dtype=float) - self.center[1]
         xp = c * dx + s * dy
-        yp = -s * dx + c * dy
-        return np.sqrt(self.q * xp * xp + yp * yp / self.q)
+        yp = c * dy - s * dx
+        return self.q * (xp * xp) + (yp * yp) / self.q
+
+    def elliptical_radius(self, x, y) -> np.ndarray:
+        return np.sqrt(self.elliptical_radius_squared(x, y))
 
     def surface_brightness(self, x, y) -> np.ndarray:
         if self.flux == 0.0:
             return np.zeros(np.broadcast(np.asarray(x), np.asarray(y)).shape)
-        r = self.elliptical_radius(x, y)
         n, b = self.sersic_index, self.b_n
-        return self.intensity_at_half_light_radius * np.exp(-b * ((r / self.half_light_radius) ** (1.0 / n) - 1.0))
+        # (R / R_e)^(1/n) computed from R^2 without a square root.
+        scaled = (self.elliptical_radius_squared(x, y) / self.half_light_radius**2) ** (0.5 / n)
+        return self.intensity_at_half_light_radius * np.exp(-b * (scaled - 1.0))
 
     def with_flux(self, flux: float) -> "Sersic":
         return replace(self, flux=flux)

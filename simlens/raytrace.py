@@ -22,7 +22,7 @@ import numpy as np
 from .light import LightProfile, PointSource, split_points
 from .mass import MassModel
 
-__all__ = ["PixelGrid", "RayMap", "Scene", "trace_rays", "render_scene"]
+__all__ = ["PixelGrid", "RayMap", "Scene", "ComponentImages", "trace_rays", "render_scene"]
 
 
 @dataclass(frozen=True)
@@ -148,19 +148,49 @@ def deposit_points(image: np.ndarray, grid: PixelGrid, points: tuple) -> None:
                     image[r, c] += p.flux * wx_ * wy_
 
 
-def render_scene(band: str, ray_map: RayMap, lens_light: LightProfile | None, source: LightProfile) -> Scene:
+class ComponentImages:
+    """Unit-flux images of light components on one ray map, computed once and reused.
+
+    Shapes are achromatic (bands differ only in each component's flux), so a system's bands share
+    every evaluation of a profile: the cache key is the component with its flux set to 1."""
+
+    def __init__(self, ray_map: RayMap):
+        self.ray_map = ray_map
+        self._cache: dict = {}
+
+    def render(self, profile: LightProfile | None, lensed: bool) -> np.ndarray:
+        """Counts per fine pixel of ``profile`` (source plane if ``lensed``, else image plane)."""
+        total = np.zeros((self.ray_map.grid.fine_size,) * 2)
+        if profile is None:
+            return total
+        parts = profile.components if hasattr(profile, "components") else (profile,)
+        for part in parts:
+            if part.flux == 0 or isinstance(part, PointSource):
+                continue
+            key = (part.with_flux(1.0), lensed)
+            unit = self._cache.get(key)
+            if unit is None:
+                rm = self.ray_map
+                x, y = (rm.beta_x, rm.beta_y) if lensed else (rm.x, rm.y)
+                unit = key[0].surface_brightness(x, y) * rm.grid.fine_pixel_area
+                self._cache[key] = unit
+            total += part.flux * unit
+        return total
+
+
+def render_scene(band: str, ray_map: RayMap, lens_light: LightProfile | None, source: LightProfile,
+                 components: ComponentImages | None = None) -> Scene:
     """Evaluate the source at the rays' source-plane positions and the lens light at the image-plane
     positions, both as counts per fine pixel.  Point sources in the lens light (stars) are deposited
-    on the grid; point sources behind the lens need their images found first and are refused here."""
+    on the grid; point sources behind the lens need their images found first and are refused here.
+    Pass one ``components`` cache for all bands of a system to evaluate each shape once."""
     grid = ray_map.grid
-    area = grid.fine_pixel_area
-    source_extended, source_points = split_points(source)
-    if source_points:
+    components = components if components is not None and components.ray_map is ray_map else ComponentImages(ray_map)
+    if split_points(source)[1]:
         raise ValueError("render_scene: point sources behind the lens are not ray-traceable; "
                          "render their images as lens-plane PointSource objects instead")
-    lensed = source_extended.surface_brightness(ray_map.beta_x, ray_map.beta_y) * area
-    lens_extended, lens_points = split_points(lens_light)
-    lens = np.zeros_like(lensed) if lens_extended is None else lens_extended.surface_brightness(ray_map.x, ray_map.y) * area
-    deposit_points(lens, grid, lens_points)
+    lensed = components.render(source, lensed=True)
+    lens = components.render(lens_light, lensed=False)
+    deposit_points(lens, grid, split_points(lens_light)[1])
     return Scene(band=band, grid=grid, lens_light=lens, lensed_source=lensed,
                  source_flux_unlensed=source.flux)

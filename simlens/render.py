@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 from .lens_equation import ImageSet, find_images
 from .observe import ObservedBand, observe_scene, padding_for
 from .population import System
-from .raytrace import PixelGrid, render_scene, trace_rays
+from .raytrace import ComponentImages, PixelGrid, render_scene, trace_rays
 from .recipe import SurveySettings
 
 __all__ = ["RenderedSystem", "render_system", "pixel_grid_for"]
@@ -60,11 +60,12 @@ def render_system(system: System, survey: SurveySettings, reference_band: str) -
     timings["ray_tracing"] = t1 - t0
 
     observed, magnification = [], math.nan
+    components = ComponentImages(rays)  # shapes are achromatic: evaluate each once for all bands
     t_scene = t_observe = 0.0
     for conditions, seed in zip(system.bands, system.noise_seeds):
         ta = time.perf_counter()
         scene = render_scene(conditions.name, rays, system.lens_light(conditions.name),
-                             system.source_light(conditions.name))
+                             system.source_light(conditions.name), components)
         tb = time.perf_counter()
         observed.append(observe_scene(scene, conditions, seed))
         tc = time.perf_counter()

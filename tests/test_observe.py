@@ -101,3 +101,20 @@ def test_arc_snr_matches_its_definition():
            + conditions.read_noise**2) / conditions.gain**2
     assert observed.arc_snr == pytest.approx(math.sqrt(np.sum(observed.lensed_source**2 / var)))
     assert observed.arc_snr > 10
+
+
+def test_circular_convolution_equals_linear_convolution_inside_the_cutout():
+    # scipy.signal.fftconvolve (linear, zero-padded) is the reference; the circular FFT used by the
+    # GalSim stage must agree on every pixel of the cutout, i.e. inside the padding.
+    from scipy.signal import fftconvolve
+
+    from simlens.observe import _FFTConvolver, psf_kernel
+
+    conditions = band(psf_fwhm=0.9)
+    grid = PixelGrid(size=24, pixel_scale=0.2, supersampling=3, padding=padding_for(0.9, 0.2))
+    kernel = psf_kernel(conditions, grid)
+    image = np.random.default_rng(2).uniform(size=(grid.fine_size, grid.fine_size))
+    ours = _FFTConvolver(image.shape, kernel, exact_margin=grid.padding * grid.supersampling)(image)
+    reference = fftconvolve(image, kernel, mode="same")
+    m = grid.padding * grid.supersampling
+    np.testing.assert_allclose(ours[m:-m, m:-m], reference[m:-m, m:-m], rtol=1e-10, atol=1e-12)
