@@ -148,11 +148,37 @@ def deposit_points(image: np.ndarray, grid: PixelGrid, points: tuple) -> None:
                     image[r, c] += p.flux * wx_ * wy_
 
 
+# Image-plane (unlensed) components are re-integrated around their centres, where cuspy profiles
+# (Sersic n ~ 4 holds ~10 % of its light inside 0.1 R_e) defeat the midpoint rule: the fine pixels
+# within CENTRE_REFINE_HALF_WIDTH of the centre get CENTRE_REFINE_FACTOR^2 sub-samples each.
+CENTRE_REFINE_HALF_WIDTH = 4
+CENTRE_REFINE_FACTOR = 8
+
+
+def refine_centre(unit: np.ndarray, profile: LightProfile, grid: PixelGrid) -> None:
+    """Replace the fine pixels around ``profile.center`` by sub-sampled averages (in place)."""
+    n, h, m = grid.fine_size, CENTRE_REFINE_HALF_WIDTH, CENTRE_REFINE_FACTOR
+    cx = int(round(profile.center[0] / grid.fine_scale + 0.5 * n - 0.5))
+    cy = int(round(profile.center[1] / grid.fine_scale + 0.5 * n - 0.5))
+    r0, r1 = max(cy - h, 0), min(cy + h + 1, n)
+    c0, c1 = max(cx - h, 0), min(cx + h + 1, n)
+    if r0 >= r1 or c0 >= c1:
+        return
+    axis = grid.fine_axis()
+    offsets = ((np.arange(m) + 0.5) / m - 0.5) * grid.fine_scale
+    ys = (axis[r0:r1, None] + offsets[None, :]).ravel()
+    xs = (axis[c0:c1, None] + offsets[None, :]).ravel()
+    gx, gy = np.meshgrid(xs, ys)
+    sb = profile.surface_brightness(gx, gy).reshape(r1 - r0, m, c1 - c0, m).mean(axis=(1, 3))
+    unit[r0:r1, c0:c1] = sb * grid.fine_pixel_area
+
+
 class ComponentImages:
     """Unit-flux images of light components on one ray map, computed once and reused.
 
     Shapes are achromatic (bands differ only in each component's flux), so a system's bands share
-    every evaluation of a profile: the cache key is the component with its flux set to 1."""
+    every evaluation of a profile: the cache key is the component with its flux set to 1.
+    Unlensed components are refined around their centres (:func:`refine_centre`)."""
 
     def __init__(self, ray_map: RayMap):
         self.ray_map = ray_map
@@ -173,6 +199,8 @@ class ComponentImages:
                 rm = self.ray_map
                 x, y = (rm.beta_x, rm.beta_y) if lensed else (rm.x, rm.y)
                 unit = key[0].surface_brightness(x, y) * rm.grid.fine_pixel_area
+                if not lensed and hasattr(part, "center"):
+                    refine_centre(unit, key[0], rm.grid)
                 self._cache[key] = unit
             total += part.flux * unit
         return total
