@@ -9,8 +9,12 @@ The pipeline, one module a stage::
     raytrace.py    System -> Scene per band (ray map once, lensed source + lens light)
     observe.py     Scene -> ObservedBand (GalSim PSF, pixel, sky, CCD noise)
     render.py      System -> RenderedSystem (all bands + measured truth)
-    output/        FITS cutouts with WCS, truth catalogue, manifest
+    shard.py       a block of systems rendered and written as one unit of work
+    engines.py     where shards run: this process, worker processes, Dask
+    run_folder.py  manifest, resume, verify
+    output/        shard files, per-system FITS cutouts with WCS, truth catalogue
     pipeline.py    a whole run into a folder
+    loader.py      (images, truth) batches from a run, for training
 
 Five lines::
 
@@ -28,6 +32,8 @@ from .pipeline import run
 from .population import PopulationSampler, System
 from .recipe import Recipe, load_recipe, parse_recipe
 from .render import RenderedSystem, render_system
+from .loader import iter_batches
+from .run_folder import verify_run
 
 __all__ = ["__version__", "SimlensError", "RecipeError", "Recipe", "load_recipe", "parse_recipe",
-           "PopulationSampler", "System", "render_system", "RenderedSystem", "run"]
+           "PopulationSampler", "System", "render_system", "RenderedSystem", "run", "iter_batches", "verify_run"]

@@ -1,7 +1,9 @@
 """Command line: a thin shell over the Python API.
 
     simlens make RECIPE [--out DIR] [--n N] [--seed S] [--overwrite]
+                        [--workers N] [--engine auto|serial|processes|dask] [--scheduler ADDRESS]
     simlens check RECIPE
+    simlens verify RUN_DIR
 
 User errors print one line (``simlens: error: ...``) and exit with status 2; no traceback.
 """
@@ -29,13 +31,31 @@ def _make(args) -> int:
     recipe = load_recipe(args.recipe).with_overrides(count=args.n, seed=args.seed)
     out = Path(args.out) if args.out else default_output_folder(recipe)
 
-    def progress(ids):
-        return tqdm(ids, total=recipe.count, desc=f"simlens {recipe.name}", unit="system",
+    def progress(total, initial):
+        return tqdm(total=total, initial=initial, desc=f"simlens {recipe.name}", unit="system",
                     disable=args.quiet, file=sys.stderr)
 
-    summary = run(recipe, out, overwrite=args.overwrite, progress=progress)
+    n_shards = -(-recipe.count // recipe.output.shard_size)
+    if args.workers > n_shards and not args.quiet:
+        print(f"simlens: note: {n_shards} shard(s) for {args.workers} workers; lower output.shard_size "
+              f"to use them all", file=sys.stderr)
+    try:
+        summary = run(recipe, out, overwrite=args.overwrite, workers=args.workers, engine=args.engine,
+                      scheduler=args.scheduler, progress=progress)
+    except KeyboardInterrupt:
+        print(f"simlens: interrupted; finished shards are kept in {out}: run the same command again to finish",
+              file=sys.stderr)
+        return 130
     print(summary.describe())
     return 0
+
+
+def _verify(args) -> int:
+    from .run_folder import verify_run
+
+    report = verify_run(Path(args.run_dir))
+    print(report.describe())
+    return 0 if report.ok else 1
 
 
 def _check(args) -> int:
@@ -69,7 +89,7 @@ def _check(args) -> int:
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="simlens", description="Synthetic survey cutouts of strong gravitational lenses.")
     parser.add_argument("--version", action="version", version=f"simlens {__version__}")
-    verbs = parser.add_subparsers(dest="verb", required=True, metavar="{make,check}")
+    verbs = parser.add_subparsers(dest="verb", required=True, metavar="{make,check,verify}")
 
     make = verbs.add_parser("make", help="render the systems of a recipe into a run folder")
     make.add_argument("recipe", help="recipe file (TOML)")
@@ -77,6 +97,10 @@ def build_parser() -> argparse.ArgumentParser:
     make.add_argument("--n", type=int, help="number of systems (overrides the recipe's count)")
     make.add_argument("--seed", type=int, help="random seed (overrides the recipe's seed)")
     make.add_argument("--overwrite", action="store_true", help="replace an existing run folder")
+    make.add_argument("--workers", type=int, default=1, help="worker processes (default 1)")
+    make.add_argument("--engine", default="auto", choices=("auto", "serial", "processes", "dask"),
+                      help="where shards run (default: serial for 1 worker, else processes)")
+    make.add_argument("--scheduler", help="address of a running Dask scheduler (implies --engine dask)")
     make.add_argument("--quiet", action="store_true", help="no progress bar")
     make.set_defaults(func=_make)
 
@@ -86,6 +110,10 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("--seed", type=int, help="random seed (overrides the recipe's seed)")
     check.add_argument("--sample", type=int, default=1000, help="systems to draw for the summary (default 1000)")
     check.set_defaults(func=_check)
+
+    verify = verbs.add_parser("verify", help="check a run folder's files against its manifest")
+    verify.add_argument("run_dir", help="run folder")
+    verify.set_defaults(func=_verify)
     return parser
 
 
@@ -97,7 +125,7 @@ def main(argv: list[str] | None = None) -> int:
         print(f"simlens: error: {exc}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
-        print("simlens: interrupted; nothing was written under the final run folder", file=sys.stderr)
+        print("simlens: interrupted", file=sys.stderr)
         return 130
 
 

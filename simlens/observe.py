@@ -107,6 +107,11 @@ class ObservedBand:
         signal = np.clip(self.lensed_source + self.lens_light, 0.0, None)
         return ((b.sky_level + signal) * b.gain + b.read_noise**2) / b.gain**2
 
+    def source_mask(self, threshold: float) -> np.ndarray:
+        """Segmentation label: pixels where the noiseless lensed source exceeds ``threshold`` times the
+        pixel's expected noise sigma (``sqrt(variance)``)."""
+        return self.lensed_source > threshold * np.sqrt(self.variance)
+
     @property
     def arc_snr(self) -> float:
         """Matched-filter S/N of the noiseless lensed source: ``sqrt(sum S_i^2 / var_i)`` over the

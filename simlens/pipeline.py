@@ -1,25 +1,33 @@
 """A whole run: recipe -> systems -> scenes -> images -> files.
 
-The run is built in a hidden sibling folder (``.NAME.partial-PID``) and renamed into place only when
-every file is written, so a run folder that exists is always complete.  An existing run folder is
-replaced only with ``overwrite=True``.
+The run is cut into shards of consecutive systems (``output.shard_size``); an engine renders them
+(in this process, in worker processes or on Dask; see :mod:`simlens.engines`) and each finished
+shard is recorded in the manifest (see :mod:`simlens.run_folder`).  When all shards are finished the
+truth catalogue is assembled from the shards' truth rows and the manifest is marked complete.
+Interrupting a run (Ctrl-C, SIGKILL, a full disk) loses at most the shards in flight; the same call
+again finishes it, with files identical to an uninterrupted run.
 """
 
 from __future__ import annotations
 
-import os
-import shutil
+import errno
+import functools
 import time
 from dataclasses import dataclass
-from datetime import datetime, timezone
 from pathlib import Path
-from typing import Callable, Iterable
+from typing import Any, Callable
 
+import numpy as np
+from astropy.table import vstack
+
+from .engines import resolve_engine, run_tasks
 from .errors import SimlensError
-from .output import truth_row, write_cutout, write_manifest, write_truth
+from .output.truth import write_truth_table
+from .output.checksums import sha256_of
 from .population import PopulationSampler
 from .recipe import Recipe
-from .render import render_system
+from .run_folder import RunFolder
+from .shard import read_truth_rows, render_shard, shard_plan
 
 __all__ = ["RunSummary", "run", "default_output_folder"]
 
@@ -28,6 +36,7 @@ __all__ = ["RunSummary", "run", "default_output_folder"]
 class RunSummary:
     folder: Path
     count: int
+    rendered_now: int
     seconds: float
     timings: dict
     n_multiply_imaged: int
@@ -35,105 +44,73 @@ class RunSummary:
     median_arc_snr: float
 
     def describe(self) -> str:
-        per = self.seconds / max(self.count, 1)
+        per = self.seconds / max(self.rendered_now, 1)
         stages = ", ".join(f"{k} {v:.1f} s" for k, v in self.timings.items())
-        return (f"wrote {self.count} systems to {self.folder} in {self.seconds:.1f} s ({per * 1e3:.0f} ms each)\n"
+        resumed = "" if self.rendered_now == self.count else f" (resumed: {self.rendered_now} rendered now)"
+        return (f"wrote {self.count} systems to {self.folder}{resumed} in {self.seconds:.1f} s "
+                f"({per * 1e3:.0f} ms each)\n"
                 f"  multiply imaged: {self.n_multiply_imaged}/{self.count}; median Einstein radius "
                 f"{self.median_einstein_radius:.2f} arcsec; median arc S/N (reference band) {self.median_arc_snr:.1f}\n"
-                f"  time by stage: {stages}")
+                f"  process time by stage (all workers): {stages}")
 
 
 def default_output_folder(recipe: Recipe) -> Path:
     return Path("outputs") / recipe.name
 
 
-def _prepare_folder(out: Path, overwrite: bool) -> Path:
-    if out.exists() and not out.is_dir():
-        raise SimlensError(f"{out}: exists and is not a folder; choose another --out")
-    if out.exists() and any(out.iterdir()) and not overwrite:
-        raise SimlensError(f"{out}: a run folder already exists; pass --overwrite to replace it, "
-                           f"or choose another --out")
-    parent = out.parent if str(out.parent) else Path(".")
-    try:
-        parent.mkdir(parents=True, exist_ok=True)
-        partial = parent / f".{out.name}.partial-{os.getpid()}"
-        if partial.exists():
-            shutil.rmtree(partial)
-        (partial / "cutouts").mkdir(parents=True)
-    except OSError as exc:
-        raise SimlensError(f"{out}: cannot create the run folder ({exc.strerror}); choose a writable --out") from None
-    return partial
+def run(recipe: Recipe, out: Path | str | None = None, *, overwrite: bool = False, workers: int = 1,
+        engine: str = "auto", scheduler: str | None = None,
+        progress: Callable[[int, int], Any] | None = None) -> RunSummary:
+    """Render every system of ``recipe`` into the run folder ``out`` (default ``outputs/<name>``).
 
-
-def _publish(partial: Path, out: Path) -> None:
-    if out.exists():
-        old = out.parent / f".{out.name}.old-{os.getpid()}"
-        os.replace(out, old)
-        os.replace(partial, out)
-        shutil.rmtree(old, ignore_errors=True)
-    else:
-        os.replace(partial, out)
-
-
-def run(recipe: Recipe, out: Path | str | None = None, *, overwrite: bool = False,
-        progress: Callable[[Iterable], Iterable] | None = None) -> RunSummary:
-    """Render every system of ``recipe`` and write the run folder; return a summary.
-
-    ``progress`` wraps the system ids (e.g. ``tqdm.tqdm``) to show progress.
+    ``workers``/``engine``/``scheduler`` choose where shards run (:mod:`simlens.engines`).
+    ``progress(total, initial)`` may return a tqdm-like object; it gets ``update(n)`` per shard.
+    An unfinished run folder of the same recipe and seed is resumed.
     """
     out = Path(out) if out is not None else default_output_folder(recipe)
-    started = datetime.now(timezone.utc)
+    resolve_engine(engine, workers, scheduler)  # check the choice before touching the disk
     t_start = time.perf_counter()
-    sampler = PopulationSampler(recipe)
-    partial = _prepare_folder(out, overwrite)
+    folder = RunFolder.open(out, recipe, overwrite=overwrite)
+    plan = shard_plan(recipe)
+    todo = [spec for spec in plan if spec.index not in folder.finished]
+    done_systems = recipe.count - sum(spec.n_systems for spec in todo)
+    bar = progress(recipe.count, done_systems) if progress is not None else None
+    task = functools.partial(render_shard, recipe, str(out))
     try:
-        rows = []
-        timings = {"sampling": 0.0, "ray_tracing": 0.0, "scene": 0.0, "galsim_stage": 0.0,
-                   "image_finding": 0.0, "writing": 0.0}
-        ids: Iterable[int] = range(recipe.count)
-        if progress is not None:
-            ids = progress(ids)
-        digits = max(6, len(str(recipe.count - 1)))
-        for system_id in ids:
-            t0 = time.perf_counter()
-            system = sampler.draw(system_id)
-            timings["sampling"] += time.perf_counter() - t0
-            rendered = render_system(system, recipe.survey, recipe.reference_band)
-            for key, value in rendered.timings.items():
-                timings[key] += value
-            t1 = time.perf_counter()
-            relative = f"cutouts/system_{system_id:0{digits}d}.fits"
-            write_cutout(rendered, partial / relative, run_name=recipe.name)
-            rows.append(truth_row(rendered, relative))
-            timings["writing"] += time.perf_counter() - t1
-        t1 = time.perf_counter()
-        table = write_truth(rows, partial)
-        timings["writing"] += time.perf_counter() - t1
-        seconds = time.perf_counter() - t_start
-        write_manifest(partial, {
-            "simlens_run": recipe.name,
-            "recipe_file": recipe.origin,
-            "recipe_text": recipe.source_text,
-            "seed": recipe.seed,
-            "count": recipe.count,
-            "grid_cells": sampler.n_grid_cells,
-            "cosmology": repr(sampler.cosmology),
-            "bands": list(recipe.survey.band_names),
-            "reference_band": recipe.reference_band,
-            "files": {"cutouts": "cutouts/system_*.fits", "truth": ["truth.fits", "truth.ecsv"]},
-            "started_utc": started.isoformat(timespec="seconds"),
-            "finished_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
-            "seconds": round(seconds, 3),
-            "seconds_by_stage": {k: round(v, 3) for k, v in timings.items()},
-        })
-        _publish(partial, out)
-    except BaseException:
-        shutil.rmtree(partial, ignore_errors=True)
-        raise
-    import numpy as np
-
-    snr = table[f"arc_snr_{recipe.reference_band}"]
-    return RunSummary(folder=out, count=recipe.count, seconds=seconds, timings=timings,
-                      n_multiply_imaged=int((table["n_images"] >= 2).sum()),
-                      median_einstein_radius=float(np.median(table["einstein_radius"])),
+        for result in run_tasks(task, todo, engine=engine, workers=workers, scheduler=scheduler):
+            folder.record(result)
+            if bar is not None:
+                bar.update(result.spec.n_systems)
+    except OSError as exc:
+        raise _write_error(out, exc) from None
+    finally:
+        if bar is not None:
+            bar.close()
+    try:
+        truth = vstack([read_truth_rows(out, recipe, spec) for spec in plan], metadata_conflicts="silent")
+        write_truth_table(truth, out)
+    except OSError as exc:
+        raise _write_error(out, exc) from None
+    seconds = time.perf_counter() - t_start
+    sampler = PopulationSampler(recipe)
+    folder.complete({
+        "grid_cells": sampler.n_grid_cells, "cosmology": repr(sampler.cosmology),
+        "files": {"shards": "shards/shard_*.fits", "truth": ["truth.fits", "truth.ecsv"],
+                  "cutouts": "cutouts/system_*.fits" if recipe.output.per_system_files else None},
+        "truth": {name: sha256_of(out / name) for name in ("truth.fits", "truth.ecsv")},
+        "seconds_last_session": round(seconds, 3),
+        "engine": resolve_engine(engine, workers, scheduler), "workers": workers,
+    })
+    snr = truth[f"arc_snr_{recipe.reference_band}"]
+    return RunSummary(folder=out, count=recipe.count, rendered_now=recipe.count - done_systems, seconds=seconds,
+                      timings=dict(folder.manifest.get("seconds_by_stage", {})),
+                      n_multiply_imaged=int((truth["n_images"] >= 2).sum()),
+                      median_einstein_radius=float(np.median(truth["einstein_radius"])),
                       median_arc_snr=float(np.median(snr)))
+
+
+def _write_error(out: Path, exc: OSError) -> SimlensError:
+    reason = exc.strerror or str(exc)
+    hint = "free some space" if exc.errno == errno.ENOSPC else "make it writable"
+    return SimlensError(f"{out}: cannot write ({reason}{': ' + str(exc.filename) if exc.filename else ''}); "
+                        f"finished shards are kept: {hint} and run the same command again to finish")

@@ -26,6 +26,7 @@ from __future__ import annotations
 import dataclasses
 import difflib
 import math
+import re
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -48,6 +49,7 @@ __all__ = [
     "SourceSettings",
     "SourcePositionSettings",
     "ClumpSettings",
+    "OutputSettings",
     "load_recipe",
     "parse_recipe",
 ]
@@ -91,6 +93,11 @@ def text(default: str | None = None, *, choices: tuple[str, ...] = (), optional:
     if optional:
         return field(default=None, metadata=meta)
     return field(metadata=meta)
+
+
+def flag(default: bool, *, doc: str = ""):
+    """A true/false switch."""
+    return field(default=default, metadata=dict(kind="flag", doc=doc))
 
 
 def table(factory, *, doc: str = "", optional: bool = False):
@@ -241,6 +248,17 @@ class SourceSettings:
 
 
 @dataclass(frozen=True, kw_only=True)
+class OutputSettings:
+    shard_size: int = number(100, low=1, high=100_000, integer=True,
+                             doc="systems per shard file (the unit of parallel work and of resuming)")
+    per_system_files: bool = flag(False, doc="also write one FITS file per system (for looking at)")
+    noiseless: bool = flag(True, doc="write the noiseless lensed-source and lens-light planes in shards")
+    mask_threshold: float = number(1.0, low=0, low_open=True,
+                                   doc="mask pixels where the noiseless lensed source exceeds this many "
+                                       "times the pixel's noise sigma")
+
+
+@dataclass(frozen=True, kw_only=True)
 class Recipe:
     """A validated recipe.  Build with :func:`load_recipe` / :func:`parse_recipe`, or directly."""
 
@@ -249,6 +267,7 @@ class Recipe:
     source: SourceSettings = table(SourceSettings, doc="the source population")
     cosmology: CosmologySettings = table(CosmologySettings, doc="cosmology")
     footprint: FootprintSettings = table(FootprintSettings, doc="sky area for RA/Dec")
+    output: OutputSettings = table(OutputSettings, doc="what a run writes")
     name: str = text("simlens-run", doc="run name (default: the recipe file's stem)")
     count: int = number(100, low=1, high=10_000_000, integer=True, doc="number of systems")
     seed: int = number(0, low=0, high=2**63 - 1, integer=True, doc="random seed of the run")
@@ -359,6 +378,10 @@ def _build(cls, data: Any, origin: str, prefix: str):
             values[name] = _check_number(origin, path, value, f.metadata)
         elif kind == "text":
             values[name] = _check_text(origin, path, value, f.metadata)
+        elif kind == "flag":
+            if not isinstance(value, bool):
+                raise RecipeError(origin, path, f"must be true or false, got {_show(value)}", "true, false")
+            values[name] = value
         elif kind == "table":
             values[name] = _build(f.metadata["cls"], value, origin, path + ".")
         elif kind == "bands":
@@ -511,9 +534,16 @@ def _check_text(origin: str, path: str, value: Any, meta: Mapping) -> str:
     return value
 
 
+_SAFE_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,99}$")
+
+
 def _check_consistency(recipe: Recipe) -> None:
     """Checks that involve several keys."""
     origin = recipe.origin
+    if not _SAFE_NAME.match(recipe.name):
+        # The name becomes the default run folder outputs/<name>: it must not reach outside it.
+        raise RecipeError(origin, "name", f"{recipe.name!r} cannot name a run folder",
+                          "letters, digits, '_', '-' and '.', starting with a letter or digit, no '/'")
     survey = recipe.survey
     names = survey.band_names
     if not names:

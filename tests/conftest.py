@@ -66,6 +66,10 @@ SMALL_RECIPE = textwrap.dedent("""
 
     [source.clumps]
     count = { choice = [0, 2] }
+
+    [output]
+    shard_size = 4
+    per_system_files = true
 """)
 
 

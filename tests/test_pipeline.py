@@ -56,18 +56,6 @@ def test_existing_run_is_not_overwritten_without_permission(small_recipe, tmp_pa
     assert sorted(p.name for p in tmp_path.iterdir()) == ["run"]  # no partial or old folders left
 
 
-def test_failed_run_leaves_no_run_folder(small_recipe, tmp_path, monkeypatch):
-    import simlens.pipeline as pipeline
-
-    def broken(*args, **kwargs):
-        raise RuntimeError("disk on fire")
-
-    monkeypatch.setattr(pipeline, "write_truth", broken)
-    with pytest.raises(RuntimeError):
-        simlens.run(small_recipe.with_overrides(count=1), tmp_path / "run")
-    assert list(tmp_path.iterdir()) == []
-
-
 def test_unwritable_output_folder_is_a_clear_error(small_recipe, tmp_path, capsys):
     blocker = tmp_path / "file"
     blocker.write_text("not a folder")

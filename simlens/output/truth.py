@@ -6,7 +6,8 @@ Columns (``<band>`` for every band of the survey):
 column                     unit      meaning
 =========================  ========  ==========================================================
 system_id                            id within the run (random streams derive from it)
-file                                 cutout path relative to the run folder
+file                                 per-system cutout path relative to the run folder ("" if none)
+shard, shard_index                   shard file (relative path) and the system's row in it
 ra, dec                    deg       lens centre (= cutout centre, CRVAL of the WCS)
 z_lens, z_source                     redshifts
 velocity_dispersion        km / s    lens stellar velocity dispersion
@@ -30,6 +31,8 @@ arc_snr_<band>                       matched-filter S/N of the noiseless lensed 
                                      sqrt(sum_i S_i^2 / var_i), var_i = expected per-pixel variance
                                      (sky + lens + source Poisson and read noise), over the cutout
 psf_fwhm_<band>            arcsec    PSF FWHM
+magzero_<band>             mag       AB zero point of the images: m = magzero - 2.5 log10(ADU)
+sky_level_<band>                     sky level subtracted from the images (ADU per pixel)
 =========================  ========  ==========================================================
 """
 
@@ -44,7 +47,7 @@ from astropy.table import Table
 from ..render import RenderedSystem
 from .atomic import atomic_path
 
-__all__ = ["truth_row", "truth_table", "write_truth", "TRUTH_UNITS"]
+__all__ = ["truth_row", "truth_table", "write_truth", "write_truth_table", "TRUTH_UNITS"]
 
 TRUTH_UNITS = {
     "ra": u.deg, "dec": u.deg, "velocity_dispersion": u.km / u.s, "einstein_radius": u.arcsec,
@@ -53,10 +56,11 @@ TRUTH_UNITS = {
 }
 
 
-def truth_row(rendered: RenderedSystem, file: str) -> dict:
+def truth_row(rendered: RenderedSystem, file: str, shard: str = "", shard_index: int = -1) -> dict:
     s = rendered.system
     row = {
-        "system_id": s.system_id, "file": file, "ra": s.ra, "dec": s.dec,
+        "system_id": s.system_id, "file": file, "shard": shard, "shard_index": shard_index,
+        "ra": s.ra, "dec": s.dec,
         "z_lens": s.z_lens, "z_source": s.z_source, "velocity_dispersion": s.velocity_dispersion,
         "einstein_radius": s.einstein_radius, "mass_q": s.mass_q, "mass_angle": s.mass_angle,
         "shear_gamma": s.shear_gamma, "shear_angle": s.shear_angle,
@@ -73,6 +77,8 @@ def truth_row(rendered: RenderedSystem, file: str) -> dict:
                 "magnification": rendered.magnification, "n_images": len(rendered.images)})
     row.update({f"arc_snr_{b.band.name}": b.arc_snr for b in rendered.bands})
     row.update({f"psf_fwhm_{b.name}": b.psf_fwhm for b in s.bands})
+    row.update({f"magzero_{b.name}": b.magzero for b in s.bands})
+    row.update({f"sky_level_{b.name}": b.sky_level for b in s.bands})
     return row
 
 
@@ -85,12 +91,18 @@ def truth_table(rows: Sequence[dict]) -> Table:
             column.unit = u.mag
         elif name.startswith("psf_fwhm_"):
             column.unit = u.arcsec
+        elif name.startswith("magzero_"):
+            column.unit = u.mag
     return table
 
 
 def write_truth(rows: Sequence[dict], folder: Path, stem: str = "truth") -> Table:
-    """Write ``truth.fits`` and ``truth.ecsv`` into ``folder``; return the table."""
-    table = truth_table(rows)
+    """Write ``truth.fits`` and ``truth.ecsv`` into ``folder`` from rows; return the table."""
+    return write_truth_table(truth_table(rows), folder, stem)
+
+
+def write_truth_table(table: Table, folder: Path, stem: str = "truth") -> Table:
+    """Write ``truth.fits`` and ``truth.ecsv`` into ``folder`` (atomically); return the table."""
     folder = Path(folder)
     with atomic_path(folder / f"{stem}.fits") as tmp:
         table.write(tmp, format="fits")

@@ -1,0 +1,56 @@
+"""Shard files: many systems in one FITS file, the form for training sets.
+
+``shards/shard_NNNNN.fits`` holds, for the systems ``FIRSTID .. FIRSTID + NSYSTEM - 1`` in order:
+
+==========  ======================================  =================================================
+EXTNAME     shape (numpy order)                     content
+==========  ======================================  =================================================
+PRIMARY     --                                      run name, shard index, first id, bands, pixel scale
+IMAGES      (n_systems, n_bands, ny, nx) float32    observed images, ADU, sky-subtracted
+SOURCE      (n_systems, n_bands, ny, nx) float32    noiseless lensed source (if output.noiseless)
+LENS        (n_systems, n_bands, ny, nx) float32    noiseless lens light (if output.noiseless)
+MASK        (n_systems, n_bands, ny, nx) uint8      1 where the lensed source exceeds MASKTHR x sigma
+PSF         (n_systems, n_bands, 25, 25) float32    effective PSF per system and band, unit sum
+TRUTH       table, one row per system               the truth catalogue's rows for this shard
+==========  ======================================  =================================================
+
+Each system's WCS is the per-system cutout's (:func:`simlens.output.cutout_wcs` with the truth row's
+ra, dec and the PIXSCALE keyword); each band's photometric zero point is the truth's
+``magzero_<band>`` column.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+from astropy.io import fits
+from astropy.table import Table
+
+from .atomic import atomic_path
+
+__all__ = ["write_shard", "read_shard", "PLANES"]
+
+PLANES = ("IMAGES", "SOURCE", "LENS", "MASK", "PSF")
+
+
+def write_shard(path: Path, cubes: dict, truth: Table, header: dict) -> None:
+    """Write one shard file atomically.  ``cubes`` maps EXTNAMEs of :data:`PLANES` to arrays."""
+    primary = fits.PrimaryHDU()
+    for key, value in header.items():
+        primary.header[key] = value
+    hdus = [primary]
+    for name in PLANES:
+        if name in cubes:
+            hdus.append(fits.ImageHDU(data=cubes[name], name=name))
+    hdus.append(fits.BinTableHDU(truth, name="TRUTH"))
+    with atomic_path(Path(path)) as tmp:
+        fits.HDUList(hdus).writeto(tmp)
+
+
+def read_shard(path: Path, planes=("IMAGES",)) -> tuple[dict, Table]:
+    """Read the requested planes (arrays) and the truth rows of one shard file."""
+    with fits.open(path, memmap=True) as hdul:
+        arrays = {name: np.array(hdul[name].data) for name in planes}
+        truth = Table.read(hdul["TRUTH"])
+    return arrays, truth

@@ -1,0 +1,197 @@
+"""The run folder's state: its manifest, resuming an interrupted run, and verifying it.
+
+The manifest (``manifest.json``) is rewritten atomically each time a shard finishes, listing every
+finished shard's files with their SHA-256.  Killing a run at any moment leaves a consistent folder:
+finished shards are recorded, files being written exist only under temporary names.  Running the
+same command again checks the recorded shards, deletes stale temporary files, and renders only the
+shards that are missing or damaged; the result is identical to an uninterrupted run.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import shutil
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+
+from . import __version__
+from .errors import SimlensError
+from .output.atomic import atomic_path
+from .output.checksums import sha256_of
+from .output.manifest import package_versions
+from .recipe import Recipe
+from .shard import ShardResult
+
+__all__ = ["RunFolder", "VerifyReport", "verify_run"]
+
+MANIFEST = "manifest.json"
+FORMAT = "simlens-run/1"
+
+
+def recipe_identity(recipe: Recipe) -> dict:
+    """What must match for a run folder to be resumed with this recipe."""
+    return {"recipe_sha256": hashlib.sha256(recipe.source_text.encode("utf-8")).hexdigest(),
+            "seed": recipe.seed, "count": recipe.count, "shard_size": recipe.output.shard_size,
+            "per_system_files": recipe.output.per_system_files, "simlens": __version__}
+
+
+def _now() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+@dataclass
+class RunFolder:
+    path: Path
+    manifest: dict = field(default_factory=dict)
+
+    # -- opening ---------------------------------------------------------------------------------
+    @classmethod
+    def open(cls, path: Path, recipe: Recipe, overwrite: bool = False) -> "RunFolder":
+        """Create a new run folder, or take up an unfinished one made by the same recipe and seed."""
+        path = Path(path)
+        if path.exists() and not path.is_dir():
+            raise SimlensError(f"{path}: exists and is not a folder; choose another --out")
+        manifest_path = path / MANIFEST
+        if path.exists() and any(path.iterdir()):
+            if overwrite:
+                _remove_run(path)
+            elif not manifest_path.is_file():
+                raise SimlensError(f"{path}: folder is not empty and holds no simlens run; "
+                                   f"choose another --out, or pass --overwrite to replace its contents")
+            else:
+                folder = cls(path, _load_manifest(manifest_path))
+                if folder.manifest.get("status") == "complete":
+                    raise SimlensError(f"{path}: a finished run already exists; pass --overwrite to replace it, "
+                                       f"or choose another --out")
+                if folder.manifest.get("identity") != recipe_identity(recipe):
+                    raise SimlensError(f"{path}: holds an unfinished run of another recipe, seed or count; "
+                                       f"run that command again to finish it, or pass --overwrite")
+                folder._clean_temporaries()
+                folder._drop_damaged_shards()
+                return folder
+        try:
+            (path / "shards").mkdir(parents=True, exist_ok=True)
+            if recipe.output.per_system_files:
+                (path / "cutouts").mkdir(exist_ok=True)
+        except OSError as exc:
+            raise SimlensError(f"{path}: cannot create the run folder ({exc.strerror}); "
+                               f"choose a writable --out") from None
+        folder = cls(path, {
+            "format": FORMAT, "simlens_run": recipe.name, "status": "running",
+            "identity": recipe_identity(recipe), "recipe_file": recipe.origin, "recipe_text": recipe.source_text,
+            "seed": recipe.seed, "count": recipe.count, "shard_size": recipe.output.shard_size,
+            "bands": list(recipe.survey.band_names), "reference_band": recipe.reference_band,
+            "started_utc": _now(), "shards": {}, "seconds_by_stage": {}, "versions": package_versions()})
+        folder.save()
+        return folder
+
+    # -- state -----------------------------------------------------------------------------------
+    @property
+    def finished(self) -> set[int]:
+        return {int(k) for k in self.manifest.get("shards", {})}
+
+    def record(self, result: ShardResult) -> None:
+        self.manifest["shards"][str(result.spec.index)] = {
+            "first_system": result.spec.first_system, "n_systems": result.spec.n_systems,
+            "files": result.files}
+        stages = self.manifest.setdefault("seconds_by_stage", {})
+        for key, value in result.timings.items():
+            stages[key] = round(stages.get(key, 0.0) + value, 3)
+        self.save()
+
+    def complete(self, extra: dict) -> None:
+        self.manifest.update(extra)
+        self.manifest["status"] = "complete"
+        self.manifest["finished_utc"] = _now()
+        self.save()
+
+    def save(self) -> None:
+        with atomic_path(self.path / MANIFEST) as tmp:
+            tmp.write_text(json.dumps(self.manifest, indent=1, default=str) + "\n", encoding="utf-8")
+
+    # -- repair ----------------------------------------------------------------------------------
+    def _clean_temporaries(self) -> None:
+        for tmp in self.path.rglob(".*.tmp-*"):
+            tmp.unlink(missing_ok=True)
+
+    def _drop_damaged_shards(self) -> None:
+        damaged = [k for k, entry in self.manifest.get("shards", {}).items()
+                   if _damaged_files(self.path, entry["files"])]
+        for key in damaged:
+            del self.manifest["shards"][key]
+        if damaged:
+            self.save()
+
+
+def _damaged_files(root: Path, files: dict) -> list[str]:
+    bad = []
+    for relative, digest in files.items():
+        target = root / relative
+        if not target.is_file() or sha256_of(target) != digest:
+            bad.append(relative)
+    return bad
+
+
+def _load_manifest(path: Path) -> dict:
+    try:
+        manifest = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError) as exc:
+        raise SimlensError(f"{path}: cannot be read as a simlens manifest ({exc}); "
+                           f"pass --overwrite to start the run afresh") from None
+    if manifest.get("format") != FORMAT:
+        raise SimlensError(f"{path}: not a manifest this simlens can resume (format {manifest.get('format')!r})")
+    return manifest
+
+
+def _remove_run(path: Path) -> None:
+    for child in path.iterdir():
+        if child.is_dir() and not child.is_symlink():
+            shutil.rmtree(child)
+        else:
+            child.unlink()
+
+
+@dataclass(frozen=True)
+class VerifyReport:
+    folder: Path
+    planned: int
+    complete_run: bool
+    missing: tuple  # shard indices not finished
+    damaged: tuple  # (shard index or "truth", relative path)
+
+    @property
+    def ok(self) -> bool:
+        return self.complete_run and not self.missing and not self.damaged
+
+    def describe(self) -> str:
+        lines = [f"{self.folder}: {self.planned} shards planned, "
+                 f"{self.planned - len(self.missing)} finished; run {'complete' if self.complete_run else 'unfinished'}"]
+        if self.missing:
+            shown = ", ".join(str(i) for i in self.missing[:20]) + (" ..." if len(self.missing) > 20 else "")
+            lines.append(f"  missing shards: {shown}")
+        for owner, relative in self.damaged:
+            lines.append(f"  damaged or absent: {relative} (shard {owner})" if owner != "truth"
+                         else f"  damaged or absent: {relative}")
+        lines.append("  all files match the manifest" if self.ok else
+                     "  run the same `simlens make` command again to re-render what is missing or damaged")
+        return "\n".join(lines)
+
+
+def verify_run(folder: Path) -> VerifyReport:
+    """Check every shard (and the truth catalogue) of a run folder against its manifest."""
+    folder = Path(folder)
+    manifest_path = folder / MANIFEST
+    if not manifest_path.is_file():
+        raise SimlensError(f"{folder}: no {MANIFEST}; not a simlens run folder")
+    manifest = _load_manifest(manifest_path)
+    planned = -(-manifest["count"] // manifest["shard_size"])
+    shards = manifest.get("shards", {})
+    missing = tuple(i for i in range(planned) if str(i) not in shards)
+    damaged = []
+    for key in sorted(shards, key=int):
+        damaged += [(int(key), rel) for rel in _damaged_files(folder, shards[key]["files"])]
+    damaged += [("truth", rel) for rel in _damaged_files(folder, manifest.get("truth", {}))]
+    return VerifyReport(folder=folder, planned=planned, complete_run=manifest.get("status") == "complete",
+                        missing=missing, damaged=tuple(damaged))
