@@ -7,7 +7,9 @@ routes, noise excluded from all:
   galsim-direct   per band, galsim.Convolve(Sersic + Sersic, PSF).drawImage(...): the accuracy
                   reference (GalSim integrates the pixel and convolves in Fourier space)
   simlens         what `simlens make` does: one ray map and one evaluation of each shape per system,
-                  then per band a fine PSF kernel drawn by GalSim, FFT convolution, block sum
+                  then per band simlens.observe.observe_scene (PSF kernel drawn by GalSim, FFT
+                  convolution, block sums, and CCD noise, whose cost is included; the noiseless
+                  planes are compared)
   interpolated    the same supersampled scene wrapped in galsim.InterpolatedImage, convolved with each
                   band's PSF and drawn by GalSim (the alternative route)
 
@@ -26,8 +28,9 @@ import numpy as np
 
 from simlens.light import Sersic
 from simlens.mass import SIS
-from simlens.observe import _FFTConvolver, padding_for, psf_kernel, psf_profile
-from simlens.raytrace import ComponentImages, PixelGrid, trace_rays
+from simlens.observe import observe_scene, padding_for, psf_profile
+from simlens.raytrace import ComponentImages, PixelGrid, Scene, trace_rays
+from simlens.render import observation_rays
 from simlens.survey import BandConditions
 
 FWHMS = (0.9, 0.8, 0.75)
@@ -69,12 +72,17 @@ def main():
         references = [galsim.Convolve(galsim_profile(lens) + galsim_profile(src), psf_profile(b), gsparams=params)
                       .drawImage(nx=size, ny=size, scale=0.2).array for b in bands()]
         t1 = time.perf_counter()
-        rays = trace_rays(SIS(einstein_radius=1e-8), grid)
-        cache = ComponentImages(rays)
-        fine = cache.render(lens, lensed=False) + cache.render(src, lensed=True)
-        ours = [grid.crop(grid.bin_to_pixels(
-            _FFTConvolver(fine.shape, psf_kernel(b, grid), grid.padding * grid.supersampling)(fine))) for b in bands()]
+        rays, sampling = observation_rays(SIS(einstein_radius=1e-8), grid, max(FWHMS))
+        cache = ComponentImages(rays, sampling)
+        lens_image, source_image = cache.render(lens, lensed=False), cache.render(src, lensed=True)
+        scene = Scene("b", grid, lens_image, source_image, src.flux, sampling=sampling)
+        ours = []
+        for b in bands():
+            observed = observe_scene(scene, b, noise_seed=1)  # noise excluded below: noiseless planes
+            ours.append(observed.lens_light + observed.lensed_source)
         t2 = time.perf_counter()
+        full = ComponentImages(trace_rays(SIS(einstein_radius=1e-8), grid))  # full ray grid everywhere
+        fine = full.render(lens, lensed=False) + full.render(src, lensed=True)
         interp = galsim.InterpolatedImage(galsim.Image(fine / grid.fine_pixel_area, scale=grid.fine_scale),
                                           normalization="sb", gsparams=params)
         alternative = [galsim.Convolve(interp, psf_profile(b), gsparams=params).drawImage(

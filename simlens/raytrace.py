@@ -94,31 +94,73 @@ class PixelGrid:
 
 @dataclass(frozen=True)
 class RayMap:
-    """Source-plane positions of the rays through every fine pixel centre (arcsec)."""
+    """Image-plane positions of rays and where they land in the source plane (arcsec).
+
+    ``x, y, beta_x, beta_y`` cover the *inner* region at full supersampling: the padded field less
+    ``inset`` pixels on every side (``inset = 0``: the whole field).  When ``inset > 0`` the whole
+    padded field is also traced more coarsely, ``outer_sampling`` rays per pixel side, in ``outer``
+    (``(x, y, beta_x, beta_y)``): light there reaches the cutout only through the PSF's wings."""
 
     grid: PixelGrid
     x: np.ndarray
     y: np.ndarray
     beta_x: np.ndarray
     beta_y: np.ndarray
+    inset: int = 0
+    outer: tuple | None = None
+    outer_sampling: int | None = None
+
+    @property
+    def axis(self) -> np.ndarray:
+        """Coordinates of the full-resolution rays along one axis."""
+        k = self.inset * self.grid.supersampling
+        axis = self.grid.fine_axis()
+        return axis[k:axis.size - k] if k else axis
 
 
-def trace_rays(mass: MassModel, grid: PixelGrid) -> RayMap:
-    """Shoot one ray through each fine pixel centre: ``beta = theta - alpha(theta)``."""
-    x, y = grid.fine_coordinates()
+def trace_rays(mass: MassModel, grid: PixelGrid, outer_sampling: int | None = None,
+               margin: int | None = None) -> RayMap:
+    """Shoot one ray through each fine pixel centre: ``beta = theta - alpha(theta)``.
+
+    With ``outer_sampling`` (dividing the supersampling) and ``margin`` (pixels), only the cutout
+    plus ``margin`` pixels on each side is traced at full supersampling, and the rest of the padded
+    field at ``outer_sampling`` rays per pixel side."""
+    inset = 0
+    if outer_sampling is not None and margin is not None and margin < grid.padding:
+        if grid.supersampling % outer_sampling:
+            raise ValueError(f"outer_sampling {outer_sampling} must divide the supersampling {grid.supersampling}")
+        inset = grid.padding - margin
+    k = inset * grid.supersampling
+    axis = grid.fine_axis()
+    axis = axis[k:axis.size - k] if k else axis
+    x, y = np.meshgrid(axis, axis)
     beta_x, beta_y = mass.ray_shoot(x, y)
-    return RayMap(grid=grid, x=x, y=y, beta_x=beta_x, beta_y=beta_y)
+    outer = None
+    if inset:
+        n = grid.padded_size * outer_sampling
+        outer_axis = ((np.arange(n) + 0.5) / outer_sampling - 0.5 * grid.padded_size) * grid.pixel_scale
+        ox, oy = np.meshgrid(outer_axis, outer_axis)
+        outer = (ox, oy) + tuple(mass.ray_shoot(ox, oy))
+    return RayMap(grid=grid, x=x, y=y, beta_x=beta_x, beta_y=beta_y, inset=inset, outer=outer,
+                  outer_sampling=outer_sampling if inset else None)
 
 
 @dataclass(frozen=True)
 class Scene:
-    """One band's noiseless scene on the padded fine grid, in counts per fine pixel, before the PSF."""
+    """One band's noiseless scene on the padded grid before the PSF, in counts per sample, with
+    ``sampling`` samples per pixel side (the ray grid's supersampling, or a divisor of it when the
+    rays have been block-summed for the PSF stage)."""
 
     band: str
     grid: PixelGrid
     lens_light: np.ndarray
     lensed_source: np.ndarray
     source_flux_unlensed: float
+    sampling: int | None = None
+
+    def __post_init__(self):
+        if self.sampling is None:
+            object.__setattr__(self, "sampling", self.grid.supersampling)
 
     @property
     def lensed_source_flux(self) -> float:
@@ -132,13 +174,16 @@ class Scene:
         return self.lensed_source_flux / self.source_flux_unlensed
 
 
-def deposit_points(image: np.ndarray, grid: PixelGrid, points: tuple) -> None:
-    """Add point sources to a fine image by cloud-in-cell weights (flux-conserving; a point at a fine
-    pixel centre lands in that pixel alone).  Points outside the padded field are dropped."""
-    n = grid.fine_size
+def deposit_points(image: np.ndarray, grid: PixelGrid, points: tuple, sampling: int | None = None) -> None:
+    """Add point sources to an image of the padded field with ``sampling`` samples per pixel side
+    (default: the ray grid's) by cloud-in-cell weights: flux-conserving, and a point at a sample's
+    centre lands in that sample alone.  Points outside the padded field are dropped."""
+    sampling = sampling or grid.supersampling
+    n = grid.padded_size * sampling
+    scale = grid.pixel_scale / sampling
     for p in points:
-        fx = p.center[0] / grid.fine_scale + 0.5 * n - 0.5
-        fy = p.center[1] / grid.fine_scale + 0.5 * n - 0.5
+        fx = p.center[0] / scale + 0.5 * n - 0.5
+        fy = p.center[1] / scale + 0.5 * n - 0.5
         ix, iy = int(np.floor(fx)), int(np.floor(fy))
         wx, wy = fx - ix, fy - iy
         for dy, wy_ in ((0, 1 - wy), (1, wy)):
@@ -155,22 +200,22 @@ CENTRE_REFINE_HALF_WIDTH = 4
 CENTRE_REFINE_FACTOR = 8
 
 
-def refine_centre(unit: np.ndarray, profile: LightProfile, grid: PixelGrid) -> None:
-    """Replace the fine pixels around ``profile.center`` by sub-sampled averages (in place)."""
-    n, h, m = grid.fine_size, CENTRE_REFINE_HALF_WIDTH, CENTRE_REFINE_FACTOR
-    cx = int(round(profile.center[0] / grid.fine_scale + 0.5 * n - 0.5))
-    cy = int(round(profile.center[1] / grid.fine_scale + 0.5 * n - 0.5))
+def refine_centre(unit: np.ndarray, profile: LightProfile, axis: np.ndarray, scale: float) -> None:
+    """Replace the samples around ``profile.center`` by sub-sampled averages (in place); ``axis``
+    holds the sample centres along one axis of ``unit`` and ``scale`` their spacing (arcsec)."""
+    n, h, m = axis.size, CENTRE_REFINE_HALF_WIDTH, CENTRE_REFINE_FACTOR
+    cx = int(round((profile.center[0] - axis[0]) / scale))
+    cy = int(round((profile.center[1] - axis[0]) / scale))
     r0, r1 = max(cy - h, 0), min(cy + h + 1, n)
     c0, c1 = max(cx - h, 0), min(cx + h + 1, n)
     if r0 >= r1 or c0 >= c1:
         return
-    axis = grid.fine_axis()
-    offsets = ((np.arange(m) + 0.5) / m - 0.5) * grid.fine_scale
+    offsets = ((np.arange(m) + 0.5) / m - 0.5) * scale
     ys = (axis[r0:r1, None] + offsets[None, :]).ravel()
     xs = (axis[c0:c1, None] + offsets[None, :]).ravel()
     gx, gy = np.meshgrid(xs, ys)
     sb = profile.surface_brightness(gx, gy).reshape(r1 - r0, m, c1 - c0, m).mean(axis=(1, 3))
-    unit[r0:r1, c0:c1] = sb * grid.fine_pixel_area
+    unit[r0:r1, c0:c1] = sb * scale * scale
 
 
 class ComponentImages:
@@ -178,15 +223,49 @@ class ComponentImages:
 
     Shapes are achromatic (bands differ only in each component's flux), so a system's bands share
     every evaluation of a profile: the cache key is the component with its flux set to 1.
-    Unlensed components are refined around their centres (:func:`refine_centre`)."""
+    Unlensed components are refined around their centres (:func:`refine_centre`).  With ``sampling``
+    below the ray grid's supersampling, each unit image is block-summed to it once, so that the
+    bands' linear combinations and the PSF stage work on the smaller arrays."""
 
-    def __init__(self, ray_map: RayMap):
+    def __init__(self, ray_map: RayMap, sampling: int | None = None):
+        ss = ray_map.grid.supersampling
+        sampling = sampling or ss
+        if ss % sampling:
+            raise ValueError(f"sampling {sampling} must divide the supersampling {ss}")
+        if ray_map.outer is not None and sampling != ray_map.outer_sampling:
+            raise ValueError(f"a ray map traced at {ray_map.outer_sampling} rays per pixel outside the "
+                             f"cutout renders at that sampling, not {sampling}")
         self.ray_map = ray_map
+        self.sampling = sampling
         self._cache: dict = {}
 
+    def _reduce(self, fine: np.ndarray) -> np.ndarray:
+        factor = self.ray_map.grid.supersampling // self.sampling
+        if factor == 1:
+            return fine
+        n = fine.shape[0] // factor
+        return fine.reshape(n, factor, n, factor).sum(axis=(1, 3))
+
+    def _unit_image(self, profile: LightProfile, lensed: bool) -> np.ndarray:
+        rm = self.ray_map
+        grid = rm.grid
+        x, y = (rm.beta_x, rm.beta_y) if lensed else (rm.x, rm.y)
+        inner = profile.surface_brightness(x, y) * grid.fine_pixel_area
+        if not lensed and hasattr(profile, "center"):
+            refine_centre(inner, profile, rm.axis, grid.fine_scale)
+        inner = self._reduce(inner)
+        if rm.outer is None:
+            return inner
+        ox, oy, obx, oby = rm.outer
+        scale = grid.pixel_scale / self.sampling
+        image = profile.surface_brightness(*((obx, oby) if lensed else (ox, oy))) * scale * scale
+        k = rm.inset * self.sampling
+        image[k:image.shape[0] - k, k:image.shape[1] - k] = inner
+        return image
+
     def render(self, profile: LightProfile | None, lensed: bool) -> np.ndarray:
-        """Counts per fine pixel of ``profile`` (source plane if ``lensed``, else image plane)."""
-        total = np.zeros((self.ray_map.grid.fine_size,) * 2)
+        """Counts per sample of ``profile`` (source plane if ``lensed``, else image plane)."""
+        total = np.zeros((self.ray_map.grid.padded_size * self.sampling,) * 2)
         if profile is None:
             return total
         parts = profile.components if hasattr(profile, "components") else (profile,)
@@ -196,11 +275,7 @@ class ComponentImages:
             key = (part.with_flux(1.0), lensed)
             unit = self._cache.get(key)
             if unit is None:
-                rm = self.ray_map
-                x, y = (rm.beta_x, rm.beta_y) if lensed else (rm.x, rm.y)
-                unit = key[0].surface_brightness(x, y) * rm.grid.fine_pixel_area
-                if not lensed and hasattr(part, "center"):
-                    refine_centre(unit, key[0], rm.grid)
+                unit = self._unit_image(key[0], lensed)
                 self._cache[key] = unit
             total += part.flux * unit
         return total
@@ -219,6 +294,6 @@ def render_scene(band: str, ray_map: RayMap, lens_light: LightProfile | None, so
                          "render their images as lens-plane PointSource objects instead")
     lensed = components.render(source, lensed=True)
     lens = components.render(lens_light, lensed=False)
-    deposit_points(lens, grid, split_points(lens_light)[1])
+    deposit_points(lens, grid, split_points(lens_light)[1], components.sampling)
     return Scene(band=band, grid=grid, lens_light=lens, lensed_source=lensed,
-                 source_flux_unlensed=source.flux)
+                 source_flux_unlensed=source.flux, sampling=components.sampling)

@@ -12,7 +12,7 @@ import time
 from dataclasses import dataclass, field
 
 from .lens_equation import ImageSet, find_images
-from .observe import ObservedBand, observe_scene, padding_for
+from .observe import ObservedBand, convolution_sampling, observe_scene, padding_for
 from .population import System
 from .raytrace import ComponentImages, PixelGrid, render_scene, trace_rays
 from .recipe import SurveySettings
@@ -26,7 +26,7 @@ class RenderedSystem:
     grid: PixelGrid
     bands: tuple  # of ObservedBand, in survey order
     magnification: float  # extended-source magnification in the reference band
-    images: ImageSet  # images of the source centre within the padded field
+    images: ImageSet  # images of the source centre within the cutout
     timings: dict = field(default_factory=dict, compare=False)
 
     def band(self, name: str) -> ObservedBand:
@@ -42,12 +42,37 @@ def pixel_grid_for(system: System, survey: SurveySettings) -> PixelGrid:
                      supersampling=survey.supersampling, padding=padding_for(fwhm_max, survey.pixel_scale))
 
 
-def image_search_windows(system: System, grid: PixelGrid) -> list[tuple[float, float]]:
-    """A coarse mesh over the padded field and a fine one around the Einstein ring."""
-    coarse = (grid.half_width, grid.pixel_scale / 2.0)
-    reach = 2.5 * system.einstein_radius / math.sqrt(system.mass_q) + math.hypot(system.source_x, system.source_y)
-    reach = min(reach, grid.half_width)
-    return [coarse, (reach, reach / 100.0)]
+# Rays at full supersampling reach this many PSF FWHM beyond the cutout; farther out (in the padding)
+# light only enters the cutout through the PSF's wings and is traced at the PSF stage's sampling.
+FULL_RESOLUTION_MARGIN_IN_FWHM = 1.0
+
+
+def observation_rays(mass, grid: PixelGrid, fwhm_max: float):
+    """The ray map a system is rendered with, and the sampling of its scenes (see raytrace.py)."""
+    sampling = convolution_sampling(grid.supersampling)
+    margin = int(math.ceil(FULL_RESOLUTION_MARGIN_IN_FWHM * fwhm_max / grid.pixel_scale))
+    if sampling == grid.supersampling:
+        return trace_rays(mass, grid), sampling
+    return trace_rays(mass, grid, outer_sampling=sampling, margin=margin), sampling
+
+
+# Nested meshes around the singular centre (half-sizes in Einstein radii, 50 steps each): as a
+# source nears the cut of an isothermal lens its inner image approaches the centre.  A mesh finds
+# images reliably from about 0.1 to 1 times its half-size (five cells or more from the singularity),
+# so these cover 2e-4 to 0.2 theta_E and the ring mesh the rest; image counts then do not change
+# when finer meshes are added (tests/test_lensing.py).
+CENTRAL_WINDOWS = (0.2, 0.02, 0.002)
+
+
+def image_search_windows(einstein_radius: float, q: float, source_offset: float,
+                         grid: PixelGrid) -> list[tuple[float, float]]:
+    """Meshes for :func:`simlens.lens_equation.find_images`, all within the cutout: a coarse one over
+    the cutout, a fine one around the Einstein ring, and nested ones around the centre."""
+    half = 0.5 * grid.size * grid.pixel_scale
+    reach = min(2.5 * einstein_radius / math.sqrt(q) + source_offset, half)
+    windows = [(half, grid.pixel_scale / 2.0), (reach, reach / 100.0)]
+    windows += [(min(f * einstein_radius, half), min(f * einstein_radius, half) / 50.0) for f in CENTRAL_WINDOWS]
+    return windows
 
 
 def render_system(system: System, survey: SurveySettings, reference_band: str) -> RenderedSystem:
@@ -55,12 +80,13 @@ def render_system(system: System, survey: SurveySettings, reference_band: str) -
     t0 = time.perf_counter()
     grid = pixel_grid_for(system, survey)
     mass = system.mass_model()
-    rays = trace_rays(mass, grid)
+    rays, sampling = observation_rays(mass, grid, max(b.psf_fwhm for b in system.bands))
     t1 = time.perf_counter()
     timings["ray_tracing"] = t1 - t0
 
     observed, magnification = [], math.nan
-    components = ComponentImages(rays)  # shapes are achromatic: evaluate each once for all bands
+    # Shapes are achromatic: evaluate each once for all bands, on the PSF stage's grid.
+    components = ComponentImages(rays, sampling=sampling)
     t_scene = t_observe = 0.0
     for conditions, seed in zip(system.bands, system.noise_seeds):
         ta = time.perf_counter()
@@ -77,7 +103,9 @@ def render_system(system: System, survey: SurveySettings, reference_band: str) -
     timings["galsim_stage"] = t_observe
 
     t2 = time.perf_counter()
-    images = find_images(mass, system.source_x, system.source_y, image_search_windows(system, grid))
+    windows = image_search_windows(system.einstein_radius, system.mass_q,
+                                   math.hypot(system.source_x, system.source_y), grid)
+    images = find_images(mass, system.source_x, system.source_y, windows)
     timings["image_finding"] = time.perf_counter() - t2
     return RenderedSystem(system=system, grid=grid, bands=tuple(observed), magnification=magnification,
                           images=images, timings=timings)

@@ -75,3 +75,34 @@ def test_unlensed_flux_is_recovered_without_a_lens():
     grid = PixelGrid(size=64, pixel_scale=0.1, supersampling=4)
     lensed, unlensed = _lensed_and_unlensed_flux(SIS(einstein_radius=1e-8), source, grid)
     assert lensed == pytest.approx(unlensed, rel=1e-3)
+
+
+@pytest.mark.parametrize("fraction", [0.5, 0.9, 0.99, 0.995])
+def test_inner_image_near_the_cut_is_found_by_the_renderers_search(fraction):
+    # SIS, beta = f theta_E: the inner image lies at (1 - f) theta_E from the centre, down to
+    # 0.005 theta_E here (SEF 1992, sect. 8.1.4); the meshes render_system uses must find it.
+    from simlens.render import image_search_windows
+
+    theta_e = 1.3
+    grid = PixelGrid(size=64, pixel_scale=0.2, supersampling=4)
+    beta = fraction * theta_e
+    images = find_images(SIS(einstein_radius=theta_e), beta, 0.0, image_search_windows(theta_e, 1.0, beta, grid))
+    assert len(images) == 2
+    assert np.min(np.abs(images.x)) == pytest.approx((1 - fraction) * theta_e, rel=1e-6)
+
+
+def test_image_counts_converge_for_sie_with_shear():
+    # Convergence check (common practice): adding a mesh ten times finer at the centre must not change
+    # the number of images the renderer's search finds, for sources spread over the Einstein radius.
+    from simlens.render import image_search_windows
+
+    rng = np.random.default_rng(4)
+    grid = PixelGrid(size=64, pixel_scale=0.2, supersampling=4)
+    for _ in range(25):
+        q, theta_e = rng.uniform(0.5, 1.0), rng.uniform(0.5, 2.0)
+        lens = SIE(einstein_radius=theta_e, q=q, angle=rng.uniform(0, 180)) + ExternalShear(gamma=0.05, angle=30)
+        r, phi = theta_e * np.sqrt(rng.uniform()), rng.uniform(0, 2 * np.pi)
+        sx, sy = r * np.cos(phi), r * np.sin(phi)
+        windows = image_search_windows(theta_e, q, r, grid)
+        finer = windows + [(1e-3 * theta_e, 1e-3 * theta_e / 50)]
+        assert len(find_images(lens, sx, sy, windows)) == len(find_images(lens, sx, sy, finer))

@@ -11,7 +11,8 @@ from astropy.stats import sigma_clipped_stats
 from simlens.light import PointSource, Sersic
 from simlens.mass import SIS
 from simlens.observe import effective_psf_image, observe_scene, padding_for
-from simlens.raytrace import PixelGrid, render_scene, trace_rays
+from simlens.raytrace import ComponentImages, PixelGrid, render_scene
+from simlens.render import observation_rays
 from simlens.survey import BandConditions
 
 
@@ -25,8 +26,10 @@ def band(**changes) -> BandConditions:
 def observe_profile(conditions, lens_light, source, size=64, seed=5, supersampling=4, lens_mass=None):
     grid = PixelGrid(size=size, pixel_scale=conditions.pixel_scale, supersampling=supersampling,
                      padding=padding_for(conditions.psf_fwhm, conditions.pixel_scale))
-    rays = trace_rays(lens_mass or SIS(einstein_radius=1e-8), grid)
-    return observe_scene(render_scene(conditions.name, rays, lens_light, source), conditions, seed)
+    # The production path: ray map and scene sampling as render_system chooses them.
+    rays, sampling = observation_rays(lens_mass or SIS(einstein_radius=1e-8), grid, conditions.psf_fwhm)
+    scene = render_scene(conditions.name, rays, lens_light, source, ComponentImages(rays, sampling))
+    return observe_scene(scene, conditions, seed)
 
 
 EMPTY = Sersic(flux=0.0, half_light_radius=0.5)
@@ -64,10 +67,23 @@ def test_psf_fwhm_measured_with_photutils(profile, fwhm):
     assert measured == pytest.approx(fwhm, rel=0.05)
 
 
-def test_effective_psf_has_unit_sum_and_is_centred():
-    psf = effective_psf_image(band())
+@pytest.mark.parametrize("profile, fwhm, beta", [("moffat", 0.6, 3.0), ("moffat", 1.0, 2.5), ("kolmogorov", 0.7, 3.0)])
+def test_effective_psf_matches_galsim_convolved_with_the_pixel(profile, fwhm, beta):
+    # Reference: galsim.Convolve(PSF, galsim.Pixel) drawn with tight GSParams (GalSim's own pixel
+    # convolution); within 0.2 % of the peak, unit sum, centred on the central pixel.
+    import galsim
+
+    from simlens.observe import psf_profile
+
+    conditions = band(psf_profile=profile, psf_fwhm=fwhm, psf_beta=beta)
+    psf = effective_psf_image(conditions)
+    tight = galsim.GSParams(folding_threshold=1e-4, maxk_threshold=1e-5)
+    reference = galsim.Convolve(psf_profile(conditions), galsim.Pixel(0.2), gsparams=tight).drawImage(
+        nx=25, ny=25, scale=0.2, method="no_pixel").array
+    reference /= reference.sum()
     assert psf.sum() == pytest.approx(1.0)
-    assert np.unravel_index(np.argmax(psf), psf.shape) == (psf.shape[0] // 2, psf.shape[1] // 2)
+    assert np.unravel_index(np.argmax(psf), psf.shape) == (12, 12)
+    assert np.abs(psf - reference).max() < 2e-3 * reference.max()
 
 
 def test_source_counts_follow_the_zero_point():
@@ -112,7 +128,7 @@ def test_circular_convolution_equals_linear_convolution_inside_the_cutout():
 
     conditions = band(psf_fwhm=0.9)
     grid = PixelGrid(size=24, pixel_scale=0.2, supersampling=3, padding=padding_for(0.9, 0.2))
-    kernel = psf_kernel(conditions, grid)
+    kernel = psf_kernel(conditions, grid.fine_scale)
     image = np.random.default_rng(2).uniform(size=(grid.fine_size, grid.fine_size))
     ours = _FFTConvolver(image.shape, kernel, exact_margin=grid.padding * grid.supersampling)(image)
     reference = fftconvolve(image, kernel, mode="same")
