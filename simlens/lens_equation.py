@@ -90,20 +90,23 @@ def find_images(mass: MassModel, source_x: float, source_y: float,
     if x.size == 0:
         return ImageSet(np.empty(0), np.empty(0), np.empty(0))
     limit = max(h for h, _ in windows)
+    active = np.ones(x.size, dtype=bool)  # candidates still being iterated
     for _ in range(NEWTON_ITERATIONS):
-        bx, by = mass.ray_shoot(x, y)
-        fx, fy = bx - source_x, by - source_y
-        psi_xx, psi_xy, psi_yy = mass.hessian(x, y)
+        if not active.any():
+            break
+        xa, ya = x[active], y[active]
+        ax, ay, psi_xx, psi_xy, psi_yy = mass.deflection_and_hessian(xa, ya)
+        fx, fy = xa - ax - source_x, ya - ay - source_y
         a11, a12, a22 = 1.0 - psi_xx, -psi_xy, 1.0 - psi_yy
         det = a11 * a22 - a12 * a12
         safe = np.abs(det) > 1e-12
         det = np.where(safe, det, 1.0)
         step_x = np.where(safe, (a22 * fx - a12 * fy) / det, 0.0)
         step_y = np.where(safe, (-a12 * fx + a11 * fy) / det, 0.0)
-        x = x - step_x
-        y = y - step_y
-        if np.all(np.hypot(step_x, step_y) < 1e-3 * SOLUTION_TOLERANCE):
-            break
+        x[active] = xa - step_x
+        y[active] = ya - step_y
+        done = np.hypot(step_x, step_y) < 1e-3 * SOLUTION_TOLERANCE
+        active[np.flatnonzero(active)[done]] = False
     bx, by = mass.ray_shoot(x, y)
     residual = np.hypot(bx - source_x, by - source_y)
     ok = (residual < SOLUTION_TOLERANCE) & (np.abs(x - center[0]) <= limit) & (np.abs(y - center[1]) <= limit)

@@ -70,7 +70,7 @@ def image_search_windows(einstein_radius: float, q: float, source_offset: float,
     the cutout, a fine one around the Einstein ring, and nested ones around the centre."""
     half = 0.5 * grid.size * grid.pixel_scale
     reach = min(2.5 * einstein_radius / math.sqrt(q) + source_offset, half)
-    windows = [(half, grid.pixel_scale / 2.0), (reach, reach / 100.0)]
+    windows = [(half, grid.pixel_scale), (reach, reach / 100.0)]
     windows += [(min(f * einstein_radius, half), min(f * einstein_radius, half) / 50.0) for f in CENTRAL_WINDOWS]
     return windows
 
