@@ -98,7 +98,7 @@ def render_shard(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
             if psf_cube is None:
                 psf_cube = np.zeros((spec.n_systems, nb) + observed.psf.shape, np.float32)
             psf_cube[k, b] = observed.psf
-        relative = ""
+        relative = shard_file  # the file holding this system's images: its own cutout, or the shard
         if output.per_system_files:
             relative = cutout_path(recipe, system_id)
             write_cutout(rendered, run_folder / relative, run_name=recipe.name)

@@ -69,8 +69,9 @@ def test_per_system_files_are_optional(tmp_path):
     recipe = parse_recipe(SHARDED.replace("per_system_files = true", "per_system_files = false"))
     simlens.run(recipe, tmp_path / "run")
     assert not (tmp_path / "run" / "cutouts").exists()
-    truth = Table.read(tmp_path / "run" / "truth.ecsv")
-    assert len(truth) == 8 and set(truth["file"].filled("") if hasattr(truth["file"], "filled") else truth["file"]) <= {""}
+    truth = Table.read(tmp_path / "run" / "truth.fits")
+    assert len(truth) == 8 and list(truth["file"]) == list(truth["shard"])
+    assert set(truth["shard"]) == {f"shards/shard_0000{i}.fits" for i in range(4)}
 
 
 @pytest.mark.parametrize("engine, workers", [("processes", 2), ("dask", 2)])
@@ -162,6 +163,42 @@ def test_sigkill_then_same_command_gives_the_uninterrupted_result(reference_run,
     assert "resumed" in finished.stdout
     assert data_checksums(out) == reference
     assert not list(out.rglob(".*.tmp-*"))
+
+
+def test_ctrl_c_stops_cleanly_and_the_same_command_finishes(reference_run, tmp_path):
+    recipe, _, reference = reference_run
+    recipe_file = tmp_path / "sharded.toml"
+    recipe_file.write_text(SHARDED)
+    out = tmp_path / "run"
+    command = [sys.executable, "-m", "simlens", "make", str(recipe_file), "--out", str(out), "--quiet"]
+    process = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.time() + 120
+    while time.time() < deadline:
+        try:
+            if json.loads((out / "manifest.json").read_text())["shards"]:
+                break
+        except (OSError, ValueError, KeyError):
+            pass
+        time.sleep(0.02)
+    process.send_signal(signal.SIGINT)
+    _, err = process.communicate(timeout=60)
+    if process.returncode == 0:
+        pytest.skip("the run finished before the interrupt arrived")
+    assert process.returncode == 130
+    assert "run the same command again to finish" in err and "Traceback" not in err
+    assert not list(out.rglob(".*.tmp-*"))
+    assert subprocess.run(command, capture_output=True).returncode == 0
+    assert data_checksums(out) == reference
+
+
+def test_scheduler_address_submits_to_a_running_cluster(reference_run, tmp_path):
+    distributed = pytest.importorskip("distributed")
+    recipe, _, reference = reference_run
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=False, dashboard_address=None) as cluster:
+        simlens.run(recipe, tmp_path / "run", scheduler=cluster.scheduler_address)
+    assert data_checksums(tmp_path / "run") == reference
+    with pytest.raises(SimlensError, match="needs the dask engine"):
+        simlens.run(recipe, tmp_path / "other", engine="processes", scheduler="tcp://127.0.0.1:1")
 
 
 def test_verify_command(reference_run, capsys):

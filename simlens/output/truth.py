@@ -6,7 +6,8 @@ Columns (``<band>`` for every band of the survey):
 column                     unit      meaning
 =========================  ========  ==========================================================
 system_id                            id within the run (random streams derive from it)
-file                                 per-system cutout path relative to the run folder ("" if none)
+file                                 file with the system's images, relative to the run folder: its
+                                     own cutout if per-system files are written, else its shard
 shard, shard_index                   shard file (relative path) and the system's row in it
 ra, dec                    deg       lens centre (= cutout centre, CRVAL of the WCS)
 z_lens, z_source                     redshifts
