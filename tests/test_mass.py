@@ -11,7 +11,8 @@ import pytest
 from astropy import constants
 
 from simlens.cosmology import ARCSEC_PER_RADIAN
-from simlens.mass import SIE, SIS, CompositeMass, ConvergenceSheet, ExternalShear, PointMass
+from simlens.mass import (NFW, SIE, SIS, CompositeMass, ConvergenceSheet, CoredIsothermal, ExternalShear,
+                          Multipole, PointMass, PowerLaw)
 
 RNG = np.random.default_rng(1)
 # Test positions away from the singular centres (arcsec).
@@ -28,6 +29,14 @@ MODELS = [
     ExternalShear(gamma=0.07, angle=-25.0),
     ConvergenceSheet(kappa=0.12),
     SIE(einstein_radius=1.0, q=0.7, angle=10.0) + ExternalShear(gamma=0.05, angle=60.0) + ConvergenceSheet(kappa=0.05),
+    PowerLaw(einstein_radius=1.2, slope=2.3, q=0.6, angle=25.0, center=(0.05, -0.05)),
+    PowerLaw(einstein_radius=0.9, slope=1.6, q=0.35, angle=-40.0),
+    CoredIsothermal(einstein_radius=1.1, core_radius=0.15, q=0.65, angle=70.0),
+    CoredIsothermal(einstein_radius=1.1, core_radius=0.3),
+    NFW(kappa_s=0.25, scale_radius=3.0),
+    NFW(kappa_s=0.4, scale_radius=1.5, ellipticity=0.2, angle=35.0, center=(0.1, 0.0)),
+    Multipole(order=4, strength=0.04, einstein_radius=1.2, angle=15.0),
+    Multipole(order=3, strength=0.02, einstein_radius=1.0, angle=-60.0),
 ]
 
 

@@ -11,8 +11,13 @@ models.  See :mod:`simlens.mass.base` for the conventions.
 """
 
 from .base import CompositeMass, MassModel
+from .cored_isothermal import CoredIsothermal
 from .isothermal import SIE, SIS
+from .multipole import Multipole
+from .nfw import NFW
 from .point_mass import PointMass
+from .power_law import PowerLaw
 from .sheets import ConvergenceSheet, ExternalShear
 
-__all__ = ["MassModel", "CompositeMass", "SIS", "SIE", "PointMass", "ExternalShear", "ConvergenceSheet"]
+__all__ = ["MassModel", "CompositeMass", "SIS", "SIE", "PowerLaw", "CoredIsothermal", "NFW", "Multipole",
+           "PointMass", "ExternalShear", "ConvergenceSheet"]
