@@ -17,7 +17,7 @@ import numpy as np
 
 from .cosmology import einstein_radius_sis
 from .light import CompositeLight, LightProfile, Sersic
-from .mass import SIE, ExternalShear, MassModel
+from .mass import SIE, CoredIsothermal, ExternalShear, MassModel, Multipole, PowerLaw
 from .recipe import Recipe
 from .sampling import Grid, grid_cell, system_streams
 from .survey import BandConditions
@@ -56,6 +56,10 @@ class System:
     einstein_radius: float
     mass_q: float
     mass_angle: float
+    mass_model_name: str
+    mass_slope: float
+    mass_core_radius: float
+    multipoles: tuple  # of (order, strength, angle relative to the mass major axis)
     shear_gamma: float
     shear_angle: float
     lens_magnitudes: Mapping[str, float]
@@ -76,7 +80,18 @@ class System:
 
     # -- models -------------------------------------------------------------------------------
     def mass_model(self) -> MassModel:
-        lens = SIE(einstein_radius=self.einstein_radius, q=self.mass_q, angle=self.mass_angle)
+        """The deflector: the main profile (its Einstein radius is that of the SIS with the drawn
+        velocity dispersion), multipoles, external shear."""
+        theta_e, q, angle = self.einstein_radius, self.mass_q, self.mass_angle
+        if self.mass_model_name == "power_law":
+            lens = PowerLaw(einstein_radius=theta_e, slope=self.mass_slope, q=q, angle=angle)
+        elif self.mass_model_name == "cored_isothermal":
+            lens = CoredIsothermal(einstein_radius=theta_e, core_radius=self.mass_core_radius, q=q, angle=angle)
+        else:
+            lens = SIE(einstein_radius=theta_e, q=q, angle=angle)
+        for order, strength, relative_angle in self.multipoles:
+            lens = lens + Multipole(order=order, strength=strength, einstein_radius=theta_e,
+                                    angle=angle + relative_angle)
         if self.shear_gamma > 0:
             lens = lens + ExternalShear(gamma=self.shear_gamma, angle=self.shear_angle)
         return lens
@@ -226,6 +241,11 @@ class PopulationSampler:
             system_id=int(system_id), grid_cell=cell, ra=ra, dec=dec, z_lens=z_lens, z_source=z_source,
             velocity_dispersion=sigma, einstein_radius=theta_e,
             mass_q=v["lens.mass.q"], mass_angle=v["lens.mass.angle"],
+            mass_model_name=recipe.lens.mass.model,
+            mass_slope=v["lens.mass.slope"] if recipe.lens.mass.model == "power_law" else 2.0,
+            mass_core_radius=v["lens.mass.core_radius"] if recipe.lens.mass.model == "cored_isothermal" else 0.0,
+            multipoles=tuple((m, v[f"lens.multipoles.m{m}_strength"], v[f"lens.multipoles.m{m}_angle"])
+                             for m in (3, 4) if v[f"lens.multipoles.m{m}_strength"] != 0.0),
             shear_gamma=v["lens.shear.gamma"], shear_angle=v["lens.shear.angle"],
             lens_magnitudes=magnitudes(v["lens.light.magnitude"], "lens.light.colors"),
             lens_half_light_radius=v["lens.light.half_light_radius"],

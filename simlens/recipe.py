@@ -50,6 +50,7 @@ __all__ = [
     "SourcePositionSettings",
     "ClumpSettings",
     "OutputSettings",
+    "MultipoleSettings",
     "load_recipe",
     "parse_recipe",
 ]
@@ -182,10 +183,27 @@ class FootprintSettings:
     radius: float = number(1.0, low=0, low_open=True, high=180, unit="deg", doc="footprint radius")
 
 
+MASS_MODELS = ("sie", "power_law", "cored_isothermal")
+
+
 @dataclass(frozen=True, kw_only=True)
 class MassSettings:
-    q: Parameter = parameter(0.8, low=0, low_open=True, high=1, doc="mass axis ratio (SIE)")
+    model: str = text("sie", choices=MASS_MODELS, doc="mass profile of the lens galaxies")
+    q: Parameter = parameter(0.8, low=0, low_open=True, high=1, doc="mass axis ratio")
     angle: Parameter = parameter(0.0, unit="deg", doc="major-axis angle, CCW from +x")
+    slope: Parameter = parameter(2.0, low=1, low_open=True, high=3, high_open=True,
+                                 doc="3D density slope (power_law; 2 = isothermal)")
+    core_radius: Parameter = parameter(0.05, low=0, low_open=True, unit="arcsec",
+                                       doc="core radius (cored_isothermal)")
+
+
+@dataclass(frozen=True, kw_only=True)
+class MultipoleSettings:
+    m3_strength: Parameter = parameter(0.0, low=-0.2, high=0.2, doc="m = 3 multipole amplitude a_3")
+    m3_angle: Parameter = parameter(0.0, unit="deg", doc="m = 3 angle, relative to the mass major axis")
+    m4_strength: Parameter = parameter(0.0, low=-0.2, high=0.2, doc="m = 4 multipole amplitude a_4")
+    m4_angle: Parameter = parameter(0.0, unit="deg",
+                                    doc="m = 4 angle relative to the mass major axis (0 disky, 45 boxy)")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -209,7 +227,8 @@ class LensSettings:
     redshift: Parameter = parameter(low=0, low_open=True, doc="lens redshift")
     velocity_dispersion: Parameter = parameter(low=0, low_open=True, high=2000, unit="km/s",
                                                doc="stellar velocity dispersion (sets the Einstein radius)")
-    mass: MassSettings = table(MassSettings, doc="SIE mass")
+    mass: MassSettings = table(MassSettings, doc="mass profile")
+    multipoles: MultipoleSettings = table(MultipoleSettings, doc="multipole perturbations of the mass")
     shear: ShearSettings = table(ShearSettings, doc="external shear")
     light: LensLightSettings = table(LensLightSettings, doc="lens light (Sersic)")
 
@@ -566,6 +585,11 @@ def _check_consistency(recipe: Recipe) -> None:
             if missing:
                 raise RecipeError(origin, path, f"has no colour for band {missing[0]!r}",
                                   f"m_band - m_{ref} for each of " + ", ".join(repr(n) for n in others))
+    mass, defaults = recipe.lens.mass, MassSettings()
+    for key, model in (("slope", "power_law"), ("core_radius", "cored_isothermal")):
+        if mass.model != model and getattr(mass, key) != getattr(defaults, key):
+            raise RecipeError(origin, f"lens.mass.{key}", f"applies to model = '{model}' only, "
+                              f"not to model = '{mass.model}'", f"remove it, or set model = '{model}'")
     z_l_max = recipe.lens.redshift.support[1]
     z_s_min = recipe.source.redshift.support[0]
     if z_s_min <= z_l_max:

@@ -87,3 +87,24 @@ def test_python_dash_m_entry_point(tmp_path, small_recipe_text):
     result = subprocess.run([sys.executable, "-m", "simlens", "check", str(recipe)], capture_output=True, text=True)
     assert result.returncode == 2
     assert "lens.mass.q" in result.stderr and "Traceback" not in result.stderr
+
+
+@pytest.mark.parametrize("mass_table", [
+    'model = "power_law"\nslope = { uniform = [1.7, 2.4] }',
+    'model = "cored_isothermal"\ncore_radius = 0.1',
+])
+def test_recipes_choose_the_mass_model(small_recipe_text, tmp_path, mass_table):
+    text = small_recipe_text.replace("[lens.mass]\n", f"[lens.mass]\n{mass_table}\n")
+    text += "\n[lens.multipoles]\nm4_strength = 0.03\nm4_angle = 45.0\n"
+    recipe = simlens.parse_recipe(text).with_overrides(count=2)
+    simlens.run(recipe, tmp_path / "run")
+    truth = Table.read(tmp_path / "run" / "truth.ecsv")
+    model = mass_table.split('"')[1]
+    assert list(truth["mass_model"]) == [model, model]
+    assert np.all(truth["multipole_m4_strength"] == 0.03) and np.all(truth["multipole_m4_angle"] == 45.0)
+    system = simlens.PopulationSampler(recipe).draw(0)
+    names = [type(c).__name__ for c in system.mass_model().components]
+    assert names[0] == {"power_law": "PowerLaw", "cored_isothermal": "CoredIsothermal"}[model]
+    assert "Multipole" in names
+    if model == "power_law":
+        assert 1.7 <= truth["mass_slope"][0] <= 2.4

@@ -117,3 +117,13 @@ def test_demo_recipe_is_valid():
     recipe = load_recipe(Path(__file__).parents[1] / "recipes" / "demo.toml")
     assert recipe.count == 100 and recipe.survey.cutout_size == 64 and len(recipe.survey.bands) == 3
     assert recipe.survey.pixel_scale == 0.2
+
+
+def test_mass_model_keys_must_match_the_model():
+    text = edit("[lens.mass]\n", "[lens.mass]\nslope = 2.2\n")
+    with pytest.raises(RecipeError, match=r"lens.mass.slope.*power_law"):
+        parse_recipe(text, origin="bad.toml")
+    recipe = parse_recipe(edit("[lens.mass]\n", "[lens.mass]\nmodel = \"power_law\"\nslope = { uniform = [1.8, 2.3] }\n"))
+    assert recipe.lens.mass.model == "power_law"
+    with pytest.raises(RecipeError, match="'power_law'"):
+        parse_recipe(edit("[lens.mass]\n", "[lens.mass]\nmodel = \"powerlaw\"\n"))

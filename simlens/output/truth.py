@@ -13,7 +13,12 @@ ra, dec                    deg       lens centre (= cutout centre, CRVAL of the 
 z_lens, z_source                     redshifts
 velocity_dispersion        km / s    lens stellar velocity dispersion
 einstein_radius            arcsec    SIS/SIE Einstein radius from sigma and the distances
-mass_q, mass_angle         -, deg    SIE axis ratio and major-axis angle (CCW from +x)
+mass_model                           sie, power_law or cored_isothermal
+mass_q, mass_angle         -, deg    mass axis ratio and major-axis angle (CCW from +x)
+mass_slope                           3D density slope (2 unless power_law)
+mass_core_radius           arcsec    core radius (0 unless cored_isothermal)
+multipole_m{3,4}_strength            multipole amplitudes a_3, a_4 (0: none)
+multipole_m{3,4}_angle     deg       multipole angles relative to the mass major axis
 shear_gamma, shear_angle   -, deg    external shear
 lens_mag_<band>            mag       lens light, AB
 lens_half_light_radius     arcsec    circularised R_e of the lens light
@@ -52,7 +57,8 @@ __all__ = ["truth_row", "truth_table", "write_truth", "write_truth_table", "TRUT
 
 TRUTH_UNITS = {
     "ra": u.deg, "dec": u.deg, "velocity_dispersion": u.km / u.s, "einstein_radius": u.arcsec,
-    "mass_angle": u.deg, "shear_angle": u.deg, "lens_half_light_radius": u.arcsec, "lens_angle": u.deg,
+    "mass_angle": u.deg, "shear_angle": u.deg, "mass_core_radius": u.arcsec,
+    "multipole_m3_angle": u.deg, "multipole_m4_angle": u.deg, "lens_half_light_radius": u.arcsec, "lens_angle": u.deg,
     "source_half_light_radius": u.arcsec, "source_angle": u.deg, "source_x": u.arcsec, "source_y": u.arcsec,
 }
 
@@ -63,7 +69,13 @@ def truth_row(rendered: RenderedSystem, file: str, shard: str = "", shard_index:
         "system_id": s.system_id, "file": file, "shard": shard, "shard_index": shard_index,
         "ra": s.ra, "dec": s.dec,
         "z_lens": s.z_lens, "z_source": s.z_source, "velocity_dispersion": s.velocity_dispersion,
-        "einstein_radius": s.einstein_radius, "mass_q": s.mass_q, "mass_angle": s.mass_angle,
+        "einstein_radius": s.einstein_radius, "mass_model": s.mass_model_name,
+        "mass_q": s.mass_q, "mass_angle": s.mass_angle, "mass_slope": s.mass_slope,
+        "mass_core_radius": s.mass_core_radius,
+        "multipole_m3_strength": next((a for m, a, _ in s.multipoles if m == 3), 0.0),
+        "multipole_m3_angle": next((t for m, _, t in s.multipoles if m == 3), 0.0),
+        "multipole_m4_strength": next((a for m, a, _ in s.multipoles if m == 4), 0.0),
+        "multipole_m4_angle": next((t for m, _, t in s.multipoles if m == 4), 0.0),
         "shear_gamma": s.shear_gamma, "shear_angle": s.shear_angle,
     }
     names = [b.name for b in s.bands]
