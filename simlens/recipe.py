@@ -145,6 +145,8 @@ class SurveySettings:
     cutout_size: int = number(64, low=8, high=4096, integer=True, unit="pixel", doc="cutout side")
     supersampling: int = number(4, low=1, high=32, integer=True,
                                 doc="rays per pixel side for the lensed scene")
+    adaptive_supersampling: bool = flag(True, doc="re-trace pixels with 4x more rays per side where "
+                                                  "the lensed source varies within them")
     reference_band: str = text(optional=True, doc="band in which magnitudes are given (default: first)")
     bands: tuple = field(default=(), metadata=dict(kind="bands", doc="one table per band"))
 
