@@ -89,6 +89,8 @@ def run(recipe: Recipe, out: Path | str | None = None, *, overwrite: bool = Fals
     try:
         truth = vstack([read_truth_rows(out, recipe, spec) for spec in plan], metadata_conflicts="silent")
         write_truth_table(truth, out)
+        subhalos = vstack([read_truth_rows(out, recipe, spec, "SUBHALOS") for spec in plan], metadata_conflicts="silent")
+        write_truth_table(subhalos, out, stem="subhalos")
     except OSError as exc:
         raise _write_error(out, exc) from None
     seconds = time.perf_counter() - t_start
@@ -96,8 +98,9 @@ def run(recipe: Recipe, out: Path | str | None = None, *, overwrite: bool = Fals
     folder.complete({
         "grid_cells": sampler.n_grid_cells, "cosmology": repr(sampler.cosmology),
         "files": {"shards": "shards/shard_*.fits", "truth": ["truth.fits", "truth.ecsv"],
+                  "subhalos": ["subhalos.fits", "subhalos.ecsv"],
                   "cutouts": "cutouts/system_*.fits" if recipe.output.per_system_files else None},
-        "truth": {name: sha256_of(out / name) for name in ("truth.fits", "truth.ecsv")},
+        "truth": {name: sha256_of(out / name) for name in ("truth.fits", "truth.ecsv", "subhalos.fits", "subhalos.ecsv")},
         "seconds_last_session": round(seconds, 3),
         "engine": resolve_engine(engine, workers, scheduler), "workers": workers,
     })

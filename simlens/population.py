@@ -15,17 +15,17 @@ from typing import Mapping
 
 import numpy as np
 
-from .cosmology import einstein_radius_sis
+from .cosmology import critical_surface_density, einstein_radius_sis, ARCSEC_PER_RADIAN
 from .light import CompositeLight, LightProfile, Sersic
-from .mass import SIE, CoredIsothermal, ExternalShear, MassModel, Multipole, PowerLaw
+from .mass import SIE, CoredIsothermal, ExternalShear, MassModel, Multipole, PowerLaw, TruncatedSIS
 from .recipe import Recipe
 from .sampling import Grid, grid_cell, system_streams
 from .survey import BandConditions
 
-__all__ = ["System", "Clump", "PopulationSampler", "offset_on_sky"]
+__all__ = ["System", "Clump", "Subhalo", "PopulationSampler", "offset_on_sky"]
 
 # Named random streams of a system; append new names at the end to keep old draws unchanged.
-STREAMS = ("parameters", "placement", "clumps", "sky", "noise")
+STREAMS = ("parameters", "placement", "clumps", "sky", "noise", "subhalos")
 
 CLUMP_SERSIC_INDEX = 0.5  # Gaussian clumps
 
@@ -39,6 +39,18 @@ class Clump:
     y: float
     half_light_radius: float
     magnitudes: Mapping[str, float]
+
+
+@dataclass(frozen=True)
+class Subhalo:
+    """A truncated-SIS subhalo: position (arcsec, image plane), mass (M_sun), Einstein radius b and
+    truncation radius a (arcsec)."""
+
+    x: float
+    y: float
+    mass: float
+    einstein_radius: float
+    truncation_radius: float
 
 
 @dataclass(frozen=True)
@@ -60,6 +72,7 @@ class System:
     mass_slope: float
     mass_core_radius: float
     multipoles: tuple  # of (order, strength, angle relative to the mass major axis)
+    subhalos: tuple  # of Subhalo
     shear_gamma: float
     shear_angle: float
     lens_magnitudes: Mapping[str, float]
@@ -89,6 +102,9 @@ class System:
             lens = CoredIsothermal(einstein_radius=theta_e, core_radius=self.mass_core_radius, q=q, angle=angle)
         else:
             lens = SIE(einstein_radius=theta_e, q=q, angle=angle)
+        for sub in self.subhalos:
+            lens = lens + TruncatedSIS(einstein_radius=sub.einstein_radius, truncation_radius=sub.truncation_radius,
+                                       center=(sub.x, sub.y))
         for order, strength, relative_angle in self.multipoles:
             lens = lens + Multipole(order=order, strength=strength, einstein_radius=theta_e,
                                     angle=angle + relative_angle)
@@ -170,6 +186,25 @@ class PopulationSampler:
                 values[path] = float(param.draw(rng))
         return values, cell
 
+    def _draw_subhalos(self, v: dict, theta_e: float, z_lens: float, z_source: float, rng) -> tuple:
+        """Masses from dN/dm ~ m^slope on [mass_min, mass_max] (inverse CDF), positions uniform in
+        area in the annulus [annulus, annulus_outer] theta_E around the lens centre."""
+        n = int(round(v["lens.subhalos.count"]))
+        if n == 0:
+            return ()
+        settings = self.recipe.lens.subhalos
+        k = settings.mass_function_slope + 1.0
+        lo, hi = settings.mass_min ** k, settings.mass_max ** k
+        masses = (lo + rng.uniform(size=n) * (hi - lo)) ** (1.0 / k)
+        r_in, r_out = v["lens.subhalos.annulus"] * theta_e, v["lens.subhalos.annulus_outer"] * theta_e
+        radii = np.sqrt(r_in**2 + rng.uniform(size=n) * (r_out**2 - r_in**2))
+        phi = rng.uniform(0.0, 2.0 * math.pi, size=n)
+        sigma_cr = critical_surface_density(self.cosmology, z_lens, z_source).value  # M_sun / Mpc^2
+        d_l = self.cosmology.angular_diameter_distance(z_lens).value  # Mpc
+        sigma_cr_arcsec2 = sigma_cr * (d_l / ARCSEC_PER_RADIAN) ** 2  # M_sun / arcsec^2
+        return tuple(_subhalo(float(m), float(r * math.cos(p)), float(r * math.sin(p)), theta_e, sigma_cr_arcsec2)
+                     for m, r, p in zip(masses, radii, phi))
+
     def draw(self, system_id: int) -> System:
         if system_id < 0:
             raise ValueError(f"system_id must be >= 0, got {system_id}")
@@ -236,6 +271,7 @@ class PopulationSampler:
                 psf_beta=v[f"survey.bands.{b.name}.psf.beta"])
             for b in recipe.survey.bands)
         noise_seeds = tuple(int(s) for s in streams["noise"].integers(1, 2**31 - 1, size=len(bands)))
+        subhalos = self._draw_subhalos(v, theta_e, z_lens, z_source, streams["subhalos"])
 
         return System(
             system_id=int(system_id), grid_cell=cell, ra=ra, dec=dec, z_lens=z_lens, z_source=z_source,
@@ -246,6 +282,7 @@ class PopulationSampler:
             mass_core_radius=v["lens.mass.core_radius"] if recipe.lens.mass.model == "cored_isothermal" else 0.0,
             multipoles=tuple((m, v[f"lens.multipoles.m{m}_strength"], v[f"lens.multipoles.m{m}_angle"])
                              for m in (3, 4) if v[f"lens.multipoles.m{m}_strength"] != 0.0),
+            subhalos=subhalos,
             shear_gamma=v["lens.shear.gamma"], shear_angle=v["lens.shear.angle"],
             lens_magnitudes=magnitudes(v["lens.light.magnitude"], "lens.light.colors"),
             lens_half_light_radius=v["lens.light.half_light_radius"],
@@ -254,6 +291,13 @@ class PopulationSampler:
             source_disk_magnitudes=disk_mags, source_half_light_radius=source_r_e,
             source_sersic_index=v["source.sersic_index"], source_q=v["source.q"], source_angle=v["source.angle"],
             source_x=source_x, source_y=source_y, clumps=clumps, bands=bands, noise_seeds=noise_seeds)
+
+
+def _subhalo(mass: float, x: float, y: float, theta_e: float, sigma_cr_arcsec2: float) -> "Subhalo":
+    """A truncated SIS of total mass ``pi Sigma_cr b a`` with the tidal truncation ``a = sqrt(b theta_E)``
+    of an SIS subhalo in an SIS host (Metcalf & Madau 2001, from memory); solved for b."""
+    b = (mass / (math.pi * sigma_cr_arcsec2 * math.sqrt(theta_e))) ** (2.0 / 3.0)
+    return Subhalo(x=x, y=y, mass=mass, einstein_radius=b, truncation_radius=math.sqrt(b * theta_e))
 
 
 # When neither x/y nor radius_in_einstein_radii is given, sources fall uniformly in area inside one

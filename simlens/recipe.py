@@ -51,6 +51,7 @@ __all__ = [
     "ClumpSettings",
     "OutputSettings",
     "MultipoleSettings",
+    "SubhaloSettings",
     "load_recipe",
     "parse_recipe",
 ]
@@ -209,6 +210,18 @@ class MultipoleSettings:
 
 
 @dataclass(frozen=True, kw_only=True)
+class SubhaloSettings:
+    count: Parameter = parameter(0, low=0, high=1000, integer=True, doc="subhalos per lens")
+    mass_min: float = number(1e6, low=0, low_open=True, unit="M_sun", doc="lightest subhalo")
+    mass_max: float = number(1e10, low=0, low_open=True, unit="M_sun", doc="heaviest subhalo")
+    mass_function_slope: float = number(-1.9, low=-3, high=-1.01,
+                                        doc="dN/dm ~ m^slope (-1.9: Springel et al. 2008, from memory)")
+    annulus: Parameter = parameter(0.5, low=0, doc="inner radius of the placement annulus, in Einstein radii")
+    annulus_outer: Parameter = parameter(1.5, low=0, low_open=True,
+                                         doc="outer radius of the placement annulus, in Einstein radii")
+
+
+@dataclass(frozen=True, kw_only=True)
 class ShearSettings:
     gamma: Parameter = parameter(0.0, low=0, high=0.5, doc="external shear strength")
     angle: Parameter = parameter(0.0, unit="deg", doc="shear angle, CCW from +x")
@@ -231,6 +244,7 @@ class LensSettings:
                                                doc="stellar velocity dispersion (sets the Einstein radius)")
     mass: MassSettings = table(MassSettings, doc="mass profile")
     multipoles: MultipoleSettings = table(MultipoleSettings, doc="multipole perturbations of the mass")
+    subhalos: SubhaloSettings = table(SubhaloSettings, doc="truncated-SIS subhalos around the Einstein ring")
     shear: ShearSettings = table(ShearSettings, doc="external shear")
     light: LensLightSettings = table(LensLightSettings, doc="lens light (Sersic)")
 
@@ -592,6 +606,13 @@ def _check_consistency(recipe: Recipe) -> None:
         if mass.model != model and getattr(mass, key) != getattr(defaults, key):
             raise RecipeError(origin, f"lens.mass.{key}", f"applies to model = '{model}' only, "
                               f"not to model = '{mass.model}'", f"remove it, or set model = '{model}'")
+    subs = recipe.lens.subhalos
+    if not subs.mass_min < subs.mass_max:
+        raise RecipeError(origin, "lens.subhalos.mass_max", f"{subs.mass_max:g} is not above mass_min {subs.mass_min:g}",
+                          "mass_min < mass_max")
+    if subs.annulus.support[1] >= subs.annulus_outer.support[0]:
+        raise RecipeError(origin, "lens.subhalos.annulus_outer", "can be inside the inner radius (annulus)",
+                          "annulus_outer above annulus for every draw")
     z_l_max = recipe.lens.redshift.support[1]
     z_s_min = recipe.source.redshift.support[0]
     if z_s_min <= z_l_max:

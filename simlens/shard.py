@@ -19,7 +19,7 @@ from astropy.table import Table
 from .output.checksums import sha256_of
 from .output.cutout_fits import write_cutout
 from .output.shard_fits import write_shard
-from .output.truth import truth_table, truth_row
+from .output.truth import subhalo_rows, subhalo_table, truth_row, truth_table
 from .population import PopulationSampler
 from .recipe import Recipe
 from .render import render_system
@@ -76,7 +76,7 @@ def render_shard(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
         cubes["SOURCE"] = np.zeros(shape, np.float32)
         cubes["LENS"] = np.zeros(shape, np.float32)
     psf_cube = None
-    rows, files = [], {}
+    rows, subhalos, files = [], [], {}
     shard_file = shard_path(recipe, spec.index)
     timings = {"sampling": 0.0, "ray_tracing": 0.0, "scene": 0.0, "galsim_stage": 0.0,
                "image_finding": 0.0, "writing": 0.0}
@@ -104,6 +104,7 @@ def render_shard(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
             write_cutout(rendered, run_folder / relative, run_name=recipe.name)
             files[relative] = None
         rows.append(truth_row(rendered, relative, shard=shard_file, shard_index=k))
+        subhalos += subhalo_rows(rendered)
         timings["writing"] += time.perf_counter() - t1
     t2 = time.perf_counter()
     cubes["PSF"] = psf_cube
@@ -114,7 +115,7 @@ def render_shard(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
               "PIXSCALE": (survey.pixel_scale, "[arcsec/pixel] pixel scale"),
               "BUNIT": ("adu", "units of IMAGES, SOURCE, LENS"),
               "MASKTHR": (output.mask_threshold, "MASK: source > MASKTHR x pixel noise sigma")}
-    write_shard(run_folder / shard_file, cubes, truth_table(rows), header)
+    write_shard(run_folder / shard_file, cubes, truth_table(rows), header, extra_tables={"SUBHALOS": subhalo_table(subhalos)})
     checksums = {shard_file: sha256_of(run_folder / shard_file)}
     for relative in files:
         checksums[relative] = sha256_of(run_folder / relative)
@@ -122,5 +123,5 @@ def render_shard(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
     return ShardResult(spec=spec, files=checksums, timings=timings)
 
 
-def read_truth_rows(run_folder: Path, recipe: Recipe, spec: ShardSpec) -> Table:
-    return Table.read(Path(run_folder) / shard_path(recipe, spec.index), hdu="TRUTH")
+def read_truth_rows(run_folder: Path, recipe: Recipe, spec: ShardSpec, table: str = "TRUTH") -> Table:
+    return Table.read(Path(run_folder) / shard_path(recipe, spec.index), hdu=table)

@@ -12,7 +12,7 @@ from astropy import constants
 
 from simlens.cosmology import ARCSEC_PER_RADIAN
 from simlens.mass import (NFW, SIE, SIS, CompositeMass, ConvergenceSheet, CoredIsothermal, ExternalShear,
-                          Multipole, PointMass, PowerLaw)
+                          Multipole, PointMass, PowerLaw, SersicMass, TruncatedSIS)
 
 RNG = np.random.default_rng(1)
 # Test positions away from the singular centres (arcsec).
@@ -37,6 +37,8 @@ MODELS = [
     NFW(kappa_s=0.4, scale_radius=1.5, ellipticity=0.2, angle=35.0, center=(0.1, 0.0)),
     Multipole(order=4, strength=0.04, einstein_radius=1.2, angle=15.0),
     Multipole(order=3, strength=0.02, einstein_radius=1.0, angle=-60.0),
+    TruncatedSIS(einstein_radius=0.05, truncation_radius=0.3, center=(0.9, 0.4)),
+    SersicMass(kappa_e=0.4, half_light_radius=0.9, sersic_index=3.0, q=0.65, angle=20.0),
 ]
 
 

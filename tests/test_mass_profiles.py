@@ -235,3 +235,37 @@ def test_multiplane_rejects_misordered_planes():
                        z_source=2.0, cosmology=Planck18)
     with pytest.raises(TypeError):
         MultiPlaneLens(planes=(SIS(einstein_radius=1.0),), redshifts=(0.5,), z_source=2.0, cosmology=Planck18).potential(1.0, 0.0)
+
+
+@pytest.mark.parametrize("n", [1.0, 4.0])
+def test_sersic_mass_deflection_equals_enclosed_mass(n):
+    # Circular Sersic: alpha(r) = M(<r) / (pi r) in convergence units, with M(<r) from the regularised
+    # incomplete gamma function (Graham & Driver 2005, eq. 2); to 1e-8.
+    from simlens.mass import SersicMass
+
+    stars = SersicMass(kappa_e=0.6, half_light_radius=0.8, sersic_index=n)
+    r = np.array([0.01, 0.2, 0.8, 3.0, 10.0])
+    np.testing.assert_allclose(stars.deflection(r, 0 * r)[0], stars.enclosed_mass_circular(r) / (math.pi * r), rtol=1e-8)
+
+
+def test_sersic_mass_follows_the_light():
+    from simlens.light import Sersic
+    from simlens.mass import SersicMass
+
+    light = Sersic(flux=5e4, half_light_radius=0.7, sersic_index=4.0, q=0.6, angle=35.0, center=(0.1, 0.0))
+    stars = SersicMass.from_light(light, mass_to_light=2.0, sigma_cr_counts=3e4)
+    x, y = np.array(POINTS).T
+    np.testing.assert_allclose(stars.convergence(x, y), 2.0 * light.surface_brightness(x, y) / 3e4, rtol=1e-12)
+
+
+def test_truncated_sis_has_finite_mass():
+    # Pseudo-Jaffe: total mass pi b a (convergence units), so far away it deflects like a point mass
+    # of Einstein radius sqrt(b a) (Keeton 2001, sect. 3.3); near the centre like the SIS.
+    from simlens.mass import TruncatedSIS
+
+    sub = TruncatedSIS(einstein_radius=0.1, truncation_radius=0.5)
+    far = float(sub.deflection(200.0, 0.0)[0])
+    assert far == pytest.approx(0.1 * 0.5 / 200.0, rel=1e-2)
+    assert float(sub.deflection(1e-4, 0.0)[0]) == pytest.approx(0.1, rel=1e-3)
+    enclosed = integrate.quad(lambda r: float(sub.convergence(r, 0.0)) * 2 * math.pi * r, 0, np.inf, limit=400)[0]
+    assert enclosed == pytest.approx(math.pi * 0.1 * 0.5, rel=1e-6)

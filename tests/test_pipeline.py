@@ -108,3 +108,17 @@ def test_recipes_choose_the_mass_model(small_recipe_text, tmp_path, mass_table):
     assert "Multipole" in names
     if model == "power_law":
         assert 1.7 <= truth["mass_slope"][0] <= 2.4
+
+
+def test_subhalos_are_recorded_in_the_truth(small_recipe_text, tmp_path):
+    text = small_recipe_text + "\n[lens.subhalos]\ncount = { choice = [0, 3] }\nmass_min = 1e8\nmass_max = 1e9\n"
+    recipe = simlens.parse_recipe(text).with_overrides(count=4)
+    simlens.run(recipe, tmp_path / "run")
+    truth = Table.read(tmp_path / "run" / "truth.fits")
+    subhalos = Table.read(tmp_path / "run" / "subhalos.ecsv")
+    assert len(subhalos) == int(truth["n_subhalos"].sum()) > 0
+    for row in truth:
+        mine = subhalos[subhalos["system_id"] == row["system_id"]]
+        assert len(mine) == row["n_subhalos"]
+        assert np.sum(mine["mass"]) == pytest.approx(row["subhalo_mass_total"])
+    assert subhalos["mass"].unit == "solMass"

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
 from scipy import stats
@@ -80,3 +82,28 @@ def test_clump_fluxes_add_up_to_the_source_magnitude(small_recipe):
         light = with_clumps.source_light(band)
         expected = with_clumps.band(band).counts_from_magnitude(with_clumps.source_magnitude(band))
         assert light.flux == pytest.approx(expected, rel=1e-10)
+
+
+def test_subhalo_population(small_recipe_text):
+    # Masses follow dN/dm ~ m^-1.9 on [1e7, 1e10] (KS test against that law's CDF); positions fall in
+    # the annulus; each subhalo's total mass pi Sigma_cr b a equals its drawn mass.
+    from astropy.cosmology import Planck18
+
+    from simlens.cosmology import ARCSEC_PER_RADIAN, critical_surface_density
+
+    text = small_recipe_text + "\n[lens.subhalos]\ncount = 40\nmass_min = 1e7\nmass_max = 1e10\n"
+    sampler = PopulationSampler(parse_recipe(text))
+    system = sampler.draw(2)
+    assert len(system.subhalos) == 40
+    masses = np.array([h.mass for h in system.subhalos] + [h.mass for h in sampler.draw(3).subhalos])
+    k = -0.9
+    cdf = lambda m: (np.clip(m, 1e7, 1e10) ** k - 1e7**k) / (1e10**k - 1e7**k)
+    assert stats.kstest(masses, cdf).pvalue > 1e-3
+    r = np.array([np.hypot(h.x, h.y) for h in system.subhalos]) / system.einstein_radius
+    assert r.min() >= 0.5 and r.max() <= 1.5
+    sigma_cr = critical_surface_density(Planck18, system.z_lens, system.z_source).value
+    d_l = Planck18.angular_diameter_distance(system.z_lens).value
+    for h in system.subhalos[:5]:
+        total = math.pi * h.einstein_radius * h.truncation_radius * sigma_cr * (d_l / ARCSEC_PER_RADIAN) ** 2
+        assert total == pytest.approx(h.mass, rel=1e-10)
+    assert sum(type(c).__name__ == "TruncatedSIS" for c in system.mass_model().components) == 40

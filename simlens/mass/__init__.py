@@ -17,7 +17,9 @@ from .multipole import Multipole
 from .nfw import NFW
 from .point_mass import PointMass
 from .power_law import PowerLaw
+from .sersic_mass import SersicMass
 from .sheets import ConvergenceSheet, ExternalShear
+from .truncated_isothermal import TruncatedSIS
 
 __all__ = ["MassModel", "CompositeMass", "SIS", "SIE", "PowerLaw", "CoredIsothermal", "NFW", "Multipole",
-           "PointMass", "ExternalShear", "ConvergenceSheet"]
+           "SersicMass", "TruncatedSIS", "PointMass", "ExternalShear", "ConvergenceSheet"]

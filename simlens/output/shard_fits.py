@@ -12,6 +12,7 @@ LENS        (n_systems, n_bands, ny, nx) float32    noiseless lens light (if out
 MASK        (n_systems, n_bands, ny, nx) uint8      1 where the lensed source exceeds MASKTHR x sigma
 PSF         (n_systems, n_bands, 25, 25) float32    effective PSF per system and band, unit sum
 TRUTH       table, one row per system               the truth catalogue's rows for this shard
+SUBHALOS    table, one row per subhalo              subhalos of this shard's lenses (by system_id)
 ==========  ======================================  =================================================
 
 Each system's WCS is the per-system cutout's (:func:`simlens.output.cutout_wcs` with the truth row's
@@ -34,7 +35,7 @@ __all__ = ["write_shard", "read_shard", "PLANES"]
 PLANES = ("IMAGES", "SOURCE", "LENS", "MASK", "PSF")
 
 
-def write_shard(path: Path, cubes: dict, truth: Table, header: dict) -> None:
+def write_shard(path: Path, cubes: dict, truth: Table, header: dict, extra_tables: dict | None = None) -> None:
     """Write one shard file atomically.  ``cubes`` maps EXTNAMEs of :data:`PLANES` to arrays."""
     primary = fits.PrimaryHDU()
     for key, value in header.items():
@@ -44,6 +45,8 @@ def write_shard(path: Path, cubes: dict, truth: Table, header: dict) -> None:
         if name in cubes:
             hdus.append(fits.ImageHDU(data=cubes[name], name=name))
     hdus.append(fits.BinTableHDU(truth, name="TRUTH"))
+    for name, table in (extra_tables or {}).items():
+        hdus.append(fits.BinTableHDU(table, name=name))
     with atomic_path(Path(path)) as tmp:
         fits.HDUList(hdus).writeto(tmp)
 

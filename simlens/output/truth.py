@@ -19,6 +19,8 @@ mass_slope                           3D density slope (2 unless power_law)
 mass_core_radius           arcsec    core radius (0 unless cored_isothermal)
 multipole_m{3,4}_strength            multipole amplitudes a_3, a_4 (0: none)
 multipole_m{3,4}_angle     deg       multipole angles relative to the mass major axis
+n_subhalos                           subhalos of this lens (each a row of subhalos.ecsv)
+subhalo_mass_total         M_sun     their total mass
 shear_gamma, shear_angle   -, deg    external shear
 lens_mag_<band>            mag       lens light, AB
 lens_half_light_radius     arcsec    circularised R_e of the lens light
@@ -48,6 +50,7 @@ from pathlib import Path
 from typing import Sequence
 
 import astropy.units as u
+import numpy as np
 from astropy.table import Table
 
 from ..render import RenderedSystem
@@ -58,7 +61,7 @@ __all__ = ["truth_row", "truth_table", "write_truth", "write_truth_table", "TRUT
 TRUTH_UNITS = {
     "ra": u.deg, "dec": u.deg, "velocity_dispersion": u.km / u.s, "einstein_radius": u.arcsec,
     "mass_angle": u.deg, "shear_angle": u.deg, "mass_core_radius": u.arcsec,
-    "multipole_m3_angle": u.deg, "multipole_m4_angle": u.deg, "lens_half_light_radius": u.arcsec, "lens_angle": u.deg,
+    "multipole_m3_angle": u.deg, "multipole_m4_angle": u.deg, "subhalo_mass_total": u.M_sun, "lens_half_light_radius": u.arcsec, "lens_angle": u.deg,
     "source_half_light_radius": u.arcsec, "source_angle": u.deg, "source_x": u.arcsec, "source_y": u.arcsec,
 }
 
@@ -76,6 +79,7 @@ def truth_row(rendered: RenderedSystem, file: str, shard: str = "", shard_index:
         "multipole_m3_angle": next((t for m, _, t in s.multipoles if m == 3), 0.0),
         "multipole_m4_strength": next((a for m, a, _ in s.multipoles if m == 4), 0.0),
         "multipole_m4_angle": next((t for m, _, t in s.multipoles if m == 4), 0.0),
+        "n_subhalos": len(s.subhalos), "subhalo_mass_total": float(sum(h.mass for h in s.subhalos)),
         "shear_gamma": s.shear_gamma, "shear_angle": s.shear_angle,
     }
     names = [b.name for b in s.bands]
@@ -93,6 +97,28 @@ def truth_row(rendered: RenderedSystem, file: str, shard: str = "", shard_index:
     row.update({f"magzero_{b.name}": b.magzero for b in s.bands})
     row.update({f"sky_level_{b.name}": b.sky_level for b in s.bands})
     return row
+
+
+SUBHALO_COLUMNS = ("system_id", "x", "y", "mass", "einstein_radius", "truncation_radius")
+SUBHALO_UNITS = {"x": u.arcsec, "y": u.arcsec, "mass": u.M_sun, "einstein_radius": u.arcsec,
+                 "truncation_radius": u.arcsec}
+
+
+def subhalo_rows(rendered: RenderedSystem) -> list[dict]:
+    return [{"system_id": rendered.system.system_id, "x": h.x, "y": h.y, "mass": h.mass,
+             "einstein_radius": h.einstein_radius, "truncation_radius": h.truncation_radius}
+            for h in rendered.system.subhalos]
+
+
+def subhalo_table(rows: Sequence[dict]) -> Table:
+    """Subhalos keyed by system_id (positions in the image plane, arcsec from the lens centre)."""
+    if rows:
+        table = Table(rows=list(rows), names=SUBHALO_COLUMNS)
+    else:
+        table = Table(names=SUBHALO_COLUMNS, dtype=(np.int64,) + (float,) * 5)
+    for name, unit in SUBHALO_UNITS.items():
+        table[name].unit = unit
+    return table
 
 
 def truth_table(rows: Sequence[dict]) -> Table:
