@@ -18,11 +18,10 @@ from pathlib import Path
 from typing import Any, Callable
 
 import numpy as np
-from astropy.table import vstack
 
 from .engines import resolve_engine, run_tasks
 from .errors import SimlensError
-from .output.truth import write_truth_table
+from .output.catalogue import write_catalogue
 from .output.checksums import sha256_of
 from .population import PopulationSampler
 from .recipe import Recipe
@@ -86,11 +85,11 @@ def run(recipe: Recipe, out: Path | str | None = None, *, overwrite: bool = Fals
     finally:
         if bar is not None:
             bar.close()
+    reference = f"arc_snr_{recipe.reference_band}"
     try:
-        truth = vstack([read_truth_rows(out, recipe, spec) for spec in plan], metadata_conflicts="silent")
-        write_truth_table(truth, out)
-        subhalos = vstack([read_truth_rows(out, recipe, spec, "SUBHALOS") for spec in plan], metadata_conflicts="silent")
-        write_truth_table(subhalos, out, stem="subhalos")
+        summary_columns = write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i]), len(plan), out, "truth",
+                                          keep=("n_images", "einstein_radius", reference))
+        write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i], "SUBHALOS"), len(plan), out, "subhalos")
     except OSError as exc:
         raise _write_error(out, exc) from None
     seconds = time.perf_counter() - t_start
@@ -104,12 +103,11 @@ def run(recipe: Recipe, out: Path | str | None = None, *, overwrite: bool = Fals
         "seconds_last_session": round(seconds, 3),
         "engine": resolve_engine(engine, workers, scheduler), "workers": workers,
     })
-    snr = truth[f"arc_snr_{recipe.reference_band}"]
     return RunSummary(folder=out, count=recipe.count, rendered_now=recipe.count - done_systems, seconds=seconds,
                       timings=dict(folder.manifest.get("seconds_by_stage", {})),
-                      n_multiply_imaged=int((truth["n_images"] >= 2).sum()),
-                      median_einstein_radius=float(np.median(truth["einstein_radius"])),
-                      median_arc_snr=float(np.median(snr)))
+                      n_multiply_imaged=int((summary_columns["n_images"] >= 2).sum()),
+                      median_einstein_radius=float(np.median(summary_columns["einstein_radius"])),
+                      median_arc_snr=float(np.median(summary_columns[reference])))
 
 
 def _write_error(out: Path, exc: OSError) -> SimlensError:
