@@ -31,7 +31,6 @@ LENS = SIE(einstein_radius=1.2, q=0.6, angle=0.0) + ExternalShear(gamma=0.03, an
 
 def caustic_points():
     """A cusp and a fold point of the tangential caustic (found numerically on the critical curve)."""
-    phi = np.linspace(0, 2 * np.pi, 4000, endpoint=False)
     radius = np.linspace(0.3, 3.0, 3000)
     points = []
     for angle in (0.0, 0.6):  # 0: along the major axis (cusp), 0.6 rad: a fold
@@ -78,7 +77,7 @@ def main():
             times[name] += seconds
             row.append((abs(image.sum() / reference.sum() - 1), np.abs(image - reference).max() / reference.max()))
         rows.append(row)
-    print(f"lensed-source images, 48x48 px of 0.2\", Moffat 0.7\"; reference 16x16 rays per pixel")
+    print("lensed-source images, 48x48 px of 0.2\", Moffat 0.7\"; reference 16x16 rays per pixel")
     print(f"{'case':<22}" + "".join(f"{name[:9] + ' flux':>18}{name[:9] + ' worst':>18}" for name in settings))
     for row in rows:
         print(f"{row[0]:<22}" + "".join(f"{f:>18.2e}{w:>18.2e}" for f, w in row[1:]))

@@ -31,7 +31,7 @@ import galsim
 import numpy as np
 from scipy import fft as scipy_fft
 
-from .raytrace import PixelGrid, Scene
+from .raytrace import Scene
 from .survey import BandConditions
 
 __all__ = ["psf_profile", "psf_kernel", "effective_psf_image", "ObservedBand", "observe_scene",

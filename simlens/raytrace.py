@@ -76,16 +76,6 @@ class PixelGrid:
         """Centres of the cutout's pixels along one axis (arcsec)."""
         return (np.arange(self.size) - 0.5 * (self.size - 1)) * self.pixel_scale
 
-    def fine_coordinates(self) -> tuple[np.ndarray, np.ndarray]:
-        axis = self.fine_axis()
-        x, y = np.meshgrid(axis, axis)  # [row, col] = [y, x]
-        return x, y
-
-    def bin_to_pixels(self, fine: np.ndarray) -> np.ndarray:
-        """Sum ``supersampling x supersampling`` blocks: fine padded grid -> padded pixels."""
-        n, ss = self.padded_size, self.supersampling
-        return fine.reshape(n, ss, n, ss).sum(axis=(1, 3))
-
     def crop(self, padded: np.ndarray) -> np.ndarray:
         """The cutout from a padded pixel image."""
         p = self.padding

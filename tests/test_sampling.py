@@ -10,7 +10,7 @@ from scipy import stats
 
 from simlens.population import PopulationSampler
 from simlens.recipe import parse_recipe
-from simlens.sampling import Choice, Grid, LogUniform, TruncatedNormal, Uniform, grid_cell, system_streams
+from simlens.sampling import Choice, LogUniform, TruncatedNormal, Uniform, grid_cell, system_streams
 
 from .conftest import SMALL_RECIPE
 
