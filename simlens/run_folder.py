@@ -166,7 +166,7 @@ class VerifyReport:
         return self.complete_run and not self.missing and not self.damaged
 
     def describe(self) -> str:
-        lines = [f"{self.folder}: {self.planned} shards planned, "
+        lines = [f"{self.folder}: {self.planned} shard{'' if self.planned == 1 else 's'} planned, "
                  f"{self.planned - len(self.missing)} finished; run {'complete' if self.complete_run else 'unfinished'}"]
         if self.missing:
             shown = ", ".join(str(i) for i in self.missing[:20]) + (" ..." if len(self.missing) > 20 else "")
