@@ -53,8 +53,8 @@ def write_catalogue(read_part: Callable[[int], Table], n_parts: int, folder: Pat
             row_bytes = None
             for i in range(n_parts):  # pass 2: stream
                 part = _with_widths(read_part(i), widths)
-                for name in keep:
-                    kept[name].append(np.asarray(part[name]))
+                for name in keep:  # a copy: a view would keep the whole shard's table alive
+                    kept[name].append(np.array(part[name], copy=True))
                 text = io.StringIO()
                 part.write(text, format="ascii.ecsv")
                 lines = text.getvalue().splitlines(keepends=True)
