@@ -58,7 +58,9 @@ def render(source, supersampling, **options):
     grid = PixelGrid(size=48, pixel_scale=0.2, supersampling=supersampling, padding=padding_for(0.7, 0.2))
     t0 = time.perf_counter()
     rays, sampling = observation_rays(LENS, grid, 0.7)
-    scene = render_scene("r", rays, None, source, ComponentImages(rays, sampling, **options))
+    components = ComponentImages(rays, sampling, **options)
+    components.prepare_lensed(source)  # as render_system does
+    scene = render_scene("r", rays, None, source, components)
     image = observe_scene(scene, BAND, noise_seed=1).lensed_source
     return image, time.perf_counter() - t0
 

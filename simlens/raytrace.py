@@ -242,6 +242,7 @@ class ComponentImages:
         self.adaptive = adaptive
         self.refined_pixels = 0  # how many pixel refinements were made (for benchmarks)
         self._cache: dict = {}
+        self._shared_refinement = None  # (flagged pixels, their rays) from prepare_lensed
 
     def _reduce(self, fine: np.ndarray) -> np.ndarray:
         factor = self.ray_map.grid.supersampling // self.sampling
@@ -257,10 +258,12 @@ class ComponentImages:
         inner = profile.surface_brightness(x, y) * grid.fine_pixel_area
         if not lensed and hasattr(profile, "center"):
             refine_centre(inner, profile, rm.axis, grid.fine_scale)
-        flagged = self._flag(inner) if lensed and self.adaptive else None
+        refinement = None
+        if lensed and self.adaptive:
+            refinement = self._shared_refinement or self._trace_refinement(self._flag(inner))
         inner = self._reduce(inner)
-        if flagged is not None and flagged[0].size:
-            self._refine(inner, profile, flagged)
+        if refinement is not None and refinement[0][0].size:
+            self._refine(inner, profile, refinement)
         if rm.outer is None:
             return inner
         ox, oy, obx, oby = rm.outer
@@ -281,9 +284,24 @@ class ComponentImages:
             return np.empty(0, int), np.empty(0, int)
         return np.nonzero(spread > ADAPTIVE_TOLERANCE * peak)
 
-    def _refine(self, reduced: np.ndarray, profile: LightProfile, flagged) -> None:
-        """Re-trace the flagged pixels with ADAPTIVE_FACTOR times more rays per side (in place)."""
-        rm, grid, s = self.ray_map, self.ray_map.grid, self.sampling
+    def prepare_lensed(self, source: LightProfile) -> None:
+        """Flag the pixels to refine once, from the whole lensed ``source`` (all its components), and
+        trace their rays once; every lensed component is then refined on those pixels.  Call before
+        rendering a system's bands (``render_system`` does); without it each component is flagged
+        and traced on its own."""
+        if not self.adaptive:
+            return
+        rm, grid = self.ray_map, self.ray_map.grid
+        parts = source.components if hasattr(source, "components") else (source,)
+        total = np.zeros_like(rm.beta_x)
+        for part in parts:
+            if part.flux > 0 and not isinstance(part, PointSource):
+                total += part.surface_brightness(rm.beta_x, rm.beta_y) * grid.fine_pixel_area
+        self._shared_refinement = self._trace_refinement(self._flag(total))
+
+    def _trace_refinement(self, flagged):
+        """The rays of the flagged pixels, ADAPTIVE_FACTOR times more per side."""
+        rm, grid = self.ray_map, self.ray_map.grid
         rows, cols = flagged
         per_side = grid.supersampling * ADAPTIVE_FACTOR
         offsets = ((np.arange(per_side) + 0.5) / per_side - 0.5) * grid.pixel_scale
@@ -293,7 +311,15 @@ class ComponentImages:
         gx = cx[:, None, None] + offsets[None, None, :]
         gy = cy[:, None, None] + offsets[None, :, None]
         gx, gy = np.broadcast_arrays(gx, gy)
-        bx, by = rm.mass.ray_shoot(gx, gy)
+        if rows.size == 0:
+            return flagged, (gx, gy)
+        return flagged, rm.mass.ray_shoot(gx, gy)
+
+    def _refine(self, reduced: np.ndarray, profile: LightProfile, refinement) -> None:
+        """Replace the flagged pixels by the average over their refined rays (in place)."""
+        grid, s = self.ray_map.grid, self.sampling
+        (rows, cols), (bx, by) = refinement
+        per_side = grid.supersampling * ADAPTIVE_FACTOR
         sub_area = (grid.pixel_scale / per_side) ** 2
         sb = profile.surface_brightness(bx, by) * sub_area  # (n, per_side, per_side) as [row, col]
         k = per_side // s
