@@ -11,7 +11,7 @@
 2. Deflection per ray: simlens.mass.SIE.deflection against the bare closed-form numpy expression
    on 65,536 rays (goal <= 1.2x).
 
-Run: python bench/bench_throughput.py [--n 100]
+Run: python bench/bench_throughput.py [--n 100] [--rounds 3]
 """
 
 from __future__ import annotations
@@ -92,29 +92,39 @@ def deflection_ratio(repeats: int = 50) -> tuple[float, float, float]:
 def main():
     parser = argparse.ArgumentParser()
     parser.add_argument("--n", type=int, default=100)
+    parser.add_argument("--rounds", type=int, default=3)
     args = parser.parse_args()
     recipe = demo_without_clumps(args.n)
     sampler = simlens.PopulationSampler(recipe)
     systems = [sampler.draw(i) for i in range(args.n)]
+    rounds = {"simlens": [], "fixed": [], "galsim": []}
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
         (tmp / "shards").mkdir()
         render_shard(recipe, tmp, ShardSpec(0, 0, min(5, args.n)))  # warm up imports and caches
         galsim_route(systems[:5], recipe.survey.cutout_size, tmp / "warm.fits")
-        t0 = time.perf_counter()
-        result = render_shard(recipe, tmp, ShardSpec(0, 0, args.n))
-        t1 = time.perf_counter()
-        galsim_route(systems, recipe.survey.cutout_size, tmp / "galsim.fits")
-        t2 = time.perf_counter()
-        render_shard(demo_without_clumps(args.n, adaptive=False), tmp, ShardSpec(0, 0, args.n))
-        t3 = time.perf_counter()
-    ours, theirs, fixed = t1 - t0, t2 - t1, t3 - t2
-    print(f"{args.n} systems x 3 bands, 64x64, lens light + lensed Sersic source, Moffat, CCD noise, one shard file")
-    print(f"  simlens  {ours / args.n * 1e3:7.2f} ms per system (defaults: 4x4 rays, adaptive 16x16 where needed)")
-    print(f"  simlens  {fixed / args.n * 1e3:7.2f} ms per system (adaptive_supersampling = false)")
-    print(f"  galsim   {theirs / args.n * 1e3:7.2f} ms per system (same scenes unlensed, drawn directly)")
-    print(f"  ratio simlens / galsim: {ours / theirs:.2f} with defaults, {fixed / theirs:.2f} without adaptive "
-          f"refinement (goal <= 1.0)")
+        fixed_recipe = demo_without_clumps(args.n, adaptive=False)
+        for _ in range(args.rounds):  # interleaved, so that machine noise hits every route alike
+            t0 = time.perf_counter()
+            result = render_shard(recipe, tmp, ShardSpec(0, 0, args.n))
+            t1 = time.perf_counter()
+            galsim_route(systems, recipe.survey.cutout_size, tmp / "galsim.fits")
+            t2 = time.perf_counter()
+            render_shard(fixed_recipe, tmp, ShardSpec(0, 0, args.n))
+            t3 = time.perf_counter()
+            rounds["simlens"].append(t1 - t0)
+            rounds["galsim"].append(t2 - t1)
+            rounds["fixed"].append(t3 - t2)
+    ratio = float(np.median(np.array(rounds["simlens"]) / np.array(rounds["galsim"])))
+    ratio_fixed = float(np.median(np.array(rounds["fixed"]) / np.array(rounds["galsim"])))
+    per = {k: float(np.median(v)) / args.n * 1e3 for k, v in rounds.items()}
+    print(f"{args.n} systems x 3 bands, 64x64, lens light + lensed Sersic source, Moffat, CCD noise, one shard file;"
+          f" medians of {args.rounds} interleaved rounds")
+    print(f"  simlens  {per['simlens']:7.2f} ms per system (defaults: 4x4 rays, adaptive 16x16 where needed)")
+    print(f"  simlens  {per['fixed']:7.2f} ms per system (adaptive_supersampling = false)")
+    print(f"  galsim   {per['galsim']:7.2f} ms per system (same scenes unlensed, drawn directly)")
+    print(f"  ratio simlens / galsim: {ratio:.2f} with defaults, {ratio_fixed:.2f} without adaptive refinement "
+          f"(goal <= 1.0)")
     total = sum(result.timings.values())
     print("  where simlens's time goes: " + ", ".join(
         f"{k} {v / total:.0%}" for k, v in sorted(result.timings.items(), key=lambda kv: -kv[1])))

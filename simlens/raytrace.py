@@ -215,7 +215,7 @@ def refine_centre(unit: np.ndarray, profile: LightProfile, axis: np.ndarray, sca
 # clump is sampled by few rays: small sources, high magnification gradients near critical curves.
 # Measured against 16x16 rays everywhere in bench/bench_adaptive.py.
 ADAPTIVE_FACTOR = 4
-ADAPTIVE_TOLERANCE = 0.01
+ADAPTIVE_TOLERANCE = 0.03
 
 
 class ComponentImages:
