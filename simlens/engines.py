@@ -11,9 +11,11 @@ finish; the caller records them.  Results never depend on the engine.
   ``LocalCluster`` of ``workers`` single-threaded processes.  Needs ``pip install 'simlens[dask]'``.
   The LocalCluster's workers start without Dask's default ``MALLOC_TRIM_THRESHOLD_=65536``: setting
   it switches off glibc's adaptive mmap threshold, so every large temporary numpy array is a fresh
-  mmap, and simlens's array work ran 2x slower (measured; bench/bench_parallel.py).  Workers of a
-  cluster you start yourself should be configured the same way
-  (``distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_: null``).
+  mmap, and simlens's array work ran 2x slower.  Its statistical profiler (sampling every worker
+  thread every 10 ms) is switched off too: it cost about 12 % (both measured with
+  bench/bench_parallel.py).  Workers of a cluster you start yourself should be configured the same
+  way (``distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_: null`` and
+  ``distributed.worker.profile.enabled: false``).
   On a multi-machine cluster the run folder must be on a file system every worker can write to.
 """
 
@@ -77,7 +79,8 @@ def _run_on_dask(function: Callable, tasks: Iterable, workers: int, scheduler: s
     cluster = None
     try:
         if scheduler is None:
-            with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None}):
+            with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None,
+                                  "distributed.worker.profile.enabled": False}):
                 cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                                        dashboard_address=None)
             client = Client(cluster)
