@@ -32,6 +32,18 @@ def data_checksums(folder: Path) -> dict:
     return {str(p.relative_to(folder)): sha256_of(p) for p in sorted(folder.rglob("*.fits")) + [folder / "truth.ecsv"]}
 
 
+def wait_for_a_finished_shard(out: Path, timeout: float = 120.0) -> None:
+    """Poll the manifest of a run in progress until it records at least one shard."""
+    deadline = time.time() + timeout
+    while time.time() < deadline:
+        try:
+            if json.loads((out / "manifest.json").read_text())["shards"]:
+                return
+        except (OSError, ValueError, KeyError):
+            pass
+        time.sleep(0.02)
+
+
 @pytest.fixture(scope="module")
 def reference_run(tmp_path_factory):
     recipe = parse_recipe(SHARDED, origin="sharded.toml")
@@ -145,14 +157,7 @@ def test_sigkill_then_same_command_gives_the_uninterrupted_result(reference_run,
     out = tmp_path / "run"
     command = [sys.executable, "-m", "simlens", "make", str(recipe_file), "--out", str(out), "--quiet"]
     process = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    deadline = time.time() + 120
-    while time.time() < deadline:  # wait until at least one shard is recorded
-        try:
-            if json.loads((out / "manifest.json").read_text())["shards"]:
-                break
-        except (OSError, ValueError, KeyError):
-            pass
-        time.sleep(0.02)
+    wait_for_a_finished_shard(out)
     os.kill(process.pid, signal.SIGKILL)
     process.wait()
     manifest = json.loads((out / "manifest.json").read_text())
@@ -172,14 +177,7 @@ def test_ctrl_c_stops_cleanly_and_the_same_command_finishes(reference_run, tmp_p
     out = tmp_path / "run"
     command = [sys.executable, "-m", "simlens", "make", str(recipe_file), "--out", str(out), "--quiet"]
     process = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    deadline = time.time() + 120
-    while time.time() < deadline:
-        try:
-            if json.loads((out / "manifest.json").read_text())["shards"]:
-                break
-        except (OSError, ValueError, KeyError):
-            pass
-        time.sleep(0.02)
+    wait_for_a_finished_shard(out)
     process.send_signal(signal.SIGINT)
     _, err = process.communicate(timeout=60)
     if process.returncode == 0:

@@ -142,6 +142,13 @@ def check_center(center, model: str) -> tuple:
     return (cx, cy)
 
 
+def check_axis_ratio(q, model: str) -> float:
+    q = float(q)
+    if not (0.0 < q <= 1.0):
+        raise ValueError(f"{model}: q must be in (0, 1], got {q}")
+    return q
+
+
 def check_positive(value, name: str, model: str, allow_zero: bool = False) -> float:
     value = float(value)
     ok = value >= 0 if allow_zero else value > 0

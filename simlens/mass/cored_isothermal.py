@@ -7,7 +7,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .base import MassModel, check_center, check_positive, rotate_back, rotate_into_frame
+from .base import MassModel, check_axis_ratio, check_center, check_positive, rotate_back, rotate_into_frame
 
 
 @dataclass(frozen=True)
@@ -46,9 +46,7 @@ class CoredIsothermal(MassModel):
         object.__setattr__(self, "einstein_radius",
                            check_positive(self.einstein_radius, "einstein_radius", "CoredIsothermal"))
         object.__setattr__(self, "core_radius", check_positive(self.core_radius, "core_radius", "CoredIsothermal"))
-        q = float(self.q)
-        if not (0.0 < q <= 1.0):
-            raise ValueError(f"CoredIsothermal: q must be in (0, 1], got {q}")
+        q = check_axis_ratio(self.q, "CoredIsothermal")
         object.__setattr__(self, "q", q)
         object.__setattr__(self, "angle", float(self.angle))
         object.__setattr__(self, "center", check_center(self.center, "CoredIsothermal"))

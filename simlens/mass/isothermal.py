@@ -6,7 +6,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .base import MassModel, check_center, check_positive, rotate_back, rotate_into_frame
+from .base import MassModel, check_axis_ratio, check_center, check_positive, rotate_back, rotate_into_frame
 
 # Radii below this (arcsec) are raised to it, so the centre gives finite values without warnings.
 # 1e-9 arcsec is far below any pixel; the singular profiles are unphysical there anyway.
@@ -92,9 +92,7 @@ class SIE(MassModel):
 
     def __post_init__(self):
         object.__setattr__(self, "einstein_radius", check_positive(self.einstein_radius, "einstein_radius", "SIE"))
-        q = float(self.q)
-        if not (0.0 < q <= 1.0):
-            raise ValueError(f"SIE: q must be in (0, 1], got {q}")
+        q = check_axis_ratio(self.q, "SIE")
         object.__setattr__(self, "q", q)
         object.__setattr__(self, "angle", float(self.angle))
         object.__setattr__(self, "center", check_center(self.center, "SIE"))

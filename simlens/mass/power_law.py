@@ -7,7 +7,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .base import MassModel, check_center, check_positive, rotate_back, rotate_into_frame
+from .base import MassModel, check_axis_ratio, check_center, check_positive, rotate_back, rotate_into_frame
 
 CENTRAL_FLOOR = 1e-9  # arcsec
 SERIES_TOLERANCE = 1e-14
@@ -55,9 +55,7 @@ class PowerLaw(MassModel):
         slope = float(self.slope)
         if not (1.0 < slope < 3.0):
             raise ValueError(f"PowerLaw: slope must be in (1, 3), got {slope}")
-        q = float(self.q)
-        if not (0.0 < q <= 1.0):
-            raise ValueError(f"PowerLaw: q must be in (0, 1], got {q}")
+        q = check_axis_ratio(self.q, "PowerLaw")
         object.__setattr__(self, "slope", slope)
         object.__setattr__(self, "q", q)
         object.__setattr__(self, "angle", float(self.angle))

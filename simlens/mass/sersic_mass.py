@@ -9,7 +9,7 @@ import numpy as np
 from scipy import special
 
 from ..light import SERSIC_INDEX_RANGE, sersic_b
-from .base import MassModel, check_center, check_positive, rotate_back, rotate_into_frame
+from .base import MassModel, check_axis_ratio, check_center, check_positive, rotate_back, rotate_into_frame
 
 QUADRATURE_NODES = 96
 _NODES, _WEIGHTS = np.polynomial.legendre.leggauss(QUADRATURE_NODES)
@@ -54,9 +54,7 @@ class SersicMass(MassModel):
         n = float(self.sersic_index)
         if not (SERSIC_INDEX_RANGE[0] <= n <= SERSIC_INDEX_RANGE[1]):
             raise ValueError(f"SersicMass: sersic_index must be in {list(SERSIC_INDEX_RANGE)}, got {n}")
-        q = float(self.q)
-        if not (0.0 < q <= 1.0):
-            raise ValueError(f"SersicMass: q must be in (0, 1], got {q}")
+        q = check_axis_ratio(self.q, "SersicMass")
         object.__setattr__(self, "sersic_index", n)
         object.__setattr__(self, "q", q)
         object.__setattr__(self, "angle", float(self.angle))
