@@ -82,7 +82,7 @@ def _run_on_dask(function: Callable, tasks: Iterable, workers: int, scheduler: s
             with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None,
                                   "distributed.worker.profile.enabled": False}):
                 cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                                       dashboard_address=None)
+                                       dashboard_address=":0")
             client = Client(cluster)
         else:
             try:

@@ -192,7 +192,7 @@ def test_ctrl_c_stops_cleanly_and_the_same_command_finishes(reference_run, tmp_p
 def test_scheduler_address_submits_to_a_running_cluster(reference_run, tmp_path):
     distributed = pytest.importorskip("distributed")
     recipe, _, reference = reference_run
-    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=False, dashboard_address=None) as cluster:
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=False, dashboard_address=":0") as cluster:
         simlens.run(recipe, tmp_path / "run", scheduler=cluster.scheduler_address)
     assert data_checksums(tmp_path / "run") == reference
     with pytest.raises(SimlensError, match="needs the dask engine"):
