@@ -647,7 +647,3 @@ def _show(value: Any) -> str:
     return text_ if len(text_) <= 60 else text_[:57] + "..."
 
 
-def grid_cells(recipe: Recipe) -> int:
-    shape = recipe.grid_shape
-    return int(math.prod(shape)) if shape else 1
-

@@ -46,7 +46,6 @@ sky_level_<band>                     sky level subtracted from the images (ADU p
 
 from __future__ import annotations
 
-from pathlib import Path
 from typing import Sequence
 
 import astropy.units as u
@@ -54,9 +53,8 @@ import numpy as np
 from astropy.table import Table
 
 from ..render import RenderedSystem
-from .atomic import atomic_path
 
-__all__ = ["truth_row", "truth_table", "write_truth", "write_truth_table", "TRUTH_UNITS"]
+__all__ = ["truth_row", "truth_table", "subhalo_rows", "subhalo_table", "TRUTH_UNITS"]
 
 TRUTH_UNITS = {
     "ra": u.deg, "dec": u.deg, "velocity_dispersion": u.km / u.s, "einstein_radius": u.arcsec,
@@ -132,19 +130,4 @@ def truth_table(rows: Sequence[dict]) -> Table:
             column.unit = u.arcsec
         elif name.startswith("magzero_"):
             column.unit = u.mag
-    return table
-
-
-def write_truth(rows: Sequence[dict], folder: Path, stem: str = "truth") -> Table:
-    """Write ``truth.fits`` and ``truth.ecsv`` into ``folder`` from rows; return the table."""
-    return write_truth_table(truth_table(rows), folder, stem)
-
-
-def write_truth_table(table: Table, folder: Path, stem: str = "truth") -> Table:
-    """Write ``truth.fits`` and ``truth.ecsv`` into ``folder`` (atomically); return the table."""
-    folder = Path(folder)
-    with atomic_path(folder / f"{stem}.fits") as tmp:
-        table.write(tmp, format="fits")
-    with atomic_path(folder / f"{stem}.ecsv") as tmp:
-        table.write(tmp, format="ascii.ecsv")
     return table
