@@ -17,7 +17,7 @@ import numpy as np
 
 from .mass import MassModel
 
-__all__ = ["ImageSet", "find_images"]
+__all__ = ["ImageSet", "find_images", "fermat_potential", "time_delays"]
 
 NEWTON_ITERATIONS = 40
 SOLUTION_TOLERANCE = 1e-9  # arcsec, in the source plane
@@ -120,3 +120,20 @@ def find_images(mass: MassModel, source_x: float, source_y: float,
     x, y = np.array(keep_x), np.array(keep_y)
     mu = mass.magnification(x, y) if x.size else np.empty(0)
     return ImageSet(x=x, y=y, magnification=np.asarray(mu, dtype=float))
+
+
+def fermat_potential(mass: MassModel, x, y, source_x: float, source_y: float) -> np.ndarray:
+    """``tau = |theta - beta|^2 / 2 - psi(theta)`` (arcsec^2; Schneider, Ehlers & Falco 1992, eq. 5.45)."""
+    x, y = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
+    return 0.5 * ((x - source_x) ** 2 + (y - source_y) ** 2) - mass.potential(x, y)
+
+
+def time_delays(mass: MassModel, images: ImageSet, source_x: float, source_y: float,
+                days_per_arcsec2: float) -> np.ndarray:
+    """Arrival times of the images in days after the first one:
+    ``Delta t = (1 + z_l)/c D_l D_s / D_ls Delta tau`` (``days_per_arcsec2`` from
+    :meth:`simlens.distances.DistanceTable.fermat_to_days`)."""
+    if len(images) == 0:
+        return np.empty(0)
+    tau = fermat_potential(mass, images.x, images.y, source_x, source_y)
+    return (tau - tau.min()) * days_per_arcsec2

@@ -26,6 +26,7 @@ from .output.checksums import sha256_of
 from .population import PopulationSampler
 from .recipe import Recipe
 from .run_folder import RunFolder
+from .selection import describe_attrition, sum_attrition
 from .shard import read_truth_rows, render_shard, shard_plan
 
 __all__ = ["RunSummary", "run", "default_output_folder"]
@@ -41,6 +42,7 @@ class RunSummary:
     n_multiply_imaged: int
     median_einstein_radius: float
     median_arc_snr: float
+    selection: dict = None
 
     def describe(self) -> str:
         per = self.seconds / max(self.rendered_now, 1)
@@ -50,6 +52,7 @@ class RunSummary:
                 f"({per * 1e3:.0f} ms each)\n"
                 f"  multiply imaged: {self.n_multiply_imaged}/{self.count}; median Einstein radius "
                 f"{self.median_einstein_radius:.2f} arcsec; median arc S/N (reference band) {self.median_arc_snr:.1f}\n"
+                f"  {describe_attrition(self.selection or {})}\n"
                 f"  process time by stage (all workers): {stages}")
 
 
@@ -90,16 +93,20 @@ def run(recipe: Recipe, out: Path | str | None = None, *, overwrite: bool = Fals
         summary_columns = write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i]), len(plan), out, "truth",
                                           keep=("n_images", "einstein_radius", reference))
         write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i], "SUBHALOS"), len(plan), out, "subhalos")
+        write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i], "IMAGE_TRUTH"), len(plan), out, "images")
     except OSError as exc:
         raise _write_error(out, exc) from None
     seconds = time.perf_counter() - t_start
     sampler = PopulationSampler(recipe)
+    attrition = sum_attrition(entry.get("selection", {}) for entry in folder.manifest["shards"].values())
     folder.complete({
         "grid_cells": sampler.n_grid_cells, "cosmology": repr(sampler.cosmology),
         "files": {"shards": "shards/shard_*.fits", "truth": ["truth.fits", "truth.ecsv"],
-                  "subhalos": ["subhalos.fits", "subhalos.ecsv"],
+                  "subhalos": ["subhalos.fits", "subhalos.ecsv"], "images": ["images.fits", "images.ecsv"],
                   "cutouts": "cutouts/system_*.fits" if recipe.output.per_system_files else None},
-        "truth": {name: sha256_of(out / name) for name in ("truth.fits", "truth.ecsv", "subhalos.fits", "subhalos.ecsv")},
+        "truth": {name: sha256_of(out / name) for name in ("truth.fits", "truth.ecsv", "subhalos.fits", "subhalos.ecsv",
+                                                         "images.fits", "images.ecsv")},
+        "selection": attrition,
         "seconds_last_session": round(seconds, 3),
         "engine": resolve_engine(engine, workers, scheduler), "workers": workers,
     })
@@ -107,7 +114,7 @@ def run(recipe: Recipe, out: Path | str | None = None, *, overwrite: bool = Fals
                       timings=dict(folder.manifest.get("seconds_by_stage", {})),
                       n_multiply_imaged=int((summary_columns["n_images"] >= 2).sum()),
                       median_einstein_radius=float(np.median(summary_columns["einstein_radius"])),
-                      median_arc_snr=float(np.median(summary_columns[reference])))
+                      median_arc_snr=float(np.median(summary_columns[reference])), selection=attrition)
 
 
 def _write_error(out: Path, exc: OSError) -> SimlensError:

@@ -9,23 +9,31 @@ process asks and whatever it drew before.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass
 from typing import Mapping
 
 import numpy as np
 
-from .cosmology import critical_surface_density, einstein_radius_sis, ARCSEC_PER_RADIAN
+from pathlib import Path
+
+from .caustics import CausticSet, find_caustics
+from .cosmology import critical_surface_density, ARCSEC_PER_RADIAN
+from .distances import C_KM_S, DistanceTable
+from .errors import SimlensError
+from .galaxies import LensLightModel, PointSourceColours, SourceModel
 from .light import CompositeLight, LightProfile, Sersic
-from .mass import SIE, CoredIsothermal, ExternalShear, MassModel, Multipole, PowerLaw, TruncatedSIS
+from .mass import SIE, ConvergenceSheet, CoredIsothermal, ExternalShear, MassModel, Multipole, PowerLaw, TruncatedSIS
 from .recipe import Recipe
 from .sampling import Grid, grid_cell, system_streams
 from .survey import BandConditions
+from .velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulation
 
-__all__ = ["System", "Clump", "Subhalo", "PopulationSampler", "offset_on_sky"]
+__all__ = ["System", "Clump", "Subhalo", "PopulationSampler", "SelectionExhausted", "offset_on_sky"]
 
 # Named random streams of a system; append new names at the end to keep old draws unchanged.
-STREAMS = ("parameters", "placement", "clumps", "sky", "noise", "subhalos")
+STREAMS = ("parameters", "placement", "clumps", "sky", "noise", "subhalos", "deflector", "galaxies", "acceptance")
 
 CLUMP_SERSIC_INDEX = 0.5  # Gaussian clumps
 
@@ -90,12 +98,32 @@ class System:
     clumps: tuple
     bands: tuple  # of BandConditions, in survey order
     noise_seeds: tuple  # one int per band, for GalSim's noise
+    # -- physics and placement truth (defaults: not modelled) --
+    lens_absolute_magnitude: float = math.nan  # rest frame, AB (scaling relations only)
+    lens_luminosity: float = math.nan  # L_sun, rest filter
+    lens_stellar_mass: float = math.nan  # M_sun
+    source_absolute_magnitude: float = math.nan
+    quasar_magnitudes: Mapping[str, float] | None = None  # point source at the source centre
+    host: bool = True  # whether the source galaxy (disk, clumps) is drawn
+    placement: str = "fixed"  # fixed, lens or sky
+    region_radius: float = math.nan  # arcsec: source centres fall uniformly in this disc
+    region_widened: bool = False  # the caustics reached beyond the nominal region
+    multiply_imaged: bool = False  # source centre inside a caustic or the cut
+    tangential_caustic_area: float = 0.0  # arcsec^2
+    inner_caustic_area: float = 0.0  # radial caustic or cut, arcsec^2
+    days_per_arcsec2: float = math.nan  # time delay per unit Fermat potential
+    candidate: int = 0  # which draw of this system passed the selection (0: the first)
+    rejections: Mapping[str, int] = dataclasses.field(default_factory=dict)  # earlier candidates, by cut
+    selection_flags: Mapping[str, bool] = dataclasses.field(default_factory=dict)  # cut -> passed
 
     # -- models -------------------------------------------------------------------------------
     def mass_model(self) -> MassModel:
         """The deflector: the main profile (its Einstein radius is that of the SIS with the drawn
-        velocity dispersion), multipoles, external shear."""
+        velocity dispersion), multipoles, external shear.  A source in front of the lens (sky mode)
+        is not deflected at all."""
         theta_e, q, angle = self.einstein_radius, self.mass_q, self.mass_angle
+        if theta_e <= 0:
+            return ConvergenceSheet(kappa=0.0)
         if self.mass_model_name == "power_law":
             lens = PowerLaw(einstein_radius=theta_e, slope=self.mass_slope, q=q, angle=angle)
         elif self.mass_model_name == "cored_isothermal":
@@ -123,9 +151,23 @@ class System:
         return Sersic(flux=counts, half_light_radius=self.lens_half_light_radius,
                       sersic_index=self.lens_sersic_index, q=self.lens_q, angle=self.lens_angle)
 
+    @property
+    def region_area(self) -> float:
+        return math.pi * self.region_radius**2
+
+    def quasar_flux(self, band: str) -> float:
+        """Counts of the unlensed point source in ``band`` (0 without one)."""
+        if self.quasar_magnitudes is None:
+            return 0.0
+        return self.band(band).counts_from_magnitude(self.quasar_magnitudes[band])
+
     def source_light(self, band: str) -> LightProfile:
-        """The unlensed source in the source plane (disk plus clumps), in counts."""
+        """The unlensed source galaxy in the source plane (disk plus clumps), in counts.  A point
+        source is not part of it: its images are found and placed by the renderer."""
         conditions = self.band(band)
+        if not self.host:
+            return Sersic(flux=0.0, half_light_radius=self.source_half_light_radius,
+                          center=(self.source_x, self.source_y))
         disk = Sersic(flux=conditions.counts_from_magnitude(self.source_disk_magnitudes[band]),
                       half_light_radius=self.source_half_light_radius, sersic_index=self.source_sersic_index,
                       q=self.source_q, angle=self.source_angle, center=(self.source_x, self.source_y))
@@ -138,7 +180,7 @@ class System:
         return CompositeLight((disk,) + knots)
 
     def source_magnitude(self, band: str) -> float:
-        """Total unlensed magnitude of the source (disk plus clumps) in ``band``."""
+        """Total unlensed magnitude of the source galaxy (disk plus clumps) in ``band``."""
         flux = 10 ** (-0.4 * self.source_disk_magnitudes[band])
         flux += sum(10 ** (-0.4 * c.magnitudes[band]) for c in self.clumps)
         return -2.5 * math.log10(flux)
@@ -155,23 +197,65 @@ def offset_on_sky(ra0: float, dec0: float, position_angle: float, separation: fl
     return (ra0 + math.degrees(dra)) % 360.0, math.degrees(dec)
 
 
+class SelectionExhausted(SimlensError):
+    """No candidate of a system passed the selection within ``selection.max_candidates``."""
+
+
 class PopulationSampler:
     """Draws :class:`System` objects from a recipe.
 
     >>> sampler = PopulationSampler(recipe)
     >>> system = sampler.draw(7)      # identical every time, in any process
+
+    A system is drawn as a sequence of *candidates* (``candidate = 0, 1, ...``, each from its own
+    random streams); the first that passes the cuts that need no images -- the geometry of the
+    placement mode, ``selection.einstein_radius``, ``resolvable`` and ``multiply_imaged`` -- is
+    returned, with the number of earlier candidates each cut rejected in ``System.rejections``.
+    Cuts on images (magnification, image count, arc S/N) are applied by the renderer's caller,
+    which asks for the next candidate with ``draw(system_id, first_candidate=k)``.
     """
 
     def __init__(self, recipe: Recipe):
         self.recipe = recipe
         self.cosmology = recipe.cosmology.build()
+        self.distances = DistanceTable(self.cosmology)
         self._parameters = list(recipe.parameters())
         self._grid_paths = [path for path, p in self._parameters if isinstance(p, Grid)]
         self._grid_shape = recipe.grid_shape
+        base = str(Path(recipe.origin).parent) if recipe.origin != "<recipe>" else "."
+        filters = {b.name: b.filter for b in recipe.survey.bands if b.filter is not None}
+        lens, source = recipe.lens, recipe.source
+        self.mode = source.position.mode or "fixed"
+        self.deflectors = None
+        if lens.population is not None:
+            pop = lens.population
+            # Lens mode draws the population of *lenses*: galaxies weighted by their cross-section,
+            # sigma^4 exactly (here) and (D_ls/D_s)^2 by rejection (see _draw_candidate).
+            self.deflectors = DeflectorPopulation(
+                VELOCITY_FUNCTIONS[pop.velocity_function], self.distances, pop.redshift_range,
+                pop.velocity_dispersion_range, pop.density_evolution, pop.sigma_evolution,
+                weight_power=4.0 if self.mode == "lens" else 0.0)
+        self.lens_light_model = (LensLightModel(lens.light.scaling, self.distances, filters, base)
+                                 if lens.light.scaling is not None else None)
+        self.source_model = None
+        if source.counts is not None:
+            anchor = source.counts.band or recipe.reference_band
+            self.source_model = SourceModel(source.counts, self.distances, filters, anchor,
+                                            source.clumps.template, base)
+        self.quasar_colours = (PointSourceColours(source.quasar.spectral_index, filters, recipe.reference_band, base)
+                               if source.quasar is not None else None)
 
     @property
     def n_grid_cells(self) -> int:
         return int(math.prod(self._grid_shape)) if self._grid_shape else 1
+
+    @property
+    def source_density(self) -> float:
+        """Sky mode: sources per arcmin^2 (from source.position.density or the counts)."""
+        density = self.recipe.source.position.density
+        if density is not None:
+            return density
+        return self.source_model.sky_density if self.source_model is not None else math.nan
 
     def draw_parameters(self, system_id: int, streams) -> tuple[dict, tuple]:
         """Every recipe parameter's value for this system, keyed by key path."""
@@ -190,7 +274,7 @@ class PopulationSampler:
         """Masses from dN/dm ~ m^slope on [mass_min, mass_max] (inverse CDF), positions uniform in
         area in the annulus [annulus, annulus_outer] theta_E around the lens centre."""
         n = int(round(v["lens.subhalos.count"]))
-        if n == 0:
+        if n == 0 or theta_e <= 0:
             return ()
         settings = self.recipe.lens.subhalos
         k = settings.mass_function_slope + 1.0
@@ -200,64 +284,90 @@ class PopulationSampler:
         radii = np.sqrt(r_in**2 + rng.uniform(size=n) * (r_out**2 - r_in**2))
         phi = rng.uniform(0.0, 2.0 * math.pi, size=n)
         sigma_cr = critical_surface_density(self.cosmology, z_lens, z_source).value  # M_sun / Mpc^2
-        d_l = self.cosmology.angular_diameter_distance(z_lens).value  # Mpc
+        d_l = float(self.distances.angular_diameter(z_lens))  # Mpc
         sigma_cr_arcsec2 = sigma_cr * (d_l / ARCSEC_PER_RADIAN) ** 2  # M_sun / arcsec^2
         return tuple(_subhalo(float(m), float(r * math.cos(p)), float(r * math.sin(p)), theta_e, sigma_cr_arcsec2)
                      for m, r, p in zip(masses, radii, phi))
 
-    def draw(self, system_id: int) -> System:
+    def draw(self, system_id: int, first_candidate: int = 0) -> System:
+        """The first candidate from ``first_candidate`` on that passes the cuts needing no images."""
         if system_id < 0:
             raise ValueError(f"system_id must be >= 0, got {system_id}")
+        selection = self.recipe.selection
+        rejections: dict[str, int] = {}
+        limit = selection.max_candidates
+        for candidate in range(first_candidate, first_candidate + limit):
+            system, failed = self._draw_candidate(system_id, candidate)
+            if failed is None:
+                for name, n in system.rejections.items():  # geometry, drawn in bulk inside a candidate
+                    rejections[name] = rejections.get(name, 0) + n
+                return dataclasses.replace(system, rejections=rejections)
+            rejections[failed] = rejections.get(failed, 0) + 1
+        raise SelectionExhausted(_exhausted_message(system_id, limit, rejections))
+
+    def _draw_candidate(self, system_id: int, candidate: int) -> tuple[System | None, str | None]:
         recipe = self.recipe
-        streams = system_streams(recipe.seed, system_id, STREAMS)
+        streams = system_streams(recipe.seed, system_id, STREAMS, candidate)
         v, cell = self.draw_parameters(system_id, streams)
         ref = recipe.reference_band
         band_names = recipe.survey.band_names
+        lens_settings, source_settings = recipe.lens, recipe.source
 
+        # -- deflector and source redshift ------------------------------------------------------
+        geometry = self._draw_geometry(v, streams)
+        if isinstance(geometry, str):
+            return None, geometry
+        sigma, z_lens, z_source, anchor_magnitude, geometry_rejections = geometry
+        photometry = (self.source_model.complete(anchor_magnitude, z_source, streams["galaxies"])
+                      if self.source_model is not None else None)
+        behind = z_source > z_lens
+        ratio = float(self.distances.ratio(z_lens, z_source)) if behind else 0.0
+        theta_e = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * ratio * ARCSEC_PER_RADIAN
+
+        # -- lens light ----------------------------------------------------------------------
         def magnitudes(base: float, prefix: str) -> dict:
             return {b: base + (0.0 if b == ref else v[f"{prefix}.{b}"]) for b in band_names}
 
-        z_lens, z_source = v["lens.redshift"], v["source.redshift"]
-        sigma = v["lens.velocity_dispersion"]
-        theta_e = einstein_radius_sis(sigma, z_lens, z_source, self.cosmology)
-
-        # Source position (source plane, relative to the lens centre).
-        pos = recipe.source.position
-        if pos.x is not None:
-            source_x, source_y = v["source.position.x"], v["source.position.y"]
+        mass_q, mass_angle = v["lens.mass.q"], v["lens.mass.angle"]
+        lens_extra = {}
+        if self.lens_light_model is not None:
+            light = self.lens_light_model.draw(sigma, z_lens, mass_q, mass_angle, streams["galaxies"])
+            lens_mags, lens_r_e, lens_q, lens_angle = light.magnitudes, light.half_light_radius, light.q, light.angle
+            lens_extra = dict(lens_absolute_magnitude=light.absolute_magnitude, lens_luminosity=light.luminosity,
+                              lens_stellar_mass=light.stellar_mass)
         else:
-            radius_factor = v.get("source.position.radius_in_einstein_radii", DEFAULT_RADIUS_IN_EINSTEIN_RADII)
-            rng = streams["placement"]
-            r = radius_factor * theta_e * math.sqrt(rng.uniform())  # uniform in area
-            phi = rng.uniform(0.0, 2.0 * math.pi)
-            source_x, source_y = r * math.cos(phi), r * math.sin(phi)
+            lens_mags = magnitudes(v["lens.light.magnitude"], "lens.light.colors")
+            lens_r_e, lens_q, lens_angle = v["lens.light.half_light_radius"], v["lens.light.q"], v["lens.light.angle"]
 
-        # Source disk and clumps: the source magnitude is the total (disk + clumps) in the reference band.
-        source_total = magnitudes(v["source.magnitude"], "source.colors")
+        # -- source galaxy: the anchor magnitude is the total (disk + clumps) in the anchor band --
+        if photometry is not None:
+            anchor_mag, source_r_e = photometry.anchor_magnitude, photometry.half_light_radius
+            disk_colors, clump_colors = photometry.disk_colors, photometry.clump_colors
+        else:
+            anchor_mag, source_r_e = v["source.magnitude"], v["source.half_light_radius"]
+            disk_colors = {b: 0.0 if b == ref else v[f"source.colors.{b}"] for b in band_names}
+            prefix = "source.clumps.colors" if source_settings.clumps.colors else "source.colors"
+            clump_colors = {b: 0.0 if b == ref else v[f"{prefix}.{b}"] for b in band_names}
         n_clumps = int(round(v["source.clumps.count"]))
         clump_fraction = v["source.clumps.flux_fraction"] if n_clumps > 0 else 0.0
-        source_r_e = v["source.half_light_radius"]
-        disk_mags = {b: m - 2.5 * math.log10(1.0 - clump_fraction) for b, m in source_total.items()}
+        disk_mags = {b: anchor_mag + disk_colors[b] - 2.5 * math.log10(1.0 - clump_fraction) for b in band_names}
         clumps = ()
         if n_clumps > 0:
             rng = streams["clumps"]
             weights = rng.uniform(0.5, 1.5, size=n_clumps)
             weights = weights / weights.sum()
             offsets = rng.normal(0.0, v["source.clumps.spread"] * source_r_e, size=(n_clumps, 2))
-            clump_colors = ("source.clumps.colors" if recipe.source.clumps.colors else "source.colors")
-            clump_ref_mag = v["source.magnitude"] - 2.5 * math.log10(clump_fraction)
+            clump_anchor = anchor_mag - 2.5 * math.log10(clump_fraction)
             clumps = tuple(
                 Clump(x=float(dx), y=float(dy), half_light_radius=v["source.clumps.half_light_radius"],
-                      magnitudes={b: m - 2.5 * math.log10(w)
-                                  for b, m in magnitudes(clump_ref_mag, clump_colors).items()})
+                      magnitudes={b: clump_anchor + clump_colors[b] - 2.5 * math.log10(w) for b in band_names})
                 for (dx, dy), w in zip(offsets, weights))
+        quasar_mags = None
+        if source_settings.quasar is not None:
+            colours = self.quasar_colours.colors(z_source)
+            quasar_mags = {b: v["source.quasar.magnitude"] + colours[b] for b in band_names}
 
-        # Sky position: uniform in area inside the footprint's spherical cap.
-        fp = recipe.footprint
-        rng = streams["sky"]
-        cos_sep = 1.0 - rng.uniform() * (1.0 - math.cos(math.radians(fp.radius)))
-        ra, dec = offset_on_sky(fp.ra, fp.dec, rng.uniform(0.0, 360.0), math.degrees(math.acos(cos_sep)))
-
+        # -- observing conditions ------------------------------------------------------------
         bands = tuple(
             BandConditions(
                 name=b.name, pixel_scale=recipe.survey.pixel_scale,
@@ -270,27 +380,160 @@ class PopulationSampler:
                 psf_fwhm=v[f"survey.bands.{b.name}.psf.fwhm"],
                 psf_beta=v[f"survey.bands.{b.name}.psf.beta"])
             for b in recipe.survey.bands)
-        noise_seeds = tuple(int(s) for s in streams["noise"].integers(1, 2**31 - 1, size=len(bands)))
-        subhalos = self._draw_subhalos(v, theta_e, z_lens, z_source, streams["subhalos"])
 
-        return System(
-            system_id=int(system_id), grid_cell=cell, ra=ra, dec=dec, z_lens=z_lens, z_source=z_source,
+        system = System(
+            system_id=int(system_id), grid_cell=cell, ra=math.nan, dec=math.nan, z_lens=z_lens, z_source=z_source,
             velocity_dispersion=sigma, einstein_radius=theta_e,
-            mass_q=v["lens.mass.q"], mass_angle=v["lens.mass.angle"],
+            mass_q=mass_q, mass_angle=mass_angle,
             mass_model_name=recipe.lens.mass.model,
             mass_slope=v["lens.mass.slope"] if recipe.lens.mass.model == "power_law" else 2.0,
             mass_core_radius=v["lens.mass.core_radius"] if recipe.lens.mass.model == "cored_isothermal" else 0.0,
             multipoles=tuple((m, v[f"lens.multipoles.m{m}_strength"], v[f"lens.multipoles.m{m}_angle"])
                              for m in (3, 4) if v[f"lens.multipoles.m{m}_strength"] != 0.0),
-            subhalos=subhalos,
+            subhalos=self._draw_subhalos(v, theta_e, z_lens, z_source, streams["subhalos"]),
             shear_gamma=v["lens.shear.gamma"], shear_angle=v["lens.shear.angle"],
-            lens_magnitudes=magnitudes(v["lens.light.magnitude"], "lens.light.colors"),
-            lens_half_light_radius=v["lens.light.half_light_radius"],
-            lens_sersic_index=v["lens.light.sersic_index"], lens_q=v["lens.light.q"],
-            lens_angle=v["lens.light.angle"],
+            lens_magnitudes=lens_mags, lens_half_light_radius=lens_r_e,
+            lens_sersic_index=v["lens.light.sersic_index"], lens_q=lens_q, lens_angle=lens_angle,
             source_disk_magnitudes=disk_mags, source_half_light_radius=source_r_e,
             source_sersic_index=v["source.sersic_index"], source_q=v["source.q"], source_angle=v["source.angle"],
-            source_x=source_x, source_y=source_y, clumps=clumps, bands=bands, noise_seeds=noise_seeds)
+            source_x=0.0, source_y=0.0, clumps=clumps, bands=bands, noise_seeds=(),
+            source_absolute_magnitude=photometry.absolute_magnitude if photometry is not None else math.nan,
+            quasar_magnitudes=quasar_mags,
+            host=source_settings.quasar.host if source_settings.quasar is not None else True,
+            days_per_arcsec2=self.distances.fermat_to_days(z_lens, z_source) if behind else math.nan,
+            candidate=candidate, rejections=geometry_rejections, **lens_extra)
+
+        # -- cheap cuts before the caustics ----------------------------------------------------
+        selection = recipe.selection
+        checks = {}
+        if selection.einstein_radius is not None:
+            lo, hi = selection.einstein_radius
+            checks["einstein_radius"] = lo <= theta_e <= hi
+        if selection.resolvable:
+            fwhm = system.band(ref).psf_fwhm
+            checks["resolvable"] = theta_e**2 > source_r_e**2 + (0.5 * fwhm) ** 2
+        if selection.enforce:
+            failed = next((name for name, ok in checks.items() if not ok), None)
+            if failed is not None:
+                return None, failed
+
+        # -- placement -----------------------------------------------------------------------
+        placed = self._place(system, v, streams["placement"])
+        if placed is None:
+            return None, "placement"
+        system = placed
+        if selection.multiply_imaged:
+            checks["multiply_imaged"] = system.multiply_imaged
+            if selection.enforce and not system.multiply_imaged:
+                return None, "multiply_imaged"
+
+        # -- sky position and noise seeds (after the cuts, from their own streams) ---------------
+        fp = recipe.footprint
+        rng = streams["sky"]
+        cos_sep = 1.0 - rng.uniform() * (1.0 - math.cos(math.radians(fp.radius)))
+        ra, dec = offset_on_sky(fp.ra, fp.dec, rng.uniform(0.0, 360.0), math.degrees(math.acos(cos_sep)))
+        noise_seeds = tuple(int(s) for s in streams["noise"].integers(1, 2**31 - 1, size=len(bands)))
+        return dataclasses.replace(system, ra=ra, dec=dec, noise_seeds=noise_seeds,
+                                   selection_flags=checks), None
+
+    GEOMETRY_BATCH = 16
+
+    def _draw_geometry(self, v: dict, streams):
+        """``(sigma, z_lens, z_source, source anchor magnitude, rejections)`` of a candidate, or the
+        name of the cut that rejects it.  With a physical population or number counts the pairs are
+        drawn in batches and rejected in bulk (cheap): in lens mode a source must lie behind the
+        lens, and a pair is kept with probability (D_ls/D_s)^2, the distance part of the
+        cross-section weight (sigma^4 is in the deflector draw)."""
+        rng = streams["deflector"]
+        lens_mode = self.mode == "lens"
+        bulk = self.deflectors is not None or self.source_model is not None
+        rejections = {"source_in_front": 0, "cross_section": 0}
+        for _ in range(self.recipe.selection.max_candidates if bulk else 1):
+            n = self.GEOMETRY_BATCH if bulk else 1
+            if self.deflectors is not None:
+                z_l = self.deflectors.draw_redshift(rng.uniform(size=n))
+                sigma = self.deflectors.draw_sigma(rng.uniform(size=n), z_l)
+            else:
+                z_l = np.full(n, v["lens.redshift"])
+                sigma = np.full(n, v["lens.velocity_dispersion"])
+            if self.source_model is not None:
+                m, z_s = self.source_model.draw_magnitudes_and_redshifts(rng, n)
+            else:
+                m, z_s = np.full(n, math.nan), np.full(n, v["source.redshift"])
+            u = rng.uniform(size=n)
+            if not lens_mode:
+                return float(sigma[0]), float(z_l[0]), float(z_s[0]), float(m[0]), {}
+            behind = z_s > z_l
+            ratio = np.where(behind, self.distances.ratio(np.minimum(z_l, z_s), z_s), 0.0)
+            kept = behind & ((u <= ratio**2) if self.deflectors is not None else True)
+            first = int(np.argmax(kept)) if kept.any() else n
+            rejections["source_in_front"] += int(np.count_nonzero(~behind[:first]))
+            rejections["cross_section"] += int(np.count_nonzero(behind[:first] & ~kept[:first]))
+            if first < n:
+                return (float(sigma[first]), float(z_l[first]), float(z_s[first]), float(m[first]),
+                        {k: n_ for k, n_ in rejections.items() if n_})
+            if not bulk:
+                return "source_in_front"
+        return "source_in_front" if rejections["source_in_front"] else "cross_section"
+
+    def _place(self, system: System, v: dict, rng) -> System | None:
+        """The source centre by the placement mode; None when a lens-mode candidate must be redrawn."""
+        theta_e = system.einstein_radius
+        pos = self.recipe.source.position
+        if self.mode == "fixed" and pos.x is not None:
+            x, y = v["source.position.x"], v["source.position.y"]
+            return self._with_caustics(system, x, y, math.hypot(x, y), False)
+        if self.mode == "fixed":
+            radius_factor = v.get("source.position.radius_in_einstein_radii", DEFAULT_RADIUS_IN_EINSTEIN_RADII)
+            radius = radius_factor * theta_e
+            x, y = _uniform_in_disc(radius, rng)
+            return self._with_caustics(system, x, y, radius, False)
+        caustics = find_caustics(system.mass_model(), theta_e) if theta_e > 0 else None
+        reach = caustics.max_radius if caustics is not None else 0.0
+        if self.mode == "lens":
+            radius = pos.region_radius_in_einstein_radii * theta_e
+        else:  # sky: one source per 1 / density of area (see DEVELOPERS.md, "placement modes")
+            radius = math.sqrt(3600.0 / (math.pi * self.source_density))
+        widened = reach > radius
+        radius = max(radius, 1.02 * reach)
+        # Explicit lens distributions keep their deflector and re-place the source; a physical
+        # population redraws the whole candidate, which weights lenses by their cross-section.
+        tries = 1 if (self.mode == "sky" or self.deflectors is not None) else LENS_MODE_PLACEMENT_TRIES
+        for _ in range(tries):
+            x, y = _uniform_in_disc(radius, rng)
+            multiple = bool(caustics.multiply_imaged(x, y)) if caustics is not None else False
+            if multiple or self.mode == "sky":
+                return self._with_caustics(system, x, y, radius, widened, caustics)
+        return None
+
+    def _with_caustics(self, system: System, x: float, y: float, radius: float, widened: bool,
+                       caustics: CausticSet | None = None) -> System:
+        if caustics is None and system.einstein_radius > 0:
+            caustics = find_caustics(system.mass_model(), system.einstein_radius)
+        tangential = caustics.caustic("tangential") if caustics is not None else None
+        inner = next((c for c in caustics.caustics if c.kind != "tangential"), None) if caustics is not None else None
+        return dataclasses.replace(
+            system, source_x=float(x), source_y=float(y), placement=self.mode, region_radius=float(radius),
+            region_widened=bool(widened),
+            multiply_imaged=bool(caustics.multiply_imaged(x, y)) if caustics is not None else False,
+            tangential_caustic_area=tangential.area if tangential is not None else 0.0,
+            inner_caustic_area=inner.area if inner is not None else 0.0)
+
+
+LENS_MODE_PLACEMENT_TRIES = 1000
+
+
+def _uniform_in_disc(radius: float, rng) -> tuple[float, float]:
+    r = radius * math.sqrt(rng.uniform())
+    phi = rng.uniform(0.0, 2.0 * math.pi)
+    return r * math.cos(phi), r * math.sin(phi)
+
+
+def _exhausted_message(system_id: int, limit: int, rejections: dict) -> str:
+    worst = ", ".join(f"{name} {n}" for name, n in sorted(rejections.items(), key=lambda kv: -kv[1]))
+    return (f"selection: none of {limit} candidates for system {system_id} passed the cuts "
+            f"(rejected by: {worst}); loosen the [selection] cuts or widen the populations, or raise "
+            f"selection.max_candidates")
 
 
 def _subhalo(mass: float, x: float, y: float, theta_e: float, sigma_cr_arcsec2: float) -> "Subhalo":

@@ -148,6 +148,7 @@ class Scene:
     lensed_source: np.ndarray
     source_flux_unlensed: float
     sampling: int | None = None
+    lensed_point_flux: float = 0.0  # flux of point-source images deposited in lensed_source
 
     def __post_init__(self):
         if self.sampling is None:
@@ -159,10 +160,11 @@ class Scene:
 
     @property
     def magnification(self) -> float:
-        """Extended-source magnification: lensed flux on the padded field over unlensed flux."""
+        """Extended-source magnification: lensed flux on the padded field over unlensed flux (of the
+        source galaxy; point-source images are not counted)."""
         if self.source_flux_unlensed <= 0:
             return float("nan")
-        return self.lensed_source_flux / self.source_flux_unlensed
+        return (self.lensed_source_flux - self.lensed_point_flux) / self.source_flux_unlensed
 
 
 def deposit_points(image: np.ndarray, grid: PixelGrid, points: tuple, sampling: int | None = None) -> None:
@@ -347,11 +349,13 @@ class ComponentImages:
 
 
 def render_scene(band: str, ray_map: RayMap, lens_light: LightProfile | None, source: LightProfile,
-                 components: ComponentImages | None = None) -> Scene:
+                 components: ComponentImages | None = None, lensed_points: tuple = ()) -> Scene:
     """Evaluate the source at the rays' source-plane positions and the lens light at the image-plane
     positions, both as counts per fine pixel.  Point sources in the lens light (stars) are deposited
-    on the grid; point sources behind the lens need their images found first and are refused here.
-    Pass one ``components`` cache for all bands of a system to evaluate each shape once."""
+    on the grid; point sources behind the lens need their images found first and are refused here:
+    pass the images as ``lensed_points`` (image-plane PointSource objects whose fluxes include
+    |magnification|), deposited in the lensed-source plane.  Pass one ``components`` cache for all
+    bands of a system to evaluate each shape once."""
     grid = ray_map.grid
     components = components if components is not None and components.ray_map is ray_map else ComponentImages(ray_map)
     if split_points(source)[1]:
@@ -360,5 +364,8 @@ def render_scene(band: str, ray_map: RayMap, lens_light: LightProfile | None, so
     lensed = components.render(source, lensed=True)
     lens = components.render(lens_light, lensed=False)
     deposit_points(lens, grid, split_points(lens_light)[1], components.sampling)
+    before = float(lensed.sum()) if lensed_points else 0.0
+    deposit_points(lensed, grid, tuple(lensed_points), components.sampling)
+    point_flux = float(lensed.sum()) - before if lensed_points else 0.0
     return Scene(band=band, grid=grid, lens_light=lens, lensed_source=lensed,
-                 source_flux_unlensed=source.flux, sampling=components.sampling)
+                 source_flux_unlensed=source.flux, sampling=components.sampling, lensed_point_flux=point_flux)

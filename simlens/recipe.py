@@ -50,6 +50,11 @@ __all__ = [
     "SourcePositionSettings",
     "ClumpSettings",
     "OutputSettings",
+    "SelectionSettings",
+    "DeflectorPopulationSettings",
+    "LensLightScalingSettings",
+    "SourceCountsSettings",
+    "QuasarSettings",
     "MultipoleSettings",
     "SubhaloSettings",
     "load_recipe",
@@ -110,6 +115,17 @@ def table(factory, *, doc: str = "", optional: bool = False):
     return field(default_factory=factory, metadata=meta)
 
 
+def interval(default: tuple | None = None, *, low: float = -_INF, high: float = _INF, doc: str = "",
+             unit: str = "", optional: bool = False):
+    """A ``[low, high]`` pair of plain numbers with ``low < high``, inside ``[low, high]`` bounds."""
+    meta = dict(kind="interval", low=low, high=high, doc=doc, unit=unit)
+    if default is not None:
+        return field(default=tuple(default), metadata=meta)
+    if optional:
+        return field(default=None, metadata=meta)
+    return field(metadata=meta)
+
+
 def band_colors(*, doc: str = ""):
     """``{ band = parameter }`` giving ``m_band - m_reference`` for every non-reference band."""
     return field(default_factory=dict, metadata=dict(kind="band_colors", doc=doc))
@@ -136,6 +152,9 @@ class BandSettings:
     gain: Parameter = parameter(low=0, low_open=True, unit="electron/adu", doc="detector gain")
     read_noise: Parameter = parameter(0.0, low=0, unit="electron", doc="read noise per pixel (all exposures)")
     psf: PsfSettings = table(PsfSettings, doc="point-spread function")
+    filter: str = text(optional=True, doc="filter curve: a GalSim filter name (e.g. 'LSST_r') or a file "
+                                          "of 'nm throughput' lines, relative to the recipe; needed "
+                                          "for template colours")
     name: str = ""  # filled from the table key
 
 
@@ -227,11 +246,49 @@ class ShearSettings:
     angle: Parameter = parameter(0.0, unit="deg", doc="shear angle, CCW from +x")
 
 
+VELOCITY_FUNCTION_NAMES = ("choi2007", "sheth2003")
+TEMPLATE_NAMES = ("elliptical", "spiral", "late_spiral", "irregular")
+
+
+@dataclass(frozen=True, kw_only=True)
+class DeflectorPopulationSettings:
+    velocity_function: str = text("choi2007", choices=VELOCITY_FUNCTION_NAMES,
+                                  doc="published velocity dispersion function (modified Schechter)")
+    redshift_range: tuple = interval((0.1, 1.0), low=0.0, high=6.0, doc="lens redshifts")
+    velocity_dispersion_range: tuple = interval((100.0, 400.0), low=10.0, high=1500.0, unit="km/s",
+                                                doc="velocity dispersions")
+    density_evolution: float = number(0.0, low=-10, high=10, doc="phi_*(z) = phi_*(0) (1 + z)^this")
+    sigma_evolution: float = number(0.0, low=-5, high=5, doc="sigma_*(z) = sigma_*(0) (1 + z)^this")
+
+
+@dataclass(frozen=True, kw_only=True)
+class LensLightScalingSettings:
+    template: str = text("elliptical", choices=TEMPLATE_NAMES, doc="spectral template of the lens light")
+    rest_filter: str = text("LSST_r", doc="rest-frame filter of the relations (r band)")
+    faber_jackson_slope: float = number(4.0, low=1, high=8, doc="L ~ sigma^slope (Faber & Jackson 1976)")
+    faber_jackson_magnitude: float = number(-21.6, low=-30, high=-10, unit="mag",
+                                            doc="rest-frame absolute magnitude (AB) at the reference sigma")
+    faber_jackson_sigma: float = number(200.0, low=10, high=1000, unit="km/s", doc="reference sigma")
+    faber_jackson_scatter: float = number(0.4, low=0, high=3, unit="mag", doc="scatter in magnitude")
+    plane_a: float = number(1.49, low=0, high=5, doc="fundamental plane: log R_e = a log sigma + b mu_e + c")
+    plane_b: float = number(0.30, low=0.2, low_open=True, high=1.0, doc="fundamental plane b (mu_e in mag/arcsec^2)")
+    plane_c: float = number(-8.778, low=-30, high=30, doc="fundamental plane c (R_e in kpc)")
+    plane_scatter: float = number(0.1, low=0, high=1, doc="scatter of log10 R_e (dex)")
+    q_scatter: float = number(0.1, low=0, high=1, doc="light axis ratio = mass axis ratio + N(0, this)")
+    angle_scatter: float = number(10.0, low=0, high=90, unit="deg", doc="light angle = mass angle + N(0, this)")
+    mass_to_light: float = number(optional=True, low=0, low_open=True,
+                                  doc="stellar M/L in the rest filter (M_sun/L_sun), for the stellar-mass truth")
+
+
 @dataclass(frozen=True, kw_only=True)
 class LensLightSettings:
-    magnitude: Parameter = parameter(low=0, high=40, unit="mag", doc="AB magnitude in the reference band")
+    magnitude: Parameter = parameter(optional=True, low=0, high=40, unit="mag", doc="AB magnitude in the reference band")
     colors: dict = band_colors(doc="m_band - m_reference for each other band")
-    half_light_radius: Parameter = parameter(low=0, low_open=True, unit="arcsec", doc="circularised R_e")
+    half_light_radius: Parameter = parameter(optional=True, low=0, low_open=True, unit="arcsec",
+                                             doc="circularised R_e")
+    scaling: LensLightScalingSettings = table(LensLightScalingSettings, optional=True,
+                                              doc="luminosity, size and colours from the velocity dispersion "
+                                                  "(Faber-Jackson, fundamental plane, a template)")
     sersic_index: Parameter = parameter(4.0, low=0.3, high=8.0, doc="Sersic n")
     q: Parameter = parameter(0.8, low=0, low_open=True, high=1, doc="light axis ratio")
     angle: Parameter = parameter(0.0, unit="deg", doc="light major-axis angle, CCW from +x")
@@ -239,9 +296,12 @@ class LensLightSettings:
 
 @dataclass(frozen=True, kw_only=True)
 class LensSettings:
-    redshift: Parameter = parameter(low=0, low_open=True, doc="lens redshift")
-    velocity_dispersion: Parameter = parameter(low=0, low_open=True, high=2000, unit="km/s",
+    redshift: Parameter = parameter(optional=True, low=0, low_open=True, doc="lens redshift")
+    velocity_dispersion: Parameter = parameter(optional=True, low=0, low_open=True, high=2000, unit="km/s",
                                                doc="stellar velocity dispersion (sets the Einstein radius)")
+    population: DeflectorPopulationSettings = table(DeflectorPopulationSettings, optional=True,
+                                                    doc="draw (sigma, z) jointly from a velocity dispersion "
+                                                        "function and the comoving volume")
     mass: MassSettings = table(MassSettings, doc="mass profile")
     multipoles: MultipoleSettings = table(MultipoleSettings, doc="multipole perturbations of the mass")
     subhalos: SubhaloSettings = table(SubhaloSettings, doc="truncated-SIS subhalos around the Einstein ring")
@@ -250,7 +310,42 @@ class LensSettings:
 
 
 @dataclass(frozen=True, kw_only=True)
+class SourceCountsSettings:
+    band: str = text(optional=True, doc="band of the counts and magnitude range (default: reference band)")
+    magnitude_range: tuple = interval((20.0, 26.0), low=5.0, high=35.0, unit="mag", doc="unlensed magnitudes")
+    redshift_range: tuple = interval((0.2, 5.0), low=0.0, high=7.0, doc="source redshifts")
+    density: float = number(46.0, low=0, low_open=True, unit="arcmin^-2",
+                            doc="N(< pivot) (default: LSST Science Book 2009, i band, from memory)")
+    pivot: float = number(25.0, low=5, high=35, unit="mag", doc="pivot magnitude of the counts")
+    slope: float = number(0.31, low=0.01, high=1.0, doc="N(<m) ~ 10^(slope m)")
+    z0_slope: float = number(0.0417, low=0, high=1, doc="p(z|m) ~ z^2 exp(-z/z0), z0 = z0_slope m + z0_intercept")
+    z0_intercept: float = number(-0.744, low=-20, high=20, doc="see z0_slope")
+    template: str = text("spiral", choices=TEMPLATE_NAMES, doc="spectral template of the disk")
+    rest_filter: str = text("LSST_r", doc="rest-frame filter of the size-luminosity relation (r band)")
+    size_scatter: bool = flag(True, doc="log-normal scatter of the size-luminosity relation (Shen et al. 2003)")
+
+
+@dataclass(frozen=True, kw_only=True)
+class QuasarSettings:
+    magnitude: Parameter = parameter(low=0, high=40, unit="mag",
+                                     doc="unlensed AB magnitude of the point source, reference band")
+    spectral_index: float = number(-0.44, low=-3, high=2,
+                                   doc="f_nu ~ nu^index (Vanden Berk et al. 2001, from memory); colours from it")
+    host: bool = flag(True, doc="keep the source galaxy as the quasar's host (false: a bare point source)")
+
+
+PLACEMENT_MODES = ("lens", "sky")
+
+
+@dataclass(frozen=True, kw_only=True)
 class SourcePositionSettings:
+    mode: str = text(optional=True, choices=PLACEMENT_MODES,
+                     doc="'lens': uniform in a region around the caustics, multiply imaged only; 'sky': "
+                         "at the sources' sky density (strong lenses at their real rate)")
+    region_radius_in_einstein_radii: float = number(
+        1.6, low=1.0, high=10, doc="lens mode: radius of the placement disc (it must hold the caustics)")
+    density: float = number(optional=True, low=0, low_open=True, unit="arcmin^-2",
+                            doc="sky mode: source density (default: from source.counts)")
     radius_in_einstein_radii: Parameter = parameter(
         optional=True, low=0, doc="uniform in area inside this many Einstein radii of the lens centre")
     x: Parameter = parameter(optional=True, unit="arcsec", doc="source-plane x offset from the lens centre")
@@ -267,19 +362,64 @@ class ClumpSettings:
     spread: Parameter = parameter(1.0, low=0, low_open=True,
                                   doc="clump offsets: Gaussian sigma in units of the source R_e")
     colors: dict = band_colors(doc="clump colours, m_band - m_reference (default: the source's)")
+    template: str = text(optional=True, choices=TEMPLATE_NAMES,
+                         doc="spectral template of the clumps (with source.counts; default: the disk's)")
 
 
 @dataclass(frozen=True, kw_only=True)
 class SourceSettings:
-    redshift: Parameter = parameter(low=0, low_open=True, doc="source redshift")
-    magnitude: Parameter = parameter(low=0, high=40, unit="mag", doc="unlensed AB magnitude, reference band")
+    redshift: Parameter = parameter(optional=True, low=0, low_open=True, doc="source redshift")
+    magnitude: Parameter = parameter(optional=True, low=0, high=40, unit="mag",
+                                     doc="unlensed AB magnitude, reference band")
     colors: dict = band_colors(doc="m_band - m_reference for each other band")
-    half_light_radius: Parameter = parameter(low=0, low_open=True, unit="arcsec", doc="circularised R_e")
+    half_light_radius: Parameter = parameter(optional=True, low=0, low_open=True, unit="arcsec",
+                                             doc="circularised R_e")
+    counts: SourceCountsSettings = table(SourceCountsSettings, optional=True,
+                                         doc="magnitudes, redshifts, sizes and colours from published "
+                                             "number counts, p(z|m), a size-luminosity relation, a template")
+    quasar: QuasarSettings = table(QuasarSettings, optional=True, doc="a point source at the source centre")
     sersic_index: Parameter = parameter(1.0, low=0.3, high=8.0, doc="Sersic n")
     q: Parameter = parameter(0.7, low=0, low_open=True, high=1, doc="axis ratio")
     angle: Parameter = parameter(0.0, unit="deg", doc="major-axis angle, CCW from +x")
     position: SourcePositionSettings = table(SourcePositionSettings, doc="where the source lies")
     clumps: ClumpSettings = table(ClumpSettings, doc="compact star-forming knots")
+
+
+@dataclass(frozen=True, kw_only=True)
+class SelectionSettings:
+    einstein_radius: tuple = interval(optional=True, low=0, unit="arcsec", doc="accepted Einstein radii")
+    resolvable: bool = flag(False, doc="theta_E^2 > r_source^2 + (FWHM/2)^2 in the reference band "
+                                       "(a common rule of survey forecasts, from memory)")
+    multiply_imaged: bool = flag(False, doc="the source centre lies inside a caustic")
+    min_magnification: float = number(optional=True, low=0, doc="minimum extended-source magnification")
+    min_images: int = number(optional=True, low=1, high=10, integer=True,
+                             doc="minimum number of images of the source centre in the cutout")
+    min_arc_snr: float = number(optional=True, low=0, doc="minimum arc S/N in arc_snr_band")
+    arc_snr_band: str = text(optional=True, doc="band of min_arc_snr (default: reference band)")
+    enforce: bool = flag(True, doc="true: redraw systems until they pass; false: only flag them in the truth")
+    max_candidates: int = number(2000, low=1, high=10_000_000, integer=True,
+                                 doc="give up (with an error) after this many candidates for one system")
+
+    @property
+    def any(self) -> bool:
+        return bool(self.cut_names)
+
+    @property
+    def cut_names(self) -> tuple[str, ...]:
+        names = []
+        if self.einstein_radius is not None:
+            names.append("einstein_radius")
+        if self.resolvable:
+            names.append("resolvable")
+        if self.multiply_imaged:
+            names.append("multiply_imaged")
+        if self.min_magnification is not None:
+            names.append("magnification")
+        if self.min_images is not None:
+            names.append("n_images")
+        if self.min_arc_snr is not None:
+            names.append("arc_snr")
+        return tuple(names)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -302,6 +442,7 @@ class Recipe:
     source: SourceSettings = table(SourceSettings, doc="the source population")
     cosmology: CosmologySettings = table(CosmologySettings, doc="cosmology")
     footprint: FootprintSettings = table(FootprintSettings, doc="sky area for RA/Dec")
+    selection: SelectionSettings = table(SelectionSettings, doc="cuts on the truth")
     output: OutputSettings = table(OutputSettings, doc="what a run writes")
     name: str = text("simlens-run", doc="run name (default: the recipe file's stem)")
     count: int = number(100, low=1, high=10_000_000, integer=True, doc="number of systems")
@@ -423,6 +564,8 @@ def _build(cls, data: Any, origin: str, prefix: str):
             values[name] = _parse_bands(origin, path, value)
         elif kind == "band_colors":
             values[name] = _parse_colors(origin, path, value)
+        elif kind == "interval":
+            values[name] = _check_interval(origin, path, value, f.metadata)
         else:  # pragma: no cover - schema bug
             raise AssertionError(f"field {cls.__name__}.{name} has no kind")
     return cls(**values)
@@ -557,6 +700,20 @@ def _check_number(origin: str, path: str, value: Any, meta: Mapping):
     return int(value) if meta.get("integer") else float(value)
 
 
+def _check_interval(origin: str, path: str, value: Any, meta: Mapping) -> tuple[float, float]:
+    if not (isinstance(value, list) and len(value) == 2 and all(_is_number(v) for v in value)):
+        raise RecipeError(origin, path, f"must be [low, high], got {_show(value)}", "two numbers, low < high")
+    lo, hi = float(value[0]), float(value[1])
+    if not lo < hi:
+        raise RecipeError(origin, path, f"needs low < high, got [{lo:g}, {hi:g}]", "two numbers, low < high")
+    bounds = dict(meta, low_open=False, high_open=False)
+    for v in (lo, hi):
+        if not _inside(v, bounds):
+            unit = f" {meta['unit']}" if meta.get("unit") else ""
+            raise RecipeError(origin, path, f"out of range: {v:g}", f"values in {_range_text(bounds)}{unit}")
+    return lo, hi
+
+
 def _check_text(origin: str, path: str, value: Any, meta: Mapping) -> str:
     choices = meta.get("choices", ())
     if not isinstance(value, str):
@@ -588,9 +745,28 @@ def _check_consistency(recipe: Recipe) -> None:
                           ", ".join(repr(n) for n in names))
     ref = recipe.reference_band
     others = [n for n in names if n != ref]
-    for path, colors, required in (("lens.light.colors", recipe.lens.light.colors, True),
-                                   ("source.colors", recipe.source.colors, True),
-                                   ("source.clumps.colors", recipe.source.clumps.colors, False)):
+    lens, source = recipe.lens, recipe.source
+    _check_either(origin, "lens", lens.population is not None, "population",
+                  {"redshift": lens.redshift, "velocity_dispersion": lens.velocity_dispersion})
+    _check_either(origin, "lens.light", lens.light.scaling is not None, "scaling",
+                  {"magnitude": lens.light.magnitude, "half_light_radius": lens.light.half_light_radius},
+                  colors=lens.light.colors)
+    _check_either(origin, "source", source.counts is not None, "counts",
+                  {"redshift": source.redshift, "magnitude": source.magnitude,
+                   "half_light_radius": source.half_light_radius}, colors=source.colors)
+    if source.counts is not None and source.clumps.colors:
+        raise RecipeError(origin, "source.clumps.colors", "is set together with source.counts",
+                          "source.clumps.template (colours come from templates with source.counts)")
+    if source.counts is None and source.clumps.template is not None:
+        raise RecipeError(origin, "source.clumps.template", "needs source.counts (template colours)",
+                          "source.clumps.colors, or a [source.counts] table")
+    if source.counts is not None and source.counts.band is not None and source.counts.band not in names:
+        raise RecipeError(origin, "source.counts.band", f"{source.counts.band!r} is not a band",
+                          ", ".join(repr(n) for n in names))
+    color_sets = [("lens.light.colors", lens.light.colors, lens.light.scaling is None),
+                  ("source.colors", source.colors, source.counts is None),
+                  ("source.clumps.colors", source.clumps.colors, False)]
+    for path, colors, required in color_sets:
         for band in colors:
             if band not in others:
                 why = "is the reference band (its colour is 0 by definition)" if band == ref else "is not a band"
@@ -601,6 +777,25 @@ def _check_consistency(recipe: Recipe) -> None:
             if missing:
                 raise RecipeError(origin, path, f"has no colour for band {missing[0]!r}",
                                   f"m_band - m_{ref} for each of " + ", ".join(repr(n) for n in others))
+    needs_filters = [what for what, on in (("lens.light.scaling", lens.light.scaling is not None),
+                                           ("source.counts", source.counts is not None),
+                                           ("source.quasar", source.quasar is not None)) if on]
+    base = str(Path(origin).parent) if origin != "<recipe>" else "."
+    for band in survey.bands:
+        if band.filter is None:
+            if needs_filters:
+                raise RecipeError(origin, f"survey.bands.{band.name}.filter", "is missing",
+                                  f"a filter curve for the template colours that {needs_filters[0]} asks for, "
+                                  "e.g. filter = 'LSST_" + band.name[:1] + "'")
+            continue
+        _check_filter(origin, f"survey.bands.{band.name}.filter", band.filter, base)
+    for path, settings in (("lens.light.scaling", lens.light.scaling), ("source.counts", source.counts)):
+        if settings is not None:
+            _check_filter(origin, f"{path}.rest_filter", settings.rest_filter, base)
+    sel = recipe.selection
+    if sel.arc_snr_band is not None and sel.arc_snr_band not in names:
+        raise RecipeError(origin, "selection.arc_snr_band", f"{sel.arc_snr_band!r} is not a band",
+                          ", ".join(repr(n) for n in names))
     mass, defaults = recipe.lens.mass, MassSettings()
     for key, model in (("slope", "power_law"), ("core_radius", "cored_isothermal")):
         if mass.model != model and getattr(mass, key) != getattr(defaults, key):
@@ -613,18 +808,33 @@ def _check_consistency(recipe: Recipe) -> None:
     if subs.annulus.support[1] >= subs.annulus_outer.support[0]:
         raise RecipeError(origin, "lens.subhalos.annulus_outer", "can be inside the inner radius (annulus)",
                           "annulus_outer above annulus for every draw")
-    z_l_max = recipe.lens.redshift.support[1]
-    z_s_min = recipe.source.redshift.support[0]
-    if z_s_min <= z_l_max:
-        raise RecipeError(origin, "source.redshift",
-                          f"can be {z_s_min:g}, not behind lenses at redshift up to {z_l_max:g} (lens.redshift)",
-                          "source redshifts all above the largest lens redshift")
-    pos = recipe.source.position
+    z_lens = lens.population.redshift_range if lens.population is not None else lens.redshift.support
+    z_source = source.counts.redshift_range if source.counts is not None else source.redshift.support
+    pos = source.position
+    if pos.mode is None and z_source[0] <= z_lens[1]:
+        raise RecipeError(origin, "source.counts.redshift_range" if source.counts is not None else "source.redshift",
+                          f"can be {z_source[0]:g}, not behind lenses at redshift up to {z_lens[1]:g} "
+                          f"({'lens.population.redshift_range' if lens.population is not None else 'lens.redshift'})",
+                          "source redshifts all above the largest lens redshift, or a placement mode "
+                          "(source.position.mode = 'lens' redraws pairs, 'sky' keeps foreground sources)")
+    if z_source[1] <= z_lens[0]:
+        raise RecipeError(origin, "source", f"no source can lie behind a lens: sources reach z = {z_source[1]:g}, "
+                          f"lenses start at z = {z_lens[0]:g}", "overlapping redshift ranges")
+    explicit = pos.radius_in_einstein_radii is not None or pos.x is not None or pos.y is not None
+    if pos.mode is not None and explicit:
+        raise RecipeError(origin, "source.position", f"gives mode = {pos.mode!r} and explicit positions",
+                          "either mode, or radius_in_einstein_radii, or x and y")
     if pos.radius_in_einstein_radii is not None and (pos.x is not None or pos.y is not None):
         raise RecipeError(origin, "source.position", "gives both radius_in_einstein_radii and x/y",
                           "either radius_in_einstein_radii, or x and y")
     if (pos.x is None) != (pos.y is None):
         raise RecipeError(origin, "source.position", "gives only one of x and y", "both x and y")
+    if pos.mode == "sky" and pos.density is None and source.counts is None:
+        raise RecipeError(origin, "source.position.density", "is missing for mode = 'sky'",
+                          "a source density (arcmin^-2), or a [source.counts] table")
+    if pos.mode != "sky" and pos.density is not None:
+        raise RecipeError(origin, "source.position.density", "applies to mode = 'sky' only",
+                          "remove it, or set mode = 'sky'")
     cosmo = recipe.cosmology
     if cosmo.name is not None:
         from .cosmology import available_names
@@ -640,6 +850,29 @@ def _check_consistency(recipe: Recipe) -> None:
     elif cosmo.H0 is None or cosmo.Om0 is None:
         raise RecipeError(origin, "cosmology", "needs a name or both H0 and Om0",
                           "name = 'Planck18', or H0 = 70, Om0 = 0.3")
+
+
+def _check_either(origin: str, where: str, table_given: bool, table_name: str, keys: Mapping,
+                  colors: Mapping | None = None) -> None:
+    """Either the sub-table ``table_name`` (a physical model) or all the explicit ``keys``."""
+    given = [k for k, v in keys.items() if v is not None] + (["colors"] if colors else [])
+    if table_given and given:
+        raise RecipeError(origin, f"{where}.{given[0]}", f"is set together with [{where}.{table_name}]",
+                          f"either [{where}.{table_name}] or explicit " + ", ".join(keys))
+    if not table_given:
+        missing = [k for k, v in keys.items() if v is None]
+        if missing:
+            raise RecipeError(origin, f"{where}.{missing[0]}", "is missing",
+                              f"a value or distribution, or a [{where}.{table_name}] table")
+
+
+def _check_filter(origin: str, path: str, spec: str, base: str) -> None:
+    from .photometry import load_filter
+
+    try:
+        load_filter(spec, base)
+    except (OSError, ValueError) as exc:
+        raise RecipeError(origin, path, str(exc), "a GalSim filter name or a two-column text file") from None
 
 
 def _show(value: Any) -> str:

@@ -11,7 +11,10 @@ import math
 import time
 from dataclasses import dataclass, field
 
-from .lens_equation import ImageSet, find_images
+import numpy as np
+
+from .lens_equation import ImageSet, find_images, time_delays
+from .light import PointSource
 from .observe import ObservedBand, convolution_sampling, observe_scene, padding_for
 from .population import System
 from .raytrace import ComponentImages, PixelGrid, render_scene, trace_rays
@@ -27,6 +30,7 @@ class RenderedSystem:
     bands: tuple  # of ObservedBand, in survey order
     magnification: float  # extended-source magnification in the reference band
     images: ImageSet  # images of the source centre within the cutout
+    time_delays: np.ndarray = field(default_factory=lambda: np.empty(0), compare=False)  # days after the first image
     timings: dict = field(default_factory=dict, compare=False)
 
     def band(self, name: str) -> ObservedBand:
@@ -84,6 +88,15 @@ def render_system(system: System, survey: SurveySettings, reference_band: str) -
     t1 = time.perf_counter()
     timings["ray_tracing"] = t1 - t0
 
+    # Images of the source centre first: a point source (quasar) is drawn at them.
+    windows = image_search_windows(system.einstein_radius, system.mass_q,
+                                   math.hypot(system.source_x, system.source_y), grid)
+    images = find_images(mass, system.source_x, system.source_y, windows)
+    delays = (time_delays(mass, images, system.source_x, system.source_y, system.days_per_arcsec2)
+              if math.isfinite(system.days_per_arcsec2) else np.zeros(len(images)))
+    t_images = time.perf_counter()
+    timings["image_finding"] = t_images - t1
+
     observed, magnification = [], math.nan
     # Shapes are achromatic: evaluate each once for all bands, on the PSF stage's grid.
     components = ComponentImages(rays, sampling=sampling, adaptive=survey.adaptive_supersampling)
@@ -91,8 +104,13 @@ def render_system(system: System, survey: SurveySettings, reference_band: str) -
     t_scene = t_observe = 0.0
     for conditions, seed in zip(system.bands, system.noise_seeds):
         ta = time.perf_counter()
+        points = ()
+        if system.quasar_magnitudes is not None:
+            flux = system.quasar_flux(conditions.name)
+            points = tuple(PointSource(flux=flux * abs(float(mu)), center=(float(x), float(y)))
+                           for x, y, mu in zip(images.x, images.y, images.magnification))
         scene = render_scene(conditions.name, rays, system.lens_light(conditions.name),
-                             system.source_light(conditions.name), components)
+                             system.source_light(conditions.name), components, lensed_points=points)
         tb = time.perf_counter()
         observed.append(observe_scene(scene, conditions, seed))
         tc = time.perf_counter()
@@ -102,11 +120,5 @@ def render_system(system: System, survey: SurveySettings, reference_band: str) -
             magnification = scene.magnification
     timings["scene"] = t_scene
     timings["galsim_stage"] = t_observe
-
-    t2 = time.perf_counter()
-    windows = image_search_windows(system.einstein_radius, system.mass_q,
-                                   math.hypot(system.source_x, system.source_y), grid)
-    images = find_images(mass, system.source_x, system.source_y, windows)
-    timings["image_finding"] = time.perf_counter() - t2
     return RenderedSystem(system=system, grid=grid, bands=tuple(observed), magnification=magnification,
-                          images=images, timings=timings)
+                          images=images, time_delays=delays, timings=timings)

@@ -95,7 +95,7 @@ class RunFolder:
     def record(self, result: ShardResult) -> None:
         self.manifest["shards"][str(result.spec.index)] = {
             "first_system": result.spec.first_system, "n_systems": result.spec.n_systems,
-            "files": result.files}
+            "files": result.files, "selection": result.selection}
         stages = self.manifest.setdefault("seconds_by_stage", {})
         for key, value in result.timings.items():
             stages[key] = round(stages.get(key, 0.0) + value, 3)

@@ -20,7 +20,7 @@ from dataclasses import dataclass
 from typing import Sequence, Union
 
 import numpy as np
-from scipy import stats
+from scipy import special, stats
 
 __all__ = [
     "Fixed",
@@ -101,7 +101,9 @@ class TruncatedNormal:
     """A normal distribution (``mean``, ``sigma``) truncated to ``[low, high]``.
 
     ``low``/``high`` may be infinite; the support is then unbounded on that side.
-    Drawn by inverting the truncated CDF (scipy.stats.truncnorm), one uniform per draw.
+    Drawn by inverting the truncated CDF with scipy.special's ndtr/ndtri (the same values as
+    scipy.stats.truncnorm.ppf, at a hundredth of the cost), one uniform per draw; a range above the
+    mean is inverted on the mirrored side, where the CDF keeps its precision.
     """
 
     mean: float
@@ -123,7 +125,13 @@ class TruncatedNormal:
     def draw(self, rng: np.random.Generator) -> float:
         a, b = (self.low - self.mean) / self.sigma, (self.high - self.mean) / self.sigma
         u = rng.uniform()
-        return float(stats.truncnorm.ppf(u, a, b, loc=self.mean, scale=self.sigma))
+        if a > 0:  # mirror: -x is a normal truncated to [-b, -a]
+            lo, hi = special.ndtr(-b), special.ndtr(-a)
+            x = -special.ndtri(hi - u * (hi - lo))
+        else:
+            lo, hi = special.ndtr(a), special.ndtr(b)
+            x = special.ndtri(lo + u * (hi - lo))
+        return float(min(max(self.mean + self.sigma * x, self.low), self.high))
 
     @property
     def support(self) -> tuple[float, float]:
@@ -193,15 +201,29 @@ class Grid:
 Parameter = Union[Fixed, Uniform, LogUniform, TruncatedNormal, Choice, Grid]
 
 
-def system_streams(seed: int, system_id: int, names: Sequence[str]) -> dict[str, np.random.Generator]:
+class _Streams(dict):
+    """The named generators of one system, each made on first use (most draws use a few)."""
+
+    def __init__(self, children: dict):
+        super().__init__()
+        self._children = children
+
+    def __missing__(self, name: str) -> np.random.Generator:
+        rng = np.random.Generator(np.random.PCG64(self._children[name]))
+        self[name] = rng
+        return rng
+
+
+def system_streams(seed: int, system_id: int, names: Sequence[str], candidate: int = 0) -> dict[str, np.random.Generator]:
     """Independent generators for one system, one per named purpose.
 
-    The streams depend only on ``(seed, system_id)`` and the position of each name in ``names``,
-    never on which process draws the system or in which order.
+    The streams depend only on ``(seed, system_id, candidate)`` and the position of each name in
+    ``names``, never on which process draws the system or in which order.  ``candidate`` numbers the
+    redraws of a system that selection cuts rejected (0: the first draw).
     """
-    root = np.random.SeedSequence(entropy=int(seed), spawn_key=(int(system_id),))
-    children = root.spawn(len(names))
-    return {name: np.random.Generator(np.random.PCG64(child)) for name, child in zip(names, children)}
+    key = (int(system_id),) if candidate == 0 else (int(system_id), int(candidate))
+    root = np.random.SeedSequence(entropy=int(seed), spawn_key=key)
+    return _Streams(dict(zip(names, root.spawn(len(names)))))
 
 
 def grid_cell(system_id: int, grid_sizes: Sequence[int]) -> tuple[int, ...]:

@@ -19,10 +19,10 @@ from astropy.table import Table
 from .output.checksums import sha256_of
 from .output.cutout_fits import write_cutout
 from .output.shard_fits import write_shard
-from .output.truth import subhalo_rows, subhalo_table, truth_row, truth_table
+from .output.truth import image_rows, image_table, subhalo_rows, subhalo_table, truth_row, truth_table
 from .population import PopulationSampler
 from .recipe import Recipe
-from .render import render_system
+from .selection import merge_attrition, select_and_render
 
 __all__ = ["ShardSpec", "ShardResult", "shard_plan", "render_shard", "shard_path", "cutout_path"]
 
@@ -39,6 +39,7 @@ class ShardResult:
     spec: ShardSpec
     files: dict  # relative path -> sha256; the shard file first
     timings: dict = field(default_factory=dict)
+    selection: dict = field(default_factory=dict)  # attrition: accepted, candidates, rejected_by
 
 
 def shard_plan(recipe: Recipe) -> list[ShardSpec]:
@@ -76,18 +77,19 @@ def render_shard(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
         cubes["SOURCE"] = np.zeros(shape, np.float32)
         cubes["LENS"] = np.zeros(shape, np.float32)
     psf_cube = None
-    rows, subhalos, files = [], [], {}
+    rows, subhalos, images, files = [], [], [], {}
+    attrition: dict = {}
     shard_file = shard_path(recipe, spec.index)
     timings = {"sampling": 0.0, "ray_tracing": 0.0, "scene": 0.0, "galsim_stage": 0.0,
                "image_finding": 0.0, "writing": 0.0}
     for k in range(spec.n_systems):
         system_id = spec.first_system + k
         t0 = time.perf_counter()
-        system = sampler.draw(system_id)
-        timings["sampling"] += time.perf_counter() - t0
-        rendered = render_system(system, survey, recipe.reference_band)
+        rendered, selected = select_and_render(sampler, system_id)
+        merge_attrition(attrition, selected["rejections"])
         for key, value in rendered.timings.items():
             timings[key] += value
+        timings["sampling"] += time.perf_counter() - t0 - sum(rendered.timings.values())
         t1 = time.perf_counter()
         for b, observed in enumerate(rendered.bands):
             cubes["IMAGES"][k, b] = observed.image
@@ -103,8 +105,10 @@ def render_shard(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
             relative = cutout_path(recipe, system_id)
             write_cutout(rendered, run_folder / relative, run_name=recipe.name)
             files[relative] = None
-        rows.append(truth_row(rendered, relative, shard=shard_file, shard_index=k))
+        rows.append(truth_row(rendered, relative, shard=shard_file, shard_index=k, flags=selected["flags"],
+                              cut_names=recipe.selection.cut_names))
         subhalos += subhalo_rows(rendered)
+        images += image_rows(rendered)
         timings["writing"] += time.perf_counter() - t1
     t2 = time.perf_counter()
     cubes["PSF"] = psf_cube
@@ -115,12 +119,12 @@ def render_shard(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
               "PIXSCALE": (survey.pixel_scale, "[arcsec/pixel] pixel scale"),
               "BUNIT": ("adu", "units of IMAGES, SOURCE, LENS"),
               "MASKTHR": (output.mask_threshold, "MASK: source > MASKTHR x pixel noise sigma")}
-    write_shard(run_folder / shard_file, cubes, truth_table(rows), header, extra_tables={"SUBHALOS": subhalo_table(subhalos)})
+    write_shard(run_folder / shard_file, cubes, truth_table(rows), header, extra_tables={"SUBHALOS": subhalo_table(subhalos), "IMAGE_TRUTH": image_table(images)})
     checksums = {shard_file: sha256_of(run_folder / shard_file)}
     for relative in files:
         checksums[relative] = sha256_of(run_folder / relative)
     timings["writing"] += time.perf_counter() - t2
-    return ShardResult(spec=spec, files=checksums, timings=timings)
+    return ShardResult(spec=spec, files=checksums, timings=timings, selection=attrition)
 
 
 def read_truth_rows(run_folder: Path, recipe: Recipe, spec: ShardSpec, table: str = "TRUTH") -> Table:

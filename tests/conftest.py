@@ -73,6 +73,76 @@ SMALL_RECIPE = textwrap.dedent("""
 """)
 
 
+# The same survey with physical populations: a velocity dispersion function, scaling relations,
+# number counts and template colours, sources placed in lens mode.
+PHYSICAL_RECIPE = textwrap.dedent("""
+    name = "physical"
+    count = 6
+    seed = 7
+
+    [survey]
+    name = "Test survey (illustrative)"
+    pixel_scale = 0.2
+    cutout_size = 32
+    supersampling = 4
+    reference_band = "r"
+
+    [survey.bands.g]
+    filter = "LSST_g"
+    zero_point = 26.6
+    sky_brightness = 22.0
+    exposure_time = 900.0
+    gain = 4.0
+    read_noise = 7.0
+    psf = { profile = "moffat", beta = 3.0, fwhm = 0.9 }
+
+    [survey.bands.r]
+    filter = "LSST_r"
+    zero_point = 26.8
+    sky_brightness = 21.2
+    exposure_time = 900.0
+    gain = 4.0
+    read_noise = 7.0
+    psf = { profile = "moffat", beta = 3.0, fwhm = 0.8 }
+
+    [cosmology]
+    name = "Planck18"
+
+    [lens.population]
+    velocity_function = "choi2007"
+    redshift_range = [0.1, 0.9]
+    velocity_dispersion_range = [150.0, 350.0]
+
+    [lens.mass]
+    q = { uniform = [0.6, 1.0] }
+    angle = { uniform = [0.0, 180.0] }
+
+    [lens.shear]
+    gamma = { uniform = [0.0, 0.05] }
+    angle = { uniform = [0.0, 180.0] }
+
+    [lens.light.scaling]
+    mass_to_light = 3.0
+
+    [source.counts]
+    magnitude_range = [21.0, 25.0]
+    redshift_range = [0.3, 4.0]
+
+    [source]
+    q = 0.7
+
+    [source.position]
+    mode = "lens"
+
+    [source.clumps]
+    count = { choice = [0, 2] }
+    template = "irregular"
+
+    [output]
+    shard_size = 3
+""")
+
+
 @pytest.fixture
 def small_recipe_text() -> str:
     return SMALL_RECIPE

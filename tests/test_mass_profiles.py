@@ -200,7 +200,9 @@ def test_multiplane_with_one_plane_is_single_plane():
     multi = MultiPlaneLens(planes=(lens,), redshifts=(0.5,), z_source=2.0, cosmology=Planck18)
     x, y = np.array(POINTS).T
     np.testing.assert_allclose(np.array(multi.ray_shoot(x, y)), np.array(lens.ray_shoot(x, y)), atol=1e-14)
-    np.testing.assert_allclose(multi.magnification(x, y), lens.magnification(x, y), rtol=1e-8)
+    # The SIE's Hessian is analytic, the multi-plane one differenced (step 1e-4 arcsec): they agree
+    # to the differencing error.
+    np.testing.assert_allclose(multi.magnification(x, y), lens.magnification(x, y), rtol=1e-6)
 
 
 def test_two_planes_against_an_independent_calculation():

@@ -112,6 +112,14 @@ class CompositeMass(MassModel):
     def potential(self, x, y) -> np.ndarray:
         return sum(c.potential(x, y) for c in self.components)
 
+    def deflection_and_hessian(self, x, y, step: float = JACOBIAN_STEP):
+        """The sum of the components' (each analytic where the model has it, else differenced)."""
+        total = [np.array(t, dtype=float) for t in self.components[0].deflection_and_hessian(x, y, step)]
+        for c in self.components[1:]:
+            for t, part in zip(total, c.deflection_and_hessian(x, y, step)):
+                t += part
+        return tuple(total)
+
 
 def _components(model: MassModel) -> tuple:
     return model.components if isinstance(model, CompositeMass) else (model,)

@@ -51,6 +51,14 @@ class ExternalShear(MassModel):
         g1, g2 = self.components_g1_g2
         return g1 * dx + g2 * dy, g2 * dx - g1 * dy
 
+    uniform_hessian = True  # the same Hessian everywhere: see simlens.caustics
+
+    def deflection_and_hessian(self, x, y, step: float = 0.0):
+        """Analytic: ``psi_xx = g1``, ``psi_xy = g2``, ``psi_yy = -g1``."""
+        ax, ay = self.deflection(x, y)
+        g1, g2 = self.components_g1_g2
+        return ax, ay, np.full_like(ax, g1), np.full_like(ax, g2), np.full_like(ax, -g1)
+
     def convergence(self, x, y):
         dx, _ = self._offsets(x, y)
         return np.zeros_like(dx)
@@ -85,6 +93,14 @@ class ConvergenceSheet(MassModel):
 
     def convergence(self, x, y):
         return np.full_like(np.asarray(x, dtype=float), self.kappa)
+
+    uniform_hessian = True
+
+    def deflection_and_hessian(self, x, y, step: float = 0.0):
+        """Analytic: ``psi_xx = psi_yy = kappa``, ``psi_xy = 0``."""
+        ax, ay = self.deflection(x, y)
+        k = np.full_like(ax, self.kappa)
+        return ax, ay, k, np.zeros_like(ax), k.copy()
 
     def potential(self, x, y):
         dx = np.asarray(x, dtype=float) - self.center[0]

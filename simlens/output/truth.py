@@ -33,8 +33,29 @@ source_q, source_angle     -, deg    source-disk shape
 source_x, source_y         arcsec    source centre, source plane, relative to the lens centre
 source_n_clumps                      number of star-forming clumps
 magnification                        extended-source magnification (reference band): lensed
-                                     flux in the rendered field over unlensed flux
-n_images                             images of the source centre in the rendered field
+                                     flux of the source galaxy in the rendered field over its
+                                     unlensed flux (point-source images not included)
+n_images                             images of the source centre in the rendered field (each a
+                                     row of images.ecsv, with magnification and time delay)
+point_magnification                  sum of |magnification| of those images (point source)
+max_time_delay             day       delay between the first and the last of those images
+lens_absolute_magnitude    mag       rest-frame AB magnitude of the lens light in the scaling
+                                     relations' rest filter (nan unless lens.light.scaling)
+lens_luminosity            L_sun     its luminosity in that filter
+lens_stellar_mass          M_sun     luminosity x mass_to_light (nan unless given)
+source_absolute_magnitude  mag       rest-frame AB magnitude of the source (source.counts only)
+quasar_mag_<band>          mag       unlensed point source at the source centre (nan: none)
+placement                            fixed, lens or sky (source.position.mode)
+region_radius, region_area arcsec    the disc in which source centres fall uniformly; its area
+                           arcsec2
+region_widened                       the caustics reached beyond the nominal disc, which was
+                                     widened to hold them
+multiply_imaged                      the source centre lies inside a caustic or the cut
+tangential_caustic_area    arcsec2   area inside the tangential caustic
+inner_caustic_area         arcsec2   area inside the radial caustic or the cut
+candidate                            which draw of this system passed the selection (0: first)
+passes_<cut>                         the system passes that [selection] cut
+selected                             it passes all of them
 arc_snr_<band>                       matched-filter S/N of the noiseless lensed source:
                                      sqrt(sum_i S_i^2 / var_i), var_i = expected per-pixel variance
                                      (sky + lens + source Poisson and read noise), over the cutout
@@ -54,17 +75,21 @@ from astropy.table import Table
 
 from ..render import RenderedSystem
 
-__all__ = ["truth_row", "truth_table", "subhalo_rows", "subhalo_table", "TRUTH_UNITS"]
+__all__ = ["truth_row", "truth_table", "subhalo_rows", "subhalo_table", "image_rows", "image_table", "TRUTH_UNITS"]
 
 TRUTH_UNITS = {
     "ra": u.deg, "dec": u.deg, "velocity_dispersion": u.km / u.s, "einstein_radius": u.arcsec,
     "mass_angle": u.deg, "shear_angle": u.deg, "mass_core_radius": u.arcsec,
     "multipole_m3_angle": u.deg, "multipole_m4_angle": u.deg, "subhalo_mass_total": u.M_sun, "lens_half_light_radius": u.arcsec, "lens_angle": u.deg,
     "source_half_light_radius": u.arcsec, "source_angle": u.deg, "source_x": u.arcsec, "source_y": u.arcsec,
+    "max_time_delay": u.day, "lens_absolute_magnitude": u.mag, "lens_luminosity": u.L_sun,
+    "lens_stellar_mass": u.M_sun, "source_absolute_magnitude": u.mag, "region_radius": u.arcsec,
+    "region_area": u.arcsec**2, "tangential_caustic_area": u.arcsec**2, "inner_caustic_area": u.arcsec**2,
 }
 
 
-def truth_row(rendered: RenderedSystem, file: str, shard: str = "", shard_index: int = -1) -> dict:
+def truth_row(rendered: RenderedSystem, file: str, shard: str = "", shard_index: int = -1,
+              flags: dict | None = None, cut_names: tuple = ()) -> dict:
     s = rendered.system
     row = {
         "system_id": s.system_id, "file": file, "shard": shard, "shard_index": shard_index,
@@ -89,7 +114,21 @@ def truth_row(rendered: RenderedSystem, file: str, shard: str = "", shard_index:
                 "source_sersic_index": s.source_sersic_index, "source_q": s.source_q,
                 "source_angle": s.source_angle, "source_x": s.source_x, "source_y": s.source_y,
                 "source_n_clumps": len(s.clumps),
-                "magnification": rendered.magnification, "n_images": len(rendered.images)})
+                "magnification": rendered.magnification, "n_images": len(rendered.images),
+                "point_magnification": float(np.abs(rendered.images.magnification).sum()),
+                "max_time_delay": float(rendered.time_delays.max()) if len(rendered.images) else 0.0,
+                "lens_absolute_magnitude": s.lens_absolute_magnitude, "lens_luminosity": s.lens_luminosity,
+                "lens_stellar_mass": s.lens_stellar_mass,
+                "source_absolute_magnitude": s.source_absolute_magnitude})
+    row.update({f"quasar_mag_{b}": (s.quasar_magnitudes[b] if s.quasar_magnitudes is not None else float("nan"))
+                for b in names})
+    row.update({"placement": s.placement, "region_radius": s.region_radius, "region_area": s.region_area,
+                "region_widened": s.region_widened, "multiply_imaged": s.multiply_imaged,
+                "tangential_caustic_area": s.tangential_caustic_area, "inner_caustic_area": s.inner_caustic_area,
+                "candidate": s.candidate})
+    flags = flags or {}
+    row.update({f"passes_{name}": bool(flags.get(name, True)) for name in cut_names})
+    row["selected"] = all(bool(flags.get(name, True)) for name in cut_names)
     row.update({f"arc_snr_{b.band.name}": b.arc_snr for b in rendered.bands})
     row.update({f"psf_fwhm_{b.name}": b.psf_fwhm for b in s.bands})
     row.update({f"magzero_{b.name}": b.magzero for b in s.bands})
@@ -124,10 +163,36 @@ def truth_table(rows: Sequence[dict]) -> Table:
     for name, column in table.columns.items():
         if name in TRUTH_UNITS:
             column.unit = TRUTH_UNITS[name]
-        elif name.startswith(("lens_mag_", "source_mag_")):
+        elif name.startswith(("lens_mag_", "source_mag_", "quasar_mag_")):
             column.unit = u.mag
         elif name.startswith("psf_fwhm_"):
             column.unit = u.arcsec
         elif name.startswith("magzero_"):
             column.unit = u.mag
+    return table
+
+
+IMAGE_COLUMNS = ("system_id", "image", "x", "y", "magnification", "parity", "arrival", "time_delay")
+IMAGE_UNITS = {"x": u.arcsec, "y": u.arcsec, "time_delay": u.day}
+
+
+def image_rows(rendered: RenderedSystem) -> list[dict]:
+    """One row per image of the source centre: position (arcsec from the lens centre, image plane),
+    signed magnification, parity (+1 minimum or maximum, -1 saddle), arrival order (0 first) and
+    time delay after the first image (days)."""
+    im, delays = rendered.images, rendered.time_delays
+    order = np.argsort(np.argsort(delays, kind="stable"), kind="stable") if len(im) else np.empty(0, int)
+    return [{"system_id": rendered.system.system_id, "image": k, "x": float(im.x[k]), "y": float(im.y[k]),
+             "magnification": float(im.magnification[k]), "parity": int(np.sign(im.magnification[k])),
+             "arrival": int(order[k]), "time_delay": float(delays[k])} for k in range(len(im))]
+
+
+def image_table(rows: Sequence[dict]) -> Table:
+    """Images keyed by system_id (see :func:`image_rows`)."""
+    if rows:
+        table = Table(rows=list(rows), names=IMAGE_COLUMNS)
+    else:
+        table = Table(names=IMAGE_COLUMNS, dtype=(np.int64, np.int64, float, float, float, np.int64, np.int64, float))
+    for name, unit in IMAGE_UNITS.items():
+        table[name].unit = unit
     return table

@@ -1,0 +1,137 @@
+"""Galaxy physics for the sampler: lens light from the velocity dispersion, source photometry and
+sizes from number counts, and point-source colours -- all magnitudes through the survey's filters.
+
+Each model is built once per run from the recipe (the K-correction tables cost a few tens of
+milliseconds each) and then draws one galaxy from a random generator in microseconds.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Mapping
+
+import numpy as np
+
+from .distances import DistanceTable
+from .photometry import kcorrection
+from .scaling_relations import (SUN_ABSOLUTE_MAGNITUDE_R, FaberJackson, FundamentalPlane, NumberCounts,
+                                RedshiftGivenMagnitude, SizeLuminosity)
+
+__all__ = ["LensLight", "LensLightModel", "SourcePhotometry", "SourceModel", "PointSourceColours"]
+
+ARCSEC_PER_RADIAN = 180.0 * 3600.0 / math.pi
+MIN_LIGHT_AXIS_RATIO = 0.2
+
+
+def _arcsec(size_kpc: float, d_a_mpc: float) -> float:
+    return size_kpc / (d_a_mpc * 1e3) * ARCSEC_PER_RADIAN
+
+
+@dataclass(frozen=True)
+class LensLight:
+    absolute_magnitude: float  # rest-frame, AB, in the rest filter
+    luminosity: float  # L_sun in the rest filter
+    stellar_mass: float  # M_sun (nan without a mass-to-light ratio)
+    magnitudes: Mapping[str, float]  # observed, AB, per band
+    half_light_radius: float  # arcsec
+    half_light_radius_kpc: float
+    q: float
+    angle: float
+
+
+class LensLightModel:
+    """Faber-Jackson luminosity, fundamental-plane size and an early-type template, from sigma."""
+
+    def __init__(self, settings, distances: DistanceTable, band_filters: Mapping[str, str], base: str):
+        self.settings = settings
+        self.distances = distances
+        self.faber_jackson = FaberJackson(settings.faber_jackson_slope, settings.faber_jackson_magnitude,
+                                          settings.faber_jackson_sigma, settings.faber_jackson_scatter)
+        self.plane = FundamentalPlane(settings.plane_a, settings.plane_b, settings.plane_c, settings.plane_scatter)
+        self.k = {b: kcorrection(settings.template, f, settings.rest_filter, base) for b, f in band_filters.items()}
+
+    def draw(self, sigma: float, z: float, mass_q: float, mass_angle: float, rng) -> LensLight:
+        s = self.settings
+        absolute = self.faber_jackson.draw(sigma, rng)
+        r_kpc = self.plane.draw_radius(sigma, absolute, rng)
+        modulus = float(self.distances.distance_modulus(z))
+        mags = {b: absolute + modulus + k(z) for b, k in self.k.items()}
+        q = float(np.clip(mass_q + s.q_scatter * rng.standard_normal(), MIN_LIGHT_AXIS_RATIO, 1.0))
+        angle = mass_angle + s.angle_scatter * rng.standard_normal()
+        luminosity = 10 ** (-0.4 * (absolute - SUN_ABSOLUTE_MAGNITUDE_R))
+        stellar = luminosity * s.mass_to_light if s.mass_to_light is not None else math.nan
+        return LensLight(absolute_magnitude=absolute, luminosity=luminosity, stellar_mass=stellar,
+                         magnitudes=mags, half_light_radius=_arcsec(r_kpc, float(self.distances.angular_diameter(z))),
+                         half_light_radius_kpc=r_kpc, q=q, angle=angle)
+
+
+@dataclass(frozen=True)
+class SourcePhotometry:
+    redshift: float
+    anchor_magnitude: float  # total magnitude in the counts band
+    absolute_magnitude: float  # rest filter, AB
+    disk_colors: Mapping[str, float]  # m_band - m_anchor (0 for the anchor band)
+    clump_colors: Mapping[str, float]
+    half_light_radius: float  # arcsec
+    half_light_radius_kpc: float
+
+
+class SourceModel:
+    """Number counts, p(z | m), the Shen et al. size-luminosity relation and templates."""
+
+    def __init__(self, settings, distances: DistanceTable, band_filters: Mapping[str, str], anchor_band: str,
+                 clump_template: str | None, base: str):
+        self.settings = settings
+        self.distances = distances
+        self.anchor_band = anchor_band
+        self.counts = NumberCounts(settings.density, settings.pivot, settings.slope)
+        self.redshifts = RedshiftGivenMagnitude(settings.z0_slope, settings.z0_intercept)
+        self.sizes = SizeLuminosity()
+        self.k_disk = {b: kcorrection(settings.template, f, settings.rest_filter, base) for b, f in band_filters.items()}
+        clumps = clump_template or settings.template
+        self.k_clump = {b: kcorrection(clumps, f, settings.rest_filter, base) for b, f in band_filters.items()}
+
+    @property
+    def sky_density(self) -> float:
+        """Sources per arcmin^2 in the magnitude range."""
+        return self.counts.between(*self.settings.magnitude_range)
+
+    def draw_magnitudes_and_redshifts(self, rng, n: int) -> tuple[np.ndarray, np.ndarray]:
+        """``n`` (anchor magnitude, redshift) pairs: the part of a source that decides whether it
+        lies behind the lens, drawn in bulk for rejection sampling."""
+        s = self.settings
+        m = self.counts.draw(*s.magnitude_range, rng.uniform(size=n))
+        return m, self.redshifts.draw(m, *s.redshift_range, rng.uniform(size=n))
+
+    def draw(self, rng) -> SourcePhotometry:
+        m, z = self.draw_magnitudes_and_redshifts(rng, 1)
+        return self.complete(float(m[0]), float(z[0]), rng)
+
+    def complete(self, m: float, z: float, rng) -> SourcePhotometry:
+        """The rest of a source of anchor magnitude ``m`` at redshift ``z``: size and colours."""
+        s = self.settings
+        k_anchor = self.k_disk[self.anchor_band](z)
+        absolute = m - float(self.distances.distance_modulus(z)) - k_anchor
+        r_kpc = self.sizes.draw(absolute, z, rng) if s.size_scatter else float(10 ** self.sizes.mean_log_radius(absolute, z))
+        clump_anchor = self.k_clump[self.anchor_band](z)
+        return SourcePhotometry(
+            redshift=z, anchor_magnitude=m, absolute_magnitude=absolute,
+            disk_colors={b: k(z) - k_anchor for b, k in self.k_disk.items()},
+            clump_colors={b: k(z) - clump_anchor for b, k in self.k_clump.items()},
+            half_light_radius=_arcsec(r_kpc, float(self.distances.angular_diameter(z))),
+            half_light_radius_kpc=r_kpc)
+
+
+class PointSourceColours:
+    """Colours of a power-law continuum ``f_nu ~ nu^index`` at the source redshift."""
+
+    def __init__(self, spectral_index: float, band_filters: Mapping[str, str], reference_band: str, base: str):
+        ref_filter = band_filters[reference_band]
+        self.reference_band = reference_band
+        self.k = {b: kcorrection("", f, ref_filter, base, spectral_index=spectral_index)
+                  for b, f in band_filters.items()}
+
+    def colors(self, z: float) -> dict:
+        ref = self.k[self.reference_band](z)
+        return {b: k(z) - ref for b, k in self.k.items()}

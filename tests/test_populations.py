@@ -1,0 +1,221 @@
+"""Populations: distances, the velocity dispersion function, scaling relations and template colours,
+each checked against a published formula, a quoted value or a reference library."""
+
+from __future__ import annotations
+
+import math
+
+import galsim
+import numpy as np
+import pytest
+from astropy.cosmology import FlatLambdaCDM, LambdaCDM, Planck18
+from scipy import integrate, stats
+
+from simlens.distances import DistanceTable
+from simlens.photometry import KCorrection, Template, ab_magnitude_offset, load_filter
+from simlens.population import PopulationSampler
+from simlens.recipe import parse_recipe
+from simlens.scaling_relations import FaberJackson, FundamentalPlane, NumberCounts, RedshiftGivenMagnitude, SizeLuminosity
+from simlens.velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulation
+
+from .conftest import PHYSICAL_RECIPE
+
+
+# -- distances ------------------------------------------------------------------------------------
+@pytest.mark.parametrize("cosmo", [Planck18, LambdaCDM(H0=70, Om0=0.3, Ode0=0.6), LambdaCDM(H0=70, Om0=0.3, Ode0=0.8)],
+                         ids=["Planck18", "open", "closed"])
+def test_distance_table_matches_astropy(cosmo):
+    # Reference: astropy.cosmology (Hogg 1999 definitions), including curved models.
+    table = DistanceTable(cosmo)
+    z = np.linspace(0.02, 6.0, 200)
+    z1 = 0.4 * z
+    np.testing.assert_allclose(table.angular_diameter(z), cosmo.angular_diameter_distance(z).value, rtol=2e-6)
+    np.testing.assert_allclose(table.between(z1, z), cosmo.angular_diameter_distance(z1, z).value, rtol=2e-6)
+    np.testing.assert_allclose(table.luminosity(z), cosmo.luminosity_distance(z).value, rtol=2e-6)
+    np.testing.assert_allclose(table.differential_comoving_volume(z),
+                               cosmo.differential_comoving_volume(z).value, rtol=2e-6)
+
+
+# -- velocity dispersion function -------------------------------------------------------------------
+def test_velocity_function_integrates_to_phi_star():
+    # Sheth et al. (2003, eq. 4): the modified Schechter form is normalised so that the integral over
+    # sigma is phi_*, the quoted comoving density (8.0e-3 h^3 Mpc^-3 for Choi et al. 2007).
+    vdf = VELOCITY_FUNCTIONS["choi2007"]
+    total, _ = integrate.quad(lambda s: vdf.phi_star * float(vdf.pdf(s)), 0, 2000, limit=200)
+    assert total == pytest.approx(8.0e-3, rel=1e-6)
+    assert vdf.sigma_star == 161.0 and vdf.alpha == 2.32 and vdf.beta == 2.67
+
+
+@pytest.mark.parametrize("name", ["choi2007", "sheth2003"])
+def test_sampled_sigma_follows_the_velocity_function(name):
+    # Kolmogorov-Smirnov test (scipy.stats.kstest) of the drawn sigma against the truncated
+    # analytic CDF, computed independently by quadrature of the published form.
+    vdf = VELOCITY_FUNCTIONS[name]
+    table = DistanceTable(FlatLambdaCDM(H0=70, Om0=0.3))
+    population = DeflectorPopulation(vdf, table, (0.1, 1.0), (100.0, 350.0))
+    rng = np.random.default_rng(5)
+    sigma = np.array([population.draw(rng)[0] for _ in range(4000)])
+    norm, _ = integrate.quad(lambda s: float(vdf.pdf(s)), 100, 350)
+
+    def cdf(values):
+        return np.array([integrate.quad(lambda s: float(vdf.pdf(s)), 100, v)[0] / norm for v in np.atleast_1d(values)])
+
+    grid = np.linspace(100, 350, 400)
+    table_cdf = cdf(grid)
+    assert stats.kstest(sigma, lambda v: np.interp(v, grid, table_cdf)).pvalue > 0.01
+
+
+def test_cross_section_weighting_is_sigma_to_the_fourth():
+    # sigma^4 phi(sigma) is again a modified Schechter function with alpha + 4 (Sheth et al. 2003
+    # form); KS against the directly integrated sigma^4-weighted CDF.
+    vdf = VELOCITY_FUNCTIONS["choi2007"]
+    table = DistanceTable(FlatLambdaCDM(H0=70, Om0=0.3))
+    population = DeflectorPopulation(vdf, table, (0.1, 1.0), (100.0, 350.0), weight_power=4.0)
+    rng = np.random.default_rng(6)
+    sigma = np.array([population.draw(rng)[0] for _ in range(3000)])
+    grid = np.linspace(100, 350, 400)
+    weighted = grid**4 * vdf.pdf(grid)
+    cdf = np.concatenate([[0], np.cumsum(0.5 * (weighted[1:] + weighted[:-1]) * np.diff(grid))])
+    cdf /= cdf[-1]
+    assert stats.kstest(sigma, lambda v: np.interp(v, grid, cdf)).pvalue > 0.01
+
+
+def test_lens_redshifts_follow_the_comoving_volume():
+    # Non-evolving population: dN/dz ~ dV_C/dz (astropy's differential_comoving_volume), KS test.
+    cosmo = FlatLambdaCDM(H0=70, Om0=0.3)
+    population = DeflectorPopulation(VELOCITY_FUNCTIONS["choi2007"], DistanceTable(cosmo), (0.05, 1.5), (100, 350))
+    rng = np.random.default_rng(7)
+    z = np.array([population.draw(rng)[1] for _ in range(4000)])
+    grid = np.linspace(0.05, 1.5, 500)
+    dv = cosmo.differential_comoving_volume(grid).value
+    cdf = np.concatenate([[0], np.cumsum(0.5 * (dv[1:] + dv[:-1]) * np.diff(grid))])
+    cdf /= cdf[-1]
+    assert stats.kstest(z, lambda v: np.interp(v, grid, cdf)).pvalue > 0.01
+
+
+def test_density_evolution_tilts_the_redshifts():
+    # phi_*(z) ~ (1 + z)^3 multiplies dN/dz by (1 + z)^3: the mean redshift rises accordingly
+    # (expected value by quadrature with astropy's volume element).
+    cosmo = FlatLambdaCDM(H0=70, Om0=0.3)
+    population = DeflectorPopulation(VELOCITY_FUNCTIONS["choi2007"], DistanceTable(cosmo), (0.05, 1.5), (100, 350),
+                                     density_evolution=3.0)
+    rng = np.random.default_rng(8)
+    z = np.array([population.draw(rng)[1] for _ in range(4000)])
+    w = lambda x: cosmo.differential_comoving_volume(x).value * (1 + x) ** 3  # noqa: E731
+    mean = integrate.quad(lambda x: x * w(x), 0.05, 1.5)[0] / integrate.quad(w, 0.05, 1.5)[0]
+    assert z.mean() == pytest.approx(mean, abs=4 * z.std() / math.sqrt(z.size))
+
+
+# -- scaling relations --------------------------------------------------------------------------
+def test_fundamental_plane_sample_recovers_the_published_coefficients():
+    # Bernardi et al. (2003c, r*): log R_e = 1.49 log sigma + 0.30 mu_e - 8.778 (from memory).  A
+    # least-squares fit (numpy.linalg.lstsq) to lens light drawn with the plane's scatter must
+    # recover a and b; the Faber-Jackson slope L ~ sigma^4 (Faber & Jackson 1976) likewise.
+    fj, plane = FaberJackson(), FundamentalPlane()
+    rng = np.random.default_rng(9)
+    sigma = 10 ** rng.uniform(2.0, 2.5, 3000)
+    absolute = np.array([fj.draw(s, rng) for s in sigma])
+    radius = np.array([plane.draw_radius(s, m, rng) for s, m in zip(sigma, absolute)])
+    mu = plane.mean_surface_brightness(absolute, radius)
+    design = np.column_stack([np.log10(sigma), mu, np.ones_like(mu)])
+    # The scatter is in R_e, which mu_e contains: fit at the plane's mean radius to avoid the bias.
+    mean_r = 10 ** plane.mean_log_radius(sigma, absolute)
+    mu_mean = plane.mean_surface_brightness(absolute, mean_r)
+    design = np.column_stack([np.log10(sigma), mu_mean, np.ones_like(mu)])
+    (a, b, c), *_ = np.linalg.lstsq(design, np.log10(mean_r), rcond=None)
+    assert (a, b, c) == pytest.approx((1.49, 0.30, -8.778), abs=1e-6)
+    slope = np.polyfit(np.log10(sigma), absolute, 1)[0]
+    assert slope == pytest.approx(-2.5 * 4.0, abs=0.3)
+    # Scatter of the drawn radii about the plane: the 0.1 dex requested.
+    assert np.std(np.log10(radius / mean_r)) == pytest.approx(0.1, rel=0.05)
+
+
+def test_size_luminosity_slopes_are_those_of_shen_2003():
+    # Shen et al. (2003, table 1, late types): R ~ L^0.21 at the faint end and L^0.53 at the bright
+    # end, with the transition at M0 = -20.52 (values quoted in the paper; from memory).
+    sizes = SizeLuminosity()
+    faint = np.array([-14.0, -13.0])
+    bright = np.array([-27.0, -26.0])
+    slope_faint = np.diff(sizes.mean_log_radius(faint)) / np.diff(-0.4 * faint)
+    slope_bright = np.diff(sizes.mean_log_radius(bright)) / np.diff(-0.4 * bright)
+    assert slope_faint[0] == pytest.approx(0.21, abs=0.005)
+    assert slope_bright[0] == pytest.approx(0.53, abs=0.005)
+    # R ~ (1 + z)^-0.75 at fixed luminosity (van der Wel et al. 2014, late types; from memory)
+    ratio = 10 ** (sizes.mean_log_radius(-21.0, 2.1) - sizes.mean_log_radius(-21.0, 0.1))
+    assert ratio == pytest.approx((3.1 / 1.1) ** -0.75)
+
+
+def test_number_counts_and_redshift_distribution():
+    # LSST Science Book (2009, eqs. 3.7-3.8; from memory): N(<i) = 46 arcmin^-2 10^(0.31 (i - 25)),
+    # p(z | i) = z^2 / (2 z0^3) exp(-z / z0), z0 = 0.0417 i - 0.744, whose mean is 3 z0.
+    counts, redshifts = NumberCounts(), RedshiftGivenMagnitude()
+    assert counts.cumulative(25.0) == pytest.approx(46.0)
+    assert counts.cumulative(24.0) == pytest.approx(46.0 * 10 ** -0.31)
+    rng = np.random.default_rng(10)
+    m = counts.draw(20.0, 25.0, rng.uniform(size=20000))
+    # dN/dm ~ 10^(0.31 m): the fraction brighter than 24 is the ratio of the cumulative counts
+    expected = counts.between(20.0, 24.0) / counts.between(20.0, 25.0)
+    assert np.mean(m < 24.0) == pytest.approx(expected, abs=4 * math.sqrt(expected * (1 - expected) / m.size))
+    z = redshifts.draw(25.0, 0.0, 20.0, rng.uniform(size=20000))
+    z0 = 0.0417 * 25 - 0.744
+    assert z.mean() == pytest.approx(3 * z0, rel=0.02)
+    assert stats.kstest(z / z0, stats.gamma(3).cdf).pvalue > 0.01
+
+
+# -- template colours ---------------------------------------------------------------------------
+@pytest.mark.parametrize("template,sed_file", [("elliptical", "CWW_E_ext.sed"), ("irregular", "CWW_Im_ext.sed")])
+@pytest.mark.parametrize("z", [0.0, 0.4, 1.2, 2.5])
+def test_template_colours_match_galsim(template, sed_file, z):
+    # Reference library: galsim.SED.calculateMagnitude with AB zero points through the same filter
+    # curves.  GalSim interpolates the template in photons, simlens in f_lambda: they agree to
+    # ~0.01 mag where the templates are coarsely tabulated (the UV extension).
+    share = galsim.meta_data.share_dir
+    sed = galsim.SED(f"{share}/SEDs/{sed_file}", wave_type="Ang", flux_type="flambda").atRedshift(z)
+    filters = {b: galsim.Bandpass(f"LSST_{b}.dat", wave_type="nm").withZeropoint("AB") for b in "gri"}
+    t = Template.named(template)
+    mine = {b: ab_magnitude_offset(t, load_filter(f"LSST_{b}"), z) for b in "gri"}
+    for a, b in (("g", "r"), ("r", "i")):
+        reference = sed.calculateMagnitude(filters[a]) - sed.calculateMagnitude(filters[b])
+        assert mine[a] - mine[b] == pytest.approx(reference, abs=0.01)
+
+
+def test_template_magnitude_matches_direct_quadrature():
+    # Direct numerical integration (scipy.integrate.quad) of the redshifted template through the
+    # filter curve, photon-counting AB definition (Hogg et al. 2002, eq. 8 form).
+    t, f = Template.named("spiral"), load_filter("LSST_r")
+    z = 0.8
+    lo, hi = f.wavelength[0], f.wavelength[-1]
+    thr = lambda lam: np.interp(lam, f.wavelength, f.throughput)  # noqa: E731
+    points = list(t.wavelength[(t.wavelength * (1 + z) > lo) & (t.wavelength * (1 + z) < hi)] * (1 + z))
+    num = integrate.quad(lambda lam: t.f_lambda(lam / (1 + z)) / (1 + z) * thr(lam) * lam, lo, hi,
+                         points=points[:49] + list(f.wavelength[1:-1][:49]), limit=500)[0]
+    ab = integrate.quad(lambda lam: 3631e-23 * 2.99792458e17 / lam**2 * thr(lam) * lam, lo, hi,
+                        points=list(f.wavelength[1:-1][:49]), limit=500)[0]
+    assert ab_magnitude_offset(t, f, z) == pytest.approx(-2.5 * math.log10(num / ab), abs=2e-3)
+
+
+def test_k_correction_vanishes_in_the_rest_filter_at_z_zero():
+    # Hogg et al. (2002): K_RR(0) = 0 by definition.
+    k = KCorrection(Template.named("elliptical"), load_filter("LSST_r"), load_filter("LSST_r"), z_max=1.0)
+    assert abs(k(0.0)) < 1e-9
+
+
+# -- physical recipe ----------------------------------------------------------------------------
+def test_physical_recipe_draws_consistent_systems():
+    recipe = parse_recipe(PHYSICAL_RECIPE)
+    sampler = PopulationSampler(recipe)
+    systems = [sampler.draw(i) for i in range(60)]
+    cosmo = sampler.cosmology
+    for s in systems:
+        assert s.z_source > s.z_lens and s.multiply_imaged and s.placement == "lens"
+        # Einstein radius of the SIS with the drawn sigma and astropy's distances (SEF 1992 eq. 8.36)
+        ratio = (cosmo.angular_diameter_distance(s.z_lens, s.z_source) / cosmo.angular_diameter_distance(s.z_source)).value
+        assert s.einstein_radius == pytest.approx(4 * math.pi * (s.velocity_dispersion / 299792.458) ** 2 * ratio
+                                                  * 206264.806, rel=1e-5)
+        # Lens apparent magnitude = M + distance modulus + K (astropy's distmod)
+        assert s.lens_stellar_mass == pytest.approx(3.0 * s.lens_luminosity)
+        assert math.isfinite(s.source_absolute_magnitude)
+        assert math.hypot(s.source_x, s.source_y) <= s.region_radius
+    # lens light follows the mass's orientation within the scatter (10 deg)
+    d_angle = np.array([s.lens_angle - s.mass_angle for s in systems])
+    assert np.std(d_angle) < 20.0
