@@ -80,9 +80,23 @@ def _check(args) -> int:
     systems = [sampler.draw(i) for i in range(n)]
     theta = np.array([s.einstein_radius for s in systems])
     mags = np.array([s.source_magnitude(recipe.reference_band) for s in systems])
-    print(f"  drawn truth of the first {n} systems (no images): Einstein radius "
-          f"{theta.min():.2f} / {np.median(theta):.2f} / {theta.max():.2f} arcsec (min / median / max); "
-          f"source {recipe.reference_band} magnitude {mags.min():.1f} / {np.median(mags):.1f} / {mags.max():.1f}")
+    z_l, z_s = np.array([s.z_lens for s in systems]), np.array([s.z_source for s in systems])
+    print(f"  drawn truth of the first {n} systems (no images), min / median / max:")
+    print(f"    Einstein radius {theta.min():.2f} / {np.median(theta):.2f} / {theta.max():.2f} arcsec; "
+          f"z_lens {z_l.min():.2f} / {np.median(z_l):.2f} / {z_l.max():.2f}; "
+          f"z_source {z_s.min():.2f} / {np.median(z_s):.2f} / {z_s.max():.2f}")
+    print(f"    source {recipe.reference_band} magnitude {mags.min():.1f} / {np.median(mags):.1f} / {mags.max():.1f}; "
+          f"multiply imaged (source centre inside a caustic): {sum(s.multiply_imaged for s in systems)}/{n}; "
+          f"placement: {systems[0].placement}")
+    rejected: dict = {}
+    for s in systems:
+        for name, count in s.rejections.items():
+            rejected[name] = rejected.get(name, 0) + count
+    from .selection import describe_attrition
+
+    print("    " + describe_attrition({"accepted": n, "candidates": n + sum(rejected.values()), "rejected_by": rejected})
+          + (" (cuts on images are applied by make)" if recipe.selection.min_arc_snr is not None
+             or recipe.selection.min_magnification is not None or recipe.selection.min_images is not None else ""))
     return 0
 
 

@@ -100,12 +100,15 @@ class DistanceTable:
         return d12 / (1.0 + z2)
 
     def ratio(self, z_lens, z_source):
-        """``D_ls / D_s``; 0 where the source is not behind the lens."""
+        """``D_ls / D_s``; 0 where the source is not behind the lens.  (For ``Omega_k = 0`` it is
+        ``1 - D_C(z_l) / D_C(z_s)``; in general Hogg's eq. 19 over D_M(z_s).)"""
         z_lens, z_source = np.broadcast_arrays(self._check(z_lens), self._check(z_source))
-        behind = z_source > z_lens
-        d_s = self.angular_diameter(np.where(behind, z_source, 1.0))
-        d_ls = self.between(np.where(behind, z_lens, 0.0), np.where(behind, z_source, 1.0))
-        out = np.where(behind, d_ls / d_s, 0.0)
+        m1 = self._transverse(self._comoving(z_lens))
+        m2 = self._transverse(self._comoving(z_source))
+        k = self.omega_k / self.hubble_distance**2
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out = np.where(z_source > z_lens,
+                           (m2 * np.sqrt(1.0 + k * m1**2) - m1 * np.sqrt(1.0 + k * m2**2)) / m2, 0.0)
         return float(out) if out.ndim == 0 else out
 
     def differential_comoving_volume(self, z):

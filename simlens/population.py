@@ -298,11 +298,12 @@ class PopulationSampler:
         limit = selection.max_candidates
         for candidate in range(first_candidate, first_candidate + limit):
             system, failed = self._draw_candidate(system_id, candidate)
-            if failed is None:
-                for name, n in system.rejections.items():  # geometry, drawn in bulk inside a candidate
-                    rejections[name] = rejections.get(name, 0) + n
+            if isinstance(failed, str):
+                failed = {failed: 1}
+            for name, n in (failed or system.rejections).items():  # bulk geometry draws count too
+                rejections[name] = rejections.get(name, 0) + n
+            if system is not None:
                 return dataclasses.replace(system, rejections=rejections)
-            rejections[failed] = rejections.get(failed, 0) + 1
         raise SelectionExhausted(_exhausted_message(system_id, limit, rejections))
 
     def _draw_candidate(self, system_id: int, candidate: int) -> tuple[System | None, str | None]:
@@ -311,11 +312,11 @@ class PopulationSampler:
         v, cell = self.draw_parameters(system_id, streams)
         ref = recipe.reference_band
         band_names = recipe.survey.band_names
-        lens_settings, source_settings = recipe.lens, recipe.source
+        source_settings = recipe.source
 
         # -- deflector and source redshift ------------------------------------------------------
         geometry = self._draw_geometry(v, streams)
-        if isinstance(geometry, str):
+        if isinstance(geometry, dict):
             return None, geometry
         sigma, z_lens, z_source, anchor_magnitude, geometry_rejections = geometry
         photometry = (self.source_model.complete(anchor_magnitude, z_source, streams["galaxies"])
@@ -421,10 +422,9 @@ class PopulationSampler:
         placed = self._place(system, v, streams["placement"])
         if placed is None:
             return None, "placement"
-        system = placed
         if selection.multiply_imaged:
-            checks["multiply_imaged"] = system.multiply_imaged
-            if selection.enforce and not system.multiply_imaged:
+            checks["multiply_imaged"] = placed["multiply_imaged"]
+            if selection.enforce and not placed["multiply_imaged"]:
                 return None, "multiply_imaged"
 
         # -- sky position and noise seeds (after the cuts, from their own streams) ---------------
@@ -434,21 +434,22 @@ class PopulationSampler:
         ra, dec = offset_on_sky(fp.ra, fp.dec, rng.uniform(0.0, 360.0), math.degrees(math.acos(cos_sep)))
         noise_seeds = tuple(int(s) for s in streams["noise"].integers(1, 2**31 - 1, size=len(bands)))
         return dataclasses.replace(system, ra=ra, dec=dec, noise_seeds=noise_seeds,
-                                   selection_flags=checks), None
+                                   selection_flags=checks, **placed), None
 
     GEOMETRY_BATCH = 16
+    GEOMETRY_BATCHES = 64  # per candidate, before it counts as rejected
 
     def _draw_geometry(self, v: dict, streams):
         """``(sigma, z_lens, z_source, source anchor magnitude, rejections)`` of a candidate, or the
-        name of the cut that rejects it.  With a physical population or number counts the pairs are
+        rejections (by cut) of all its bulk draws when none passed.  With a physical population or number counts the pairs are
         drawn in batches and rejected in bulk (cheap): in lens mode a source must lie behind the
         lens, and a pair is kept with probability (D_ls/D_s)^2, the distance part of the
         cross-section weight (sigma^4 is in the deflector draw)."""
         rng = streams["deflector"]
         lens_mode = self.mode == "lens"
         bulk = self.deflectors is not None or self.source_model is not None
-        rejections = {"source_in_front": 0, "cross_section": 0}
-        for _ in range(self.recipe.selection.max_candidates if bulk else 1):
+        rejections = {"source_in_front": 0, "cross_section": 0, "einstein_radius": 0}
+        for _ in range(self.GEOMETRY_BATCHES if bulk else 1):
             n = self.GEOMETRY_BATCH if bulk else 1
             if self.deflectors is not None:
                 z_l = self.deflectors.draw_redshift(rng.uniform(size=n))
@@ -465,19 +466,25 @@ class PopulationSampler:
                 return float(sigma[0]), float(z_l[0]), float(z_s[0]), float(m[0]), {}
             behind = z_s > z_l
             ratio = np.where(behind, self.distances.ratio(np.minimum(z_l, z_s), z_s), 0.0)
-            kept = behind & ((u <= ratio**2) if self.deflectors is not None else True)
+            weighted = behind & ((u <= ratio**2) if self.deflectors is not None else True)
+            kept = weighted
+            theta_range = self.recipe.selection.einstein_radius
+            if theta_range is not None and self.recipe.selection.enforce:
+                # the Einstein-radius cut is cheap here, in bulk (the same test as in _draw_candidate)
+                theta = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * ratio * ARCSEC_PER_RADIAN
+                kept = weighted & (theta >= theta_range[0]) & (theta <= theta_range[1])
             first = int(np.argmax(kept)) if kept.any() else n
             rejections["source_in_front"] += int(np.count_nonzero(~behind[:first]))
-            rejections["cross_section"] += int(np.count_nonzero(behind[:first] & ~kept[:first]))
+            rejections["cross_section"] += int(np.count_nonzero(behind[:first] & ~weighted[:first]))
+            rejections["einstein_radius"] += int(np.count_nonzero(weighted[:first] & ~kept[:first]))
             if first < n:
                 return (float(sigma[first]), float(z_l[first]), float(z_s[first]), float(m[first]),
                         {k: n_ for k, n_ in rejections.items() if n_})
-            if not bulk:
-                return "source_in_front"
-        return "source_in_front" if rejections["source_in_front"] else "cross_section"
+        return {k: n_ for k, n_ in rejections.items() if n_}
 
-    def _place(self, system: System, v: dict, rng) -> System | None:
-        """The source centre by the placement mode; None when a lens-mode candidate must be redrawn."""
+    def _place(self, system: System, v: dict, rng) -> dict | None:
+        """The source centre and placement truth by the placement mode (System fields); None when a
+        lens-mode candidate must be redrawn."""
         theta_e = system.einstein_radius
         pos = self.recipe.source.position
         if self.mode == "fixed" and pos.x is not None:
@@ -503,19 +510,20 @@ class PopulationSampler:
             x, y = _uniform_in_disc(radius, rng)
             multiple = bool(caustics.multiply_imaged(x, y)) if caustics is not None else False
             if multiple or self.mode == "sky":
-                return self._with_caustics(system, x, y, radius, widened, caustics)
+                return self._with_caustics(system, x, y, radius, widened, caustics, multiple)
         return None
 
     def _with_caustics(self, system: System, x: float, y: float, radius: float, widened: bool,
-                       caustics: CausticSet | None = None) -> System:
+                       caustics: CausticSet | None = None, multiple: bool | None = None) -> dict:
         if caustics is None and system.einstein_radius > 0:
             caustics = find_caustics(system.mass_model(), system.einstein_radius)
         tangential = caustics.caustic("tangential") if caustics is not None else None
         inner = next((c for c in caustics.caustics if c.kind != "tangential"), None) if caustics is not None else None
-        return dataclasses.replace(
-            system, source_x=float(x), source_y=float(y), placement=self.mode, region_radius=float(radius),
+        return dict(
+            source_x=float(x), source_y=float(y), placement=self.mode, region_radius=float(radius),
             region_widened=bool(widened),
-            multiply_imaged=bool(caustics.multiply_imaged(x, y)) if caustics is not None else False,
+            multiply_imaged=(multiple if multiple is not None else
+                             bool(caustics.multiply_imaged(x, y)) if caustics is not None else False),
             tangential_caustic_area=tangential.area if tangential is not None else 0.0,
             inner_caustic_area=inner.area if inner is not None else 0.0)
 

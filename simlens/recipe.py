@@ -343,7 +343,8 @@ class SourcePositionSettings:
                      doc="'lens': uniform in a region around the caustics, multiply imaged only; 'sky': "
                          "at the sources' sky density (strong lenses at their real rate)")
     region_radius_in_einstein_radii: float = number(
-        1.6, low=1.0, high=10, doc="lens mode: radius of the placement disc (it must hold the caustics)")
+        1.3, low=1.0, high=10, doc="lens mode: radius of the placement disc; it must hold the caustics "
+                                   "(widened, and flagged in the truth, where they reach farther)")
     density: float = number(optional=True, low=0, low_open=True, unit="arcmin^-2",
                             doc="sky mode: source density (default: from source.counts)")
     radius_in_einstein_radii: Parameter = parameter(

@@ -73,6 +73,8 @@ def image_search_windows(einstein_radius: float, q: float, source_offset: float,
     """Meshes for :func:`simlens.lens_equation.find_images`, all within the cutout: a coarse one over
     the cutout, a fine one around the Einstein ring, and nested ones around the centre."""
     half = 0.5 * grid.size * grid.pixel_scale
+    if einstein_radius <= 0:  # no deflection (a source in front of the lens): the source itself
+        return [(half, grid.pixel_scale)]
     reach = min(2.5 * einstein_radius / math.sqrt(q) + source_offset, half)
     windows = [(half, grid.pixel_scale), (reach, reach / 100.0)]
     windows += [(min(f * einstein_radius, half), min(f * einstein_radius, half) / 50.0) for f in CENTRAL_WINDOWS]

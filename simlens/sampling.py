@@ -5,7 +5,7 @@ Every numeric parameter of a recipe becomes one of the small frozen objects belo
 which the recipe validator compares with the range a parameter accepts *before* any work is done.
 
 Randomness: a run has one integer seed. System ``i`` draws everything from streams derived from
-``numpy.random.SeedSequence(seed, spawn_key=(i,))``, so a system can be re-drawn alone, identically,
+``numpy.random.SeedSequence(seed, spawn_key=(i,))`` (one Philox key per named stream), so a system can be re-drawn alone, identically,
 whatever the order or the number of processes that draw the others.
 
 Grids: parameters given as ``{ grid = [...] }`` span a Cartesian product of cells (in the order the
@@ -202,14 +202,15 @@ Parameter = Union[Fixed, Uniform, LogUniform, TruncatedNormal, Choice, Grid]
 
 
 class _Streams(dict):
-    """The named generators of one system, each made on first use (most draws use a few)."""
+    """The named generators of one system, each made on first use (most draws use a few): a Philox
+    counter-based generator keyed by 128 bits of the system's SeedSequence state per name."""
 
-    def __init__(self, children: dict):
+    def __init__(self, names: Sequence[str], state: np.ndarray):
         super().__init__()
-        self._children = children
+        self._keys = {name: state[2 * i:2 * i + 2] for i, name in enumerate(names)}
 
     def __missing__(self, name: str) -> np.random.Generator:
-        rng = np.random.Generator(np.random.PCG64(self._children[name]))
+        rng = np.random.Generator(np.random.Philox(key=self._keys[name]))
         self[name] = rng
         return rng
 
@@ -223,7 +224,7 @@ def system_streams(seed: int, system_id: int, names: Sequence[str], candidate: i
     """
     key = (int(system_id),) if candidate == 0 else (int(system_id), int(candidate))
     root = np.random.SeedSequence(entropy=int(seed), spawn_key=key)
-    return _Streams(dict(zip(names, root.spawn(len(names)))))
+    return _Streams(names, root.generate_state(2 * len(names), np.uint64))
 
 
 def grid_cell(system_id: int, grid_sizes: Sequence[int]) -> tuple[int, ...]:

@@ -19,7 +19,6 @@ lensing cross-section (``theta_E^2 ~ sigma^4``), which is again a modified Schec
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import numpy as np

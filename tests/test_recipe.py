@@ -10,12 +10,17 @@ from simlens.errors import RecipeError
 from simlens.recipe import parse_recipe
 from simlens.sampling import Choice, Fixed, Grid, LogUniform, TruncatedNormal, Uniform
 
-from .conftest import SMALL_RECIPE
+from .conftest import PHYSICAL_RECIPE, SMALL_RECIPE
 
 
 def edit(old: str, new: str) -> str:
     assert old in SMALL_RECIPE, old
     return SMALL_RECIPE.replace(old, new, 1)
+
+
+def edit_physical(old: str, new: str) -> str:
+    assert old in PHYSICAL_RECIPE, old
+    return PHYSICAL_RECIPE.replace(old, new, 1)
 
 
 # (recipe text, key path named in the message, further words the message must contain)
@@ -44,6 +49,24 @@ MALFORMED = [
     (edit("seed = 42", "seed = -1"), "seed", ["out of range"]),
     (SMALL_RECIPE + "\n[lens]\n", "", ["not valid TOML"]),
     (edit("[survey.bands.g]\nzero_point = 26.6\n", "[survey.bands.g]\n"), "survey.bands.g.zero_point", ["missing"]),
+    # physical populations
+    (edit_physical("[lens.population]\n", "[lens.population]\nredshift = 0.5\n"), "lens.population.redshift",
+     ["unknown key"]),
+    (edit_physical("[lens.mass]\n", "[lens]\nredshift = 0.5\n[lens.mass]\n"), "lens.redshift",
+     ["[lens.population]"]),
+    (edit_physical('filter = "LSST_g"\n', ""), "survey.bands.g.filter", ["missing", "template colours"]),
+    (edit_physical('filter = "LSST_g"', 'filter = "LSST_q"'), "survey.bands.g.filter", ["no GalSim filter", "LSST_g"]),
+    (edit_physical("redshift_range = [0.1, 0.9]", "redshift_range = [0.9, 0.1]"), "lens.population.redshift_range",
+     ["low < high"]),
+    (edit("[source.clumps]", '[source.position]\nmode = "sky"\n[source.clumps]'), "source.position.density",
+     ["missing", "source density"]),
+    (edit_physical('mode = "lens"', 'mode = "lens"\ndensity = 40.0'), "source.position.density", ["mode = 'sky'"]),
+    (edit_physical('mode = "lens"', 'mode = "lenses"'), "source.position.mode", ["did you mean 'lens'"]),
+    (edit_physical('template = "irregular"', 'colors = { g = 0.1 }'), "source.clumps.colors", ["source.counts"]),
+    (edit_physical("[output]", '[selection]\nmin_arc_snr = 5.0\narc_snr_band = "z"\n[output]'),
+     "selection.arc_snr_band", ["'z'", "'g', 'r'"]),
+    (edit("[source]\n", "[lens.light.scaling]\n[source]\n"), "lens.light.magnitude",
+     ["is set together with [lens.light.scaling]"]),
 ]
 
 
