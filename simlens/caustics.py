@@ -125,16 +125,19 @@ def _isothermal_in_uniform_field(mass: MassModel, center) -> tuple | None:
     return (homogeneous, uniform) if homogeneous else None
 
 
-def _closed_form_tangential(mass: MassModel, split, center, einstein_radius: float):
-    """The tangential critical curve of an isothermal lens in a uniform field, or None."""
+def _closed_form(split, center, einstein_radius: float):
+    """The tangential critical curve, its caustic and the cut of an isothermal lens in a uniform
+    field, all from the isothermal parts evaluated once on the unit circle (their deflection does
+    not change along a ray and their Hessian scales as 1/r); None if the route does not apply."""
     homogeneous, uniform = split
     cx, cy = center
     phi = np.linspace(0.0, 2.0 * np.pi, CUT_ANGLES, endpoint=False)
-    ux, uy = cx + np.cos(phi), cy + np.sin(phi)
-    h11 = h12 = h22 = 0.0
-    for part in homogeneous:  # Hessian at unit radius; it scales as 1/r along the ray
-        _, _, a, b, c = part.deflection_and_hessian(ux, uy)
-        h11, h12, h22 = h11 + a, h12 + b, h22 + c
+    cos, sin = np.cos(phi), np.sin(phi)
+    ux, uy = cx + cos, cy + sin
+    ax_h = ay_h = h11 = h12 = h22 = 0.0
+    for part in homogeneous:
+        ax, ay, a, b, c = part.deflection_and_hessian(ux, uy)
+        ax_h, ay_h, h11, h12, h22 = ax_h + ax, ay_h + ay, h11 + a, h12 + b, h22 + c
     u11 = u12 = u22 = 0.0
     for part in uniform:
         _, _, a, b, c = part.deflection_and_hessian(np.array([cx]), np.array([cy]))
@@ -147,11 +150,23 @@ def _closed_form_tangential(mass: MassModel, split, center, einstein_radius: flo
     disc = b_coef * b_coef - 4.0 * c2 * det_m
     if det_m <= 0 or np.any(disc < 0) or np.any(b_coef <= 0):
         return None
-    inv_r = 2.0 * det_m / (b_coef + np.sqrt(disc))
-    r = 1.0 / inv_r
+    r = (b_coef + np.sqrt(disc)) / (2.0 * det_m)
     if not (np.all(np.isfinite(r)) and r.max() < OUTER_RADIUS_IN_EINSTEIN_RADII * einstein_radius):
         return None
-    return cx + r * np.cos(phi), cy + r * np.sin(phi)
+    xc, yc = cx + r * cos, cy + r * sin
+    # beta = theta - alpha_iso(direction) - alpha_uniform(theta); at theta -> centre: the cut
+    bx, by = xc - ax_h, yc - ay_h
+    cut_x, cut_y = cx - ax_h, cy - ay_h
+    for part in uniform:
+        dx, dy = part.deflection(xc, yc)
+        bx, by = bx - dx, by - dy
+        dx0, dy0 = part.deflection(np.array([cx]), np.array([cy]))
+        cut_x, cut_y = cut_x - float(dx0[0]), cut_y - float(dy0[0])
+    curves = [Curve("tangential", xc, yc)]
+    caustics = [Curve("tangential", bx, by)]
+    if np.min(np.hypot(cut_x - cx, cut_y - cy)) > 0.01 * einstein_radius:
+        caustics.append(Curve("cut", cut_x, cut_y))
+    return CausticSet(critical_curves=tuple(curves), caustics=tuple(caustics))
 
 
 def find_caustics(mass: MassModel, einstein_radius: float, center=(0.0, 0.0),
@@ -161,12 +176,9 @@ def find_caustics(mass: MassModel, einstein_radius: float, center=(0.0, 0.0),
     cx, cy = center
     split = _isothermal_in_uniform_field(mass, center) if closed_form else None
     if split is not None:
-        tangential = _closed_form_tangential(mass, split, center, einstein_radius)
-        if tangential is not None:
-            xc, yc = tangential
-            bx, by = mass.ray_shoot(xc, yc)
-            return _with_cut(mass, einstein_radius, center, [Curve("tangential", xc, yc)],
-                             [Curve("tangential", bx, by)])
+        closed = _closed_form(split, center, einstein_radius)
+        if closed is not None:
+            return closed
     phi = np.linspace(0.0, 2.0 * np.pi, n_angles, endpoint=False)
     radii = einstein_radius * np.geomspace(INNER_RADIUS_IN_EINSTEIN_RADII, OUTER_RADIUS_IN_EINSTEIN_RADII, N_RADII)
     cos, sin = np.cos(phi)[:, None], np.sin(phi)[:, None]

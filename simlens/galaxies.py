@@ -24,6 +24,27 @@ ARCSEC_PER_RADIAN = 180.0 * 3600.0 / math.pi
 MIN_LIGHT_AXIS_RATIO = 0.2
 
 
+class _BandK:
+    """K-corrections of one template for all bands at once (the tables share one redshift grid)."""
+
+    def __init__(self, tables: Mapping):
+        self.bands = tuple(tables)
+        first = tables[self.bands[0]]
+        self._z = first._z
+        self._k = np.stack([tables[b]._k for b in self.bands])
+        self._step = self._z[1] - self._z[0]
+        self.z_max = float(self._z[-1])
+
+    def at(self, z: float) -> dict:
+        if not 0.0 <= z <= self.z_max:
+            raise ValueError(f"K-correction table covers 0 <= z <= {self.z_max:g}; got {z}")
+        f = z / self._step
+        i = min(int(f), self._z.size - 2)
+        w = f - i
+        values = self._k[:, i] * (1.0 - w) + self._k[:, i + 1] * w
+        return dict(zip(self.bands, values.tolist()))
+
+
 def _arcsec(size_kpc: float, d_a_mpc: float) -> float:
     return size_kpc / (d_a_mpc * 1e3) * ARCSEC_PER_RADIAN
 
@@ -49,14 +70,15 @@ class LensLightModel:
         self.faber_jackson = FaberJackson(settings.faber_jackson_slope, settings.faber_jackson_magnitude,
                                           settings.faber_jackson_sigma, settings.faber_jackson_scatter)
         self.plane = FundamentalPlane(settings.plane_a, settings.plane_b, settings.plane_c, settings.plane_scatter)
-        self.k = {b: kcorrection(settings.template, f, settings.rest_filter, base) for b, f in band_filters.items()}
+        self.k = _BandK({b: kcorrection(settings.template, f, settings.rest_filter, base)
+                         for b, f in band_filters.items()})
 
     def draw(self, sigma: float, z: float, mass_q: float, mass_angle: float, rng) -> LensLight:
         s = self.settings
         absolute = self.faber_jackson.draw(sigma, rng)
         r_kpc = self.plane.draw_radius(sigma, absolute, rng)
         modulus = float(self.distances.distance_modulus(z))
-        mags = {b: absolute + modulus + k(z) for b, k in self.k.items()}
+        mags = {b: absolute + modulus + k for b, k in self.k.at(z).items()}
         q = float(np.clip(mass_q + s.q_scatter * rng.standard_normal(), MIN_LIGHT_AXIS_RATIO, 1.0))
         angle = mass_angle + s.angle_scatter * rng.standard_normal()
         luminosity = 10 ** (-0.4 * (absolute - SUN_ABSOLUTE_MAGNITUDE_R))
@@ -88,9 +110,10 @@ class SourceModel:
         self.counts = NumberCounts(settings.density, settings.pivot, settings.slope)
         self.redshifts = RedshiftGivenMagnitude(settings.z0_slope, settings.z0_intercept)
         self.sizes = SizeLuminosity()
-        self.k_disk = {b: kcorrection(settings.template, f, settings.rest_filter, base) for b, f in band_filters.items()}
+        self.k_disk = _BandK({b: kcorrection(settings.template, f, settings.rest_filter, base)
+                              for b, f in band_filters.items()})
         clumps = clump_template or settings.template
-        self.k_clump = {b: kcorrection(clumps, f, settings.rest_filter, base) for b, f in band_filters.items()}
+        self.k_clump = _BandK({b: kcorrection(clumps, f, settings.rest_filter, base) for b, f in band_filters.items()})
 
     @property
     def sky_density(self) -> float:
@@ -111,14 +134,15 @@ class SourceModel:
     def complete(self, m: float, z: float, rng) -> SourcePhotometry:
         """The rest of a source of anchor magnitude ``m`` at redshift ``z``: size and colours."""
         s = self.settings
-        k_anchor = self.k_disk[self.anchor_band](z)
+        k_disk, k_clump = self.k_disk.at(z), self.k_clump.at(z)
+        k_anchor = k_disk[self.anchor_band]
         absolute = m - float(self.distances.distance_modulus(z)) - k_anchor
         r_kpc = self.sizes.draw(absolute, z, rng) if s.size_scatter else float(10 ** self.sizes.mean_log_radius(absolute, z))
-        clump_anchor = self.k_clump[self.anchor_band](z)
+        clump_anchor = k_clump[self.anchor_band]
         return SourcePhotometry(
             redshift=z, anchor_magnitude=m, absolute_magnitude=absolute,
-            disk_colors={b: k(z) - k_anchor for b, k in self.k_disk.items()},
-            clump_colors={b: k(z) - clump_anchor for b, k in self.k_clump.items()},
+            disk_colors={b: k - k_anchor for b, k in k_disk.items()},
+            clump_colors={b: k - clump_anchor for b, k in k_clump.items()},
             half_light_radius=_arcsec(r_kpc, float(self.distances.angular_diameter(z))),
             half_light_radius_kpc=r_kpc)
 
@@ -129,9 +153,9 @@ class PointSourceColours:
     def __init__(self, spectral_index: float, band_filters: Mapping[str, str], reference_band: str, base: str):
         ref_filter = band_filters[reference_band]
         self.reference_band = reference_band
-        self.k = {b: kcorrection("", f, ref_filter, base, spectral_index=spectral_index)
-                  for b, f in band_filters.items()}
+        self.k = _BandK({b: kcorrection("", f, ref_filter, base, spectral_index=spectral_index)
+                         for b, f in band_filters.items()})
 
     def colors(self, z: float) -> dict:
-        ref = self.k[self.reference_band](z)
-        return {b: k(z) - ref for b, k in self.k.items()}
+        k = self.k.at(z)
+        return {b: value - k[self.reference_band] for b, value in k.items()}

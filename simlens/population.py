@@ -33,7 +33,9 @@ from .velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulation
 __all__ = ["System", "Clump", "Subhalo", "PopulationSampler", "SelectionExhausted", "offset_on_sky"]
 
 # Named random streams of a system; append new names at the end to keep old draws unchanged.
-STREAMS = ("parameters", "placement", "clumps", "sky", "noise", "subhalos", "deflector", "galaxies", "acceptance")
+# "physics" feeds, in code order, the deflector and source geometry, subhalos, placement, lens light,
+# source size and clumps; "observation" the sky position and the noise seeds.
+STREAMS = ("parameters", "physics", "observation")
 
 CLUMP_SERSIC_INDEX = 0.5  # Gaussian clumps
 
@@ -121,24 +123,9 @@ class System:
         """The deflector: the main profile (its Einstein radius is that of the SIS with the drawn
         velocity dispersion), multipoles, external shear.  A source in front of the lens (sky mode)
         is not deflected at all."""
-        theta_e, q, angle = self.einstein_radius, self.mass_q, self.mass_angle
-        if theta_e <= 0:
-            return ConvergenceSheet(kappa=0.0)
-        if self.mass_model_name == "power_law":
-            lens = PowerLaw(einstein_radius=theta_e, slope=self.mass_slope, q=q, angle=angle)
-        elif self.mass_model_name == "cored_isothermal":
-            lens = CoredIsothermal(einstein_radius=theta_e, core_radius=self.mass_core_radius, q=q, angle=angle)
-        else:
-            lens = SIE(einstein_radius=theta_e, q=q, angle=angle)
-        for sub in self.subhalos:
-            lens = lens + TruncatedSIS(einstein_radius=sub.einstein_radius, truncation_radius=sub.truncation_radius,
-                                       center=(sub.x, sub.y))
-        for order, strength, relative_angle in self.multipoles:
-            lens = lens + Multipole(order=order, strength=strength, einstein_radius=theta_e,
-                                    angle=angle + relative_angle)
-        if self.shear_gamma > 0:
-            lens = lens + ExternalShear(gamma=self.shear_gamma, angle=self.shear_angle)
-        return lens
+        return build_deflector(self.mass_model_name, self.einstein_radius, self.mass_q, self.mass_angle,
+                               self.mass_slope, self.mass_core_radius, self.subhalos, self.multipoles,
+                               self.shear_gamma, self.shear_angle)
 
     def band(self, name: str) -> BandConditions:
         for b in self.bands:
@@ -184,6 +171,29 @@ class System:
         flux = 10 ** (-0.4 * self.source_disk_magnitudes[band])
         flux += sum(10 ** (-0.4 * c.magnitudes[band]) for c in self.clumps)
         return -2.5 * math.log10(flux)
+
+
+def build_deflector(model: str, einstein_radius: float, q: float, angle: float, slope: float,
+                    core_radius: float, subhalos: tuple, multipoles: tuple, shear_gamma: float,
+                    shear_angle: float) -> MassModel:
+    """The mass model of a system from its truth values (see :meth:`System.mass_model`)."""
+    theta_e = einstein_radius
+    if theta_e <= 0:
+        return ConvergenceSheet(kappa=0.0)
+    if model == "power_law":
+        lens = PowerLaw(einstein_radius=theta_e, slope=slope, q=q, angle=angle)
+    elif model == "cored_isothermal":
+        lens = CoredIsothermal(einstein_radius=theta_e, core_radius=core_radius, q=q, angle=angle)
+    else:
+        lens = SIE(einstein_radius=theta_e, q=q, angle=angle)
+    for sub in subhalos:
+        lens = lens + TruncatedSIS(einstein_radius=sub.einstein_radius, truncation_radius=sub.truncation_radius,
+                                   center=(sub.x, sub.y))
+    for order, strength, relative_angle in multipoles:
+        lens = lens + Multipole(order=order, strength=strength, einstein_radius=theta_e, angle=angle + relative_angle)
+    if shear_gamma > 0:
+        lens = lens + ExternalShear(gamma=shear_gamma, angle=shear_angle)
+    return lens
 
 
 def offset_on_sky(ra0: float, dec0: float, position_angle: float, separation: float) -> tuple[float, float]:
@@ -261,21 +271,22 @@ class PopulationSampler:
         """Every recipe parameter's value for this system, keyed by key path."""
         cell = grid_cell(system_id, self._grid_shape)
         cell_of = dict(zip(self._grid_paths, cell))
-        rng = streams["parameters"]
+        uniforms = streams["parameters"].uniform(size=len(self._parameters)).tolist()
         values = {}
-        for path, param in self._parameters:
+        for (path, param), u in zip(self._parameters, uniforms):
             if isinstance(param, Grid):
                 values[path] = float(param.at(cell_of[path]))
             else:
-                values[path] = float(param.draw(rng))
+                values[path] = float(param.from_uniform(u))
         return values, cell
 
-    def _draw_subhalos(self, v: dict, theta_e: float, z_lens: float, z_source: float, rng) -> tuple:
+    def _draw_subhalos(self, v: dict, theta_e: float, z_lens: float, z_source: float, streams) -> tuple:
         """Masses from dN/dm ~ m^slope on [mass_min, mass_max] (inverse CDF), positions uniform in
         area in the annulus [annulus, annulus_outer] theta_E around the lens centre."""
         n = int(round(v["lens.subhalos.count"]))
         if n == 0 or theta_e <= 0:
             return ()
+        rng = streams["physics"]
         settings = self.recipe.lens.subhalos
         k = settings.mass_function_slope + 1.0
         lo, hi = settings.mass_min ** k, settings.mass_max ** k
@@ -303,7 +314,8 @@ class PopulationSampler:
             for name, n in (failed or system.rejections).items():  # bulk geometry draws count too
                 rejections[name] = rejections.get(name, 0) + n
             if system is not None:
-                return dataclasses.replace(system, rejections=rejections)
+                object.__setattr__(system, "rejections", rejections)  # still private to this call
+                return system
         raise SelectionExhausted(_exhausted_message(system_id, limit, rejections))
 
     def _draw_candidate(self, system_id: int, candidate: int) -> tuple[System | None, str | None]:
@@ -319,20 +331,49 @@ class PopulationSampler:
         if isinstance(geometry, dict):
             return None, geometry
         sigma, z_lens, z_source, anchor_magnitude, geometry_rejections = geometry
-        photometry = (self.source_model.complete(anchor_magnitude, z_source, streams["galaxies"])
-                      if self.source_model is not None else None)
         behind = z_source > z_lens
         ratio = float(self.distances.ratio(z_lens, z_source)) if behind else 0.0
         theta_e = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * ratio * ARCSEC_PER_RADIAN
+        selection = recipe.selection
+        checks = {}
+        if selection.einstein_radius is not None:
+            lo, hi = selection.einstein_radius
+            checks["einstein_radius"] = lo <= theta_e <= hi
+            if selection.enforce and not checks["einstein_radius"]:
+                return None, "einstein_radius"
+
+        # -- the deflector, and the source's place behind it (before the other draws: a lens-mode
+        #    candidate whose source falls outside the caustics is redrawn whole) ------------------
+        mass_q, mass_angle = v["lens.mass.q"], v["lens.mass.angle"]
+        model = recipe.lens.mass.model
+        deflector = dict(
+            mass_model_name=model, mass_q=mass_q, mass_angle=mass_angle,
+            mass_slope=v["lens.mass.slope"] if model == "power_law" else 2.0,
+            mass_core_radius=v["lens.mass.core_radius"] if model == "cored_isothermal" else 0.0,
+            multipoles=tuple((m, v[f"lens.multipoles.m{m}_strength"], v[f"lens.multipoles.m{m}_angle"])
+                             for m in (3, 4) if v[f"lens.multipoles.m{m}_strength"] != 0.0),
+            subhalos=self._draw_subhalos(v, theta_e, z_lens, z_source, streams),
+            shear_gamma=v["lens.shear.gamma"], shear_angle=v["lens.shear.angle"])
+        mass = build_deflector(deflector["mass_model_name"], theta_e, mass_q, mass_angle, deflector["mass_slope"],
+                               deflector["mass_core_radius"], deflector["subhalos"], deflector["multipoles"],
+                               deflector["shear_gamma"], deflector["shear_angle"])
+        placed = self._place(mass, theta_e, v, streams["physics"])
+        if placed is None:
+            return None, "placement"
+        if selection.multiply_imaged:
+            checks["multiply_imaged"] = placed["multiply_imaged"]
+            if selection.enforce and not placed["multiply_imaged"]:
+                return None, "multiply_imaged"
+        photometry = (self.source_model.complete(anchor_magnitude, z_source, streams["physics"])
+                      if self.source_model is not None else None)
 
         # -- lens light ----------------------------------------------------------------------
         def magnitudes(base: float, prefix: str) -> dict:
             return {b: base + (0.0 if b == ref else v[f"{prefix}.{b}"]) for b in band_names}
 
-        mass_q, mass_angle = v["lens.mass.q"], v["lens.mass.angle"]
         lens_extra = {}
         if self.lens_light_model is not None:
-            light = self.lens_light_model.draw(sigma, z_lens, mass_q, mass_angle, streams["galaxies"])
+            light = self.lens_light_model.draw(sigma, z_lens, mass_q, mass_angle, streams["physics"])
             lens_mags, lens_r_e, lens_q, lens_angle = light.magnitudes, light.half_light_radius, light.q, light.angle
             lens_extra = dict(lens_absolute_magnitude=light.absolute_magnitude, lens_luminosity=light.luminosity,
                               lens_stellar_mass=light.stellar_mass)
@@ -354,7 +395,7 @@ class PopulationSampler:
         disk_mags = {b: anchor_mag + disk_colors[b] - 2.5 * math.log10(1.0 - clump_fraction) for b in band_names}
         clumps = ()
         if n_clumps > 0:
-            rng = streams["clumps"]
+            rng = streams["physics"]
             weights = rng.uniform(0.5, 1.5, size=n_clumps)
             weights = weights / weights.sum()
             offsets = rng.normal(0.0, v["source.clumps.spread"] * source_r_e, size=(n_clumps, 2))
@@ -382,59 +423,35 @@ class PopulationSampler:
                 psf_beta=v[f"survey.bands.{b.name}.psf.beta"])
             for b in recipe.survey.bands)
 
+        # -- the cut that needs the source size and the seeing -----------------------------------
+        if selection.resolvable:
+            fwhm = next(b.psf_fwhm for b in bands if b.name == ref)
+            checks["resolvable"] = theta_e**2 > source_r_e**2 + (0.5 * fwhm) ** 2
+            if selection.enforce and not checks["resolvable"]:
+                return None, "resolvable"
+
+        # -- sky position and noise seeds (after the cuts, from their own streams) ---------------
+        fp = recipe.footprint
+        rng = streams["observation"]
+        cos_sep = 1.0 - rng.uniform() * (1.0 - math.cos(math.radians(fp.radius)))
+        ra, dec = offset_on_sky(fp.ra, fp.dec, rng.uniform(0.0, 360.0), math.degrees(math.acos(cos_sep)))
+        noise_seeds = tuple(int(s) for s in streams["observation"].integers(1, 2**31 - 1, size=len(bands)))
+
         system = System(
-            system_id=int(system_id), grid_cell=cell, ra=math.nan, dec=math.nan, z_lens=z_lens, z_source=z_source,
-            velocity_dispersion=sigma, einstein_radius=theta_e,
-            mass_q=mass_q, mass_angle=mass_angle,
-            mass_model_name=recipe.lens.mass.model,
-            mass_slope=v["lens.mass.slope"] if recipe.lens.mass.model == "power_law" else 2.0,
-            mass_core_radius=v["lens.mass.core_radius"] if recipe.lens.mass.model == "cored_isothermal" else 0.0,
-            multipoles=tuple((m, v[f"lens.multipoles.m{m}_strength"], v[f"lens.multipoles.m{m}_angle"])
-                             for m in (3, 4) if v[f"lens.multipoles.m{m}_strength"] != 0.0),
-            subhalos=self._draw_subhalos(v, theta_e, z_lens, z_source, streams["subhalos"]),
-            shear_gamma=v["lens.shear.gamma"], shear_angle=v["lens.shear.angle"],
+            system_id=int(system_id), grid_cell=cell, ra=ra, dec=dec, z_lens=z_lens, z_source=z_source,
+            velocity_dispersion=sigma, einstein_radius=theta_e, **deflector,
             lens_magnitudes=lens_mags, lens_half_light_radius=lens_r_e,
             lens_sersic_index=v["lens.light.sersic_index"], lens_q=lens_q, lens_angle=lens_angle,
             source_disk_magnitudes=disk_mags, source_half_light_radius=source_r_e,
             source_sersic_index=v["source.sersic_index"], source_q=v["source.q"], source_angle=v["source.angle"],
-            source_x=0.0, source_y=0.0, clumps=clumps, bands=bands, noise_seeds=(),
+            clumps=clumps, bands=bands, noise_seeds=noise_seeds, selection_flags=checks, **placed,
             source_absolute_magnitude=photometry.absolute_magnitude if photometry is not None else math.nan,
             quasar_magnitudes=quasar_mags,
             host=source_settings.quasar.host if source_settings.quasar is not None else True,
             days_per_arcsec2=self.distances.fermat_to_days(z_lens, z_source) if behind else math.nan,
             candidate=candidate, rejections=geometry_rejections, **lens_extra)
 
-        # -- cheap cuts before the caustics ----------------------------------------------------
-        selection = recipe.selection
-        checks = {}
-        if selection.einstein_radius is not None:
-            lo, hi = selection.einstein_radius
-            checks["einstein_radius"] = lo <= theta_e <= hi
-        if selection.resolvable:
-            fwhm = system.band(ref).psf_fwhm
-            checks["resolvable"] = theta_e**2 > source_r_e**2 + (0.5 * fwhm) ** 2
-        if selection.enforce:
-            failed = next((name for name, ok in checks.items() if not ok), None)
-            if failed is not None:
-                return None, failed
-
-        # -- placement -----------------------------------------------------------------------
-        placed = self._place(system, v, streams["placement"])
-        if placed is None:
-            return None, "placement"
-        if selection.multiply_imaged:
-            checks["multiply_imaged"] = placed["multiply_imaged"]
-            if selection.enforce and not placed["multiply_imaged"]:
-                return None, "multiply_imaged"
-
-        # -- sky position and noise seeds (after the cuts, from their own streams) ---------------
-        fp = recipe.footprint
-        rng = streams["sky"]
-        cos_sep = 1.0 - rng.uniform() * (1.0 - math.cos(math.radians(fp.radius)))
-        ra, dec = offset_on_sky(fp.ra, fp.dec, rng.uniform(0.0, 360.0), math.degrees(math.acos(cos_sep)))
-        noise_seeds = tuple(int(s) for s in streams["noise"].integers(1, 2**31 - 1, size=len(bands)))
-        return dataclasses.replace(system, ra=ra, dec=dec, noise_seeds=noise_seeds,
-                                   selection_flags=checks, **placed), None
+        return system, None
 
     GEOMETRY_BATCH = 16
     GEOMETRY_BATCHES = 64  # per candidate, before it counts as rejected
@@ -445,7 +462,7 @@ class PopulationSampler:
         drawn in batches and rejected in bulk (cheap): in lens mode a source must lie behind the
         lens, and a pair is kept with probability (D_ls/D_s)^2, the distance part of the
         cross-section weight (sigma^4 is in the deflector draw)."""
-        rng = streams["deflector"]
+        rng = streams["physics"]
         lens_mode = self.mode == "lens"
         bulk = self.deflectors is not None or self.source_model is not None
         rejections = {"source_in_front": 0, "cross_section": 0, "einstein_radius": 0}
@@ -482,20 +499,19 @@ class PopulationSampler:
                         {k: n_ for k, n_ in rejections.items() if n_})
         return {k: n_ for k, n_ in rejections.items() if n_}
 
-    def _place(self, system: System, v: dict, rng) -> dict | None:
+    def _place(self, mass: MassModel, theta_e: float, v: dict, rng) -> dict | None:
         """The source centre and placement truth by the placement mode (System fields); None when a
         lens-mode candidate must be redrawn."""
-        theta_e = system.einstein_radius
         pos = self.recipe.source.position
         if self.mode == "fixed" and pos.x is not None:
             x, y = v["source.position.x"], v["source.position.y"]
-            return self._with_caustics(system, x, y, math.hypot(x, y), False)
+            return self._with_caustics(mass, theta_e, x, y, math.hypot(x, y), False)
         if self.mode == "fixed":
             radius_factor = v.get("source.position.radius_in_einstein_radii", DEFAULT_RADIUS_IN_EINSTEIN_RADII)
             radius = radius_factor * theta_e
             x, y = _uniform_in_disc(radius, rng)
-            return self._with_caustics(system, x, y, radius, False)
-        caustics = find_caustics(system.mass_model(), theta_e) if theta_e > 0 else None
+            return self._with_caustics(mass, theta_e, x, y, radius, False)
+        caustics = find_caustics(mass, theta_e) if theta_e > 0 else None
         reach = caustics.max_radius if caustics is not None else 0.0
         if self.mode == "lens":
             radius = pos.region_radius_in_einstein_radii * theta_e
@@ -510,13 +526,13 @@ class PopulationSampler:
             x, y = _uniform_in_disc(radius, rng)
             multiple = bool(caustics.multiply_imaged(x, y)) if caustics is not None else False
             if multiple or self.mode == "sky":
-                return self._with_caustics(system, x, y, radius, widened, caustics, multiple)
+                return self._with_caustics(mass, theta_e, x, y, radius, widened, caustics, multiple)
         return None
 
-    def _with_caustics(self, system: System, x: float, y: float, radius: float, widened: bool,
+    def _with_caustics(self, mass: MassModel, theta_e: float, x: float, y: float, radius: float, widened: bool,
                        caustics: CausticSet | None = None, multiple: bool | None = None) -> dict:
-        if caustics is None and system.einstein_radius > 0:
-            caustics = find_caustics(system.mass_model(), system.einstein_radius)
+        if caustics is None and theta_e > 0:
+            caustics = find_caustics(mass, theta_e)
         tangential = caustics.caustic("tangential") if caustics is not None else None
         inner = next((c for c in caustics.caustics if c.kind != "tangential"), None) if caustics is not None else None
         return dict(

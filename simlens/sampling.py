@@ -1,7 +1,8 @@
 """Parameter distributions, grids and per-system random streams.
 
 Every numeric parameter of a recipe becomes one of the small frozen objects below. They draw from a
-``numpy.random.Generator`` and know their *support* (the closed range of values they can produce),
+``numpy.random.Generator`` (or map one uniform variate, ``from_uniform``: every distribution here is
+drawn by its inverse CDF, so a system's parameters cost one vector of uniforms) and know their *support* (the closed range of values they can produce),
 which the recipe validator compares with the range a parameter accepts *before* any work is done.
 
 Randomness: a run has one integer seed. System ``i`` draws everything from streams derived from
@@ -44,6 +45,9 @@ class Fixed:
     def draw(self, rng: np.random.Generator) -> float:
         return self.value
 
+    def from_uniform(self, u: float) -> float:
+        return self.value
+
     @property
     def support(self) -> tuple[float, float]:
         return (self.value, self.value)
@@ -64,7 +68,10 @@ class Uniform:
             raise ValueError(f"uniform needs low < high, got [{self.low}, {self.high}]")
 
     def draw(self, rng: np.random.Generator) -> float:
-        return float(rng.uniform(self.low, self.high))
+        return self.from_uniform(rng.uniform())
+
+    def from_uniform(self, u: float) -> float:
+        return self.low + u * (self.high - self.low)
 
     @property
     def support(self) -> tuple[float, float]:
@@ -86,7 +93,11 @@ class LogUniform:
             raise ValueError(f"log_uniform needs 0 < low < high, got [{self.low}, {self.high}]")
 
     def draw(self, rng: np.random.Generator) -> float:
-        return float(math.exp(rng.uniform(math.log(self.low), math.log(self.high))))
+        return self.from_uniform(rng.uniform())
+
+    def from_uniform(self, u: float) -> float:
+        lo = math.log(self.low)
+        return math.exp(lo + u * (math.log(self.high) - lo))
 
     @property
     def support(self) -> tuple[float, float]:
@@ -123,8 +134,10 @@ class TruncatedNormal:
             )
 
     def draw(self, rng: np.random.Generator) -> float:
+        return self.from_uniform(rng.uniform())
+
+    def from_uniform(self, u: float) -> float:
         a, b = (self.low - self.mean) / self.sigma, (self.high - self.mean) / self.sigma
-        u = rng.uniform()
         if a > 0:  # mirror: -x is a normal truncated to [-b, -a]
             lo, hi = special.ndtr(-b), special.ndtr(-a)
             x = -special.ndtri(hi - u * (hi - lo))
@@ -160,11 +173,19 @@ class Choice:
                 raise ValueError("choice weights must be >= 0 with a positive sum")
 
     def draw(self, rng: np.random.Generator) -> float:
-        p = None
-        if self.weights is not None:
-            w = np.asarray(self.weights, dtype=float)
-            p = w / w.sum()
-        return self.values[int(rng.choice(len(self.values), p=p))]
+        return self.from_uniform(rng.uniform())
+
+    def from_uniform(self, u: float) -> float:
+        """The value whose cumulative weight first exceeds ``u`` (inverse CDF)."""
+        n = len(self.values)
+        weights = self.weights if self.weights is not None else (1.0,) * n
+        total, target = float(sum(weights)), u * float(sum(weights))
+        cumulative = 0.0
+        for value, w in zip(self.values, weights):
+            cumulative += w
+            if target < cumulative and w > 0:
+                return value
+        return next(v for v, w in zip(reversed(self.values), reversed(weights)) if w > 0)
 
     @property
     def support(self) -> tuple[float, float]:
@@ -185,6 +206,9 @@ class Grid:
             raise ValueError("grid needs at least one value")
 
     def draw(self, rng: np.random.Generator) -> float:  # pragma: no cover - guarded
+        raise TypeError("grid parameters take their value from the system's grid cell")
+
+    def from_uniform(self, u: float) -> float:  # pragma: no cover - guarded
         raise TypeError("grid parameters take their value from the system's grid cell")
 
     def at(self, index: int) -> float:

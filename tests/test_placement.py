@@ -85,7 +85,8 @@ def test_closed_form_and_scanned_caustics_agree(name):
     mass = MODELS[name]
     closed, scanned = find_caustics(mass, 1.0), find_caustics(mass, 1.0, closed_form=False)
     assert closed.caustic("tangential").area == pytest.approx(scanned.caustic("tangential").area, rel=0.02)
-    assert closed.caustic("cut").area == pytest.approx(scanned.caustic("cut").area, rel=1e-9)
+    # the scan traces the cut at 1e-6 theta_E from the centre, the closed form takes the limit
+    assert closed.caustic("cut").area == pytest.approx(scanned.caustic("cut").area, rel=1e-5)
 
 
 def test_sis_cut_is_the_einstein_circle():
