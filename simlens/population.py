@@ -207,6 +207,80 @@ def offset_on_sky(ra0: float, dec0: float, position_angle: float, separation: fl
     return (ra0 + math.degrees(dra)) % 360.0, math.degrees(dec)
 
 
+class _GeometryQueue:
+    """The (sigma, z_lens, z_source, source anchor magnitude) pairs of one candidate, drawn in
+    batches and rejected in bulk where it is cheap.  In lens mode a source must lie behind its lens
+    and a pair is kept with probability (D_ls/D_s)^2, the distance part of the cross-section weight
+    (sigma^4 is exact in the deflector draw); the Einstein-radius cut is applied here too.  Other
+    modes take every pair.  ``rejections`` counts the skipped pairs by cut."""
+
+    def __init__(self, sampler: "PopulationSampler", rng):
+        self.sampler, self.rng = sampler, rng
+        self.lens_mode = sampler.mode == "lens"
+        self.bulk = sampler.deflectors is not None or sampler.source_model is not None
+        self.rejections = {"source_in_front": 0, "cross_section": 0, "einstein_radius": 0}
+        self._batch = None
+        self._cursor = 0
+
+    def _new_batch(self, v: dict) -> None:
+        sampler, rng = self.sampler, self.rng
+        n = sampler.GEOMETRY_BATCH if (self.bulk and self.lens_mode) else 1
+        if sampler.deflectors is not None:
+            z_l = sampler.deflectors.draw_redshift(rng.uniform(size=n))
+            sigma = sampler.deflectors.draw_sigma(rng.uniform(size=n), z_l)
+        else:
+            z_l = np.full(n, v["lens.redshift"])
+            sigma = np.full(n, v["lens.velocity_dispersion"])
+        if sampler.source_model is not None:
+            m, z_s = sampler.source_model.draw_magnitudes_and_redshifts(rng, n)
+        else:
+            m, z_s = np.full(n, math.nan), np.full(n, v["source.redshift"])
+        if not self.lens_mode:
+            ones = np.ones(n, dtype=bool)
+            self._batch = (sigma, z_l, z_s, m, ones, ones, ones)
+        else:
+            u = rng.uniform(size=n)
+            behind = z_s > z_l
+            ratio = np.where(behind, sampler.distances.ratio(np.minimum(z_l, z_s), z_s), 0.0)
+            weighted = behind & ((u <= ratio**2) if sampler.deflectors is not None else True)
+            kept = weighted
+            selection = sampler.recipe.selection
+            if selection.einstein_radius is not None and selection.enforce:
+                theta = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * ratio * ARCSEC_PER_RADIAN
+                kept = weighted & (theta >= selection.einstein_radius[0]) & (theta <= selection.einstein_radius[1])
+            self._batch = (sigma, z_l, z_s, m, behind, weighted, kept)
+        self._cursor = 0
+
+    def _count(self, stop: int) -> None:
+        _, _, _, _, behind, weighted, kept = self._batch
+        a = self._cursor
+        self.rejections["source_in_front"] += int(np.count_nonzero(~behind[a:stop]))
+        self.rejections["cross_section"] += int(np.count_nonzero(behind[a:stop] & ~weighted[a:stop]))
+        self.rejections["einstein_radius"] += int(np.count_nonzero(weighted[a:stop] & ~kept[a:stop]))
+
+    def next(self, v: dict):
+        """The next kept pair as floats, or None when GEOMETRY_BATCHES batches held none."""
+        for _ in range(self.sampler.GEOMETRY_BATCHES if self.bulk else 1):
+            if self._batch is None or self._cursor >= self._batch[0].size:
+                self._new_batch(v)
+            kept = self._batch[6]
+            remaining = np.flatnonzero(kept[self._cursor:])
+            if remaining.size:
+                k = self._cursor + int(remaining[0])
+                self._count(k)
+                self._cursor = k + 1
+                sigma, z_l, z_s, m = (float(a[k]) for a in self._batch[:4])
+                return sigma, z_l, z_s, m
+            self._count(kept.size)
+            self._batch = None
+            if not self.bulk:
+                break
+        return None
+
+    def nonzero_rejections(self) -> dict:
+        return {k: n for k, n in self.rejections.items() if n}
+
+
 class SelectionExhausted(SimlensError):
     """No candidate of a system passed the selection within ``selection.max_candidates``."""
 
@@ -321,49 +395,58 @@ class PopulationSampler:
     def _draw_candidate(self, system_id: int, candidate: int) -> tuple[System | None, str | None]:
         recipe = self.recipe
         streams = system_streams(recipe.seed, system_id, STREAMS, candidate)
-        v, cell = self.draw_parameters(system_id, streams)
         ref = recipe.reference_band
         band_names = recipe.survey.band_names
         source_settings = recipe.source
-
-        # -- deflector and source redshift ------------------------------------------------------
-        geometry = self._draw_geometry(v, streams)
-        if isinstance(geometry, dict):
-            return None, geometry
-        sigma, z_lens, z_source, anchor_magnitude, geometry_rejections = geometry
-        behind = z_source > z_lens
-        ratio = float(self.distances.ratio(z_lens, z_source)) if behind else 0.0
-        theta_e = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * ratio * ARCSEC_PER_RADIAN
         selection = recipe.selection
-        checks = {}
-        if selection.einstein_radius is not None:
-            lo, hi = selection.einstein_radius
-            checks["einstein_radius"] = lo <= theta_e <= hi
-            if selection.enforce and not checks["einstein_radius"]:
-                return None, "einstein_radius"
+        queue = _GeometryQueue(self, streams["physics"])
+        tries: dict[str, int] = {}
 
-        # -- the deflector, and the source's place behind it (before the other draws: a lens-mode
-        #    candidate whose source falls outside the caustics is redrawn whole) ------------------
-        mass_q, mass_angle = v["lens.mass.q"], v["lens.mass.angle"]
-        model = recipe.lens.mass.model
-        deflector = dict(
-            mass_model_name=model, mass_q=mass_q, mass_angle=mass_angle,
-            mass_slope=v["lens.mass.slope"] if model == "power_law" else 2.0,
-            mass_core_radius=v["lens.mass.core_radius"] if model == "cored_isothermal" else 0.0,
-            multipoles=tuple((m, v[f"lens.multipoles.m{m}_strength"], v[f"lens.multipoles.m{m}_angle"])
-                             for m in (3, 4) if v[f"lens.multipoles.m{m}_strength"] != 0.0),
-            subhalos=self._draw_subhalos(v, theta_e, z_lens, z_source, streams),
-            shear_gamma=v["lens.shear.gamma"], shear_angle=v["lens.shear.angle"])
-        mass = build_deflector(deflector["mass_model_name"], theta_e, mass_q, mass_angle, deflector["mass_slope"],
-                               deflector["mass_core_radius"], deflector["subhalos"], deflector["multipoles"],
-                               deflector["shear_gamma"], deflector["shear_angle"])
-        placed = self._place(mass, theta_e, v, streams["physics"])
-        if placed is None:
-            return None, "placement"
-        if selection.multiply_imaged:
-            checks["multiply_imaged"] = placed["multiply_imaged"]
-            if selection.enforce and not placed["multiply_imaged"]:
-                return None, "multiply_imaged"
+        # -- the deflector, the source redshift and the source's place behind the lens: tried
+        #    before the other draws, several times within the candidate's streams (in lens mode a
+        #    deflector whose caustics miss the source is replaced whole) --------------------------
+        for _ in range(self.TRIES_PER_CANDIDATE):
+            v, cell = self.draw_parameters(system_id, streams)
+            geometry = queue.next(v)
+            if geometry is None:
+                return None, _merge_counts(queue.nonzero_rejections(), tries)
+            sigma, z_lens, z_source, anchor_magnitude = geometry
+            behind = z_source > z_lens
+            ratio = float(self.distances.ratio(z_lens, z_source)) if behind else 0.0
+            theta_e = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * ratio * ARCSEC_PER_RADIAN
+            checks = {}
+            if selection.einstein_radius is not None:
+                lo, hi = selection.einstein_radius
+                checks["einstein_radius"] = lo <= theta_e <= hi
+                if selection.enforce and not checks["einstein_radius"]:
+                    tries["einstein_radius"] = tries.get("einstein_radius", 0) + 1
+                    continue
+            mass_q, mass_angle = v["lens.mass.q"], v["lens.mass.angle"]
+            model = recipe.lens.mass.model
+            deflector = dict(
+                mass_model_name=model, mass_q=mass_q, mass_angle=mass_angle,
+                mass_slope=v["lens.mass.slope"] if model == "power_law" else 2.0,
+                mass_core_radius=v["lens.mass.core_radius"] if model == "cored_isothermal" else 0.0,
+                multipoles=tuple((m, v[f"lens.multipoles.m{m}_strength"], v[f"lens.multipoles.m{m}_angle"])
+                                 for m in (3, 4) if v[f"lens.multipoles.m{m}_strength"] != 0.0),
+                subhalos=self._draw_subhalos(v, theta_e, z_lens, z_source, streams),
+                shear_gamma=v["lens.shear.gamma"], shear_angle=v["lens.shear.angle"])
+            mass = build_deflector(deflector["mass_model_name"], theta_e, mass_q, mass_angle,
+                                   deflector["mass_slope"], deflector["mass_core_radius"], deflector["subhalos"],
+                                   deflector["multipoles"], deflector["shear_gamma"], deflector["shear_angle"])
+            placed = self._place(mass, theta_e, v, streams["physics"])
+            if placed is None:
+                tries["placement"] = tries.get("placement", 0) + 1
+                continue
+            if selection.multiply_imaged:
+                checks["multiply_imaged"] = placed["multiply_imaged"]
+                if selection.enforce and not placed["multiply_imaged"]:
+                    tries["multiply_imaged"] = tries.get("multiply_imaged", 0) + 1
+                    continue
+            break
+        else:
+            return None, _merge_counts(queue.nonzero_rejections(), tries)
+        geometry_rejections = _merge_counts(queue.nonzero_rejections(), tries)
         photometry = (self.source_model.complete(anchor_magnitude, z_source, streams["physics"])
                       if self.source_model is not None else None)
 
@@ -453,51 +536,9 @@ class PopulationSampler:
 
         return system, None
 
-    GEOMETRY_BATCH = 16
-    GEOMETRY_BATCHES = 64  # per candidate, before it counts as rejected
-
-    def _draw_geometry(self, v: dict, streams):
-        """``(sigma, z_lens, z_source, source anchor magnitude, rejections)`` of a candidate, or the
-        rejections (by cut) of all its bulk draws when none passed.  With a physical population or number counts the pairs are
-        drawn in batches and rejected in bulk (cheap): in lens mode a source must lie behind the
-        lens, and a pair is kept with probability (D_ls/D_s)^2, the distance part of the
-        cross-section weight (sigma^4 is in the deflector draw)."""
-        rng = streams["physics"]
-        lens_mode = self.mode == "lens"
-        bulk = self.deflectors is not None or self.source_model is not None
-        rejections = {"source_in_front": 0, "cross_section": 0, "einstein_radius": 0}
-        for _ in range(self.GEOMETRY_BATCHES if bulk else 1):
-            n = self.GEOMETRY_BATCH if bulk else 1
-            if self.deflectors is not None:
-                z_l = self.deflectors.draw_redshift(rng.uniform(size=n))
-                sigma = self.deflectors.draw_sigma(rng.uniform(size=n), z_l)
-            else:
-                z_l = np.full(n, v["lens.redshift"])
-                sigma = np.full(n, v["lens.velocity_dispersion"])
-            if self.source_model is not None:
-                m, z_s = self.source_model.draw_magnitudes_and_redshifts(rng, n)
-            else:
-                m, z_s = np.full(n, math.nan), np.full(n, v["source.redshift"])
-            u = rng.uniform(size=n)
-            if not lens_mode:
-                return float(sigma[0]), float(z_l[0]), float(z_s[0]), float(m[0]), {}
-            behind = z_s > z_l
-            ratio = np.where(behind, self.distances.ratio(np.minimum(z_l, z_s), z_s), 0.0)
-            weighted = behind & ((u <= ratio**2) if self.deflectors is not None else True)
-            kept = weighted
-            theta_range = self.recipe.selection.einstein_radius
-            if theta_range is not None and self.recipe.selection.enforce:
-                # the Einstein-radius cut is cheap here, in bulk (the same test as in _draw_candidate)
-                theta = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * ratio * ARCSEC_PER_RADIAN
-                kept = weighted & (theta >= theta_range[0]) & (theta <= theta_range[1])
-            first = int(np.argmax(kept)) if kept.any() else n
-            rejections["source_in_front"] += int(np.count_nonzero(~behind[:first]))
-            rejections["cross_section"] += int(np.count_nonzero(behind[:first] & ~weighted[:first]))
-            rejections["einstein_radius"] += int(np.count_nonzero(weighted[:first] & ~kept[:first]))
-            if first < n:
-                return (float(sigma[first]), float(z_l[first]), float(z_s[first]), float(m[first]),
-                        {k: n_ for k, n_ in rejections.items() if n_})
-        return {k: n_ for k, n_ in rejections.items() if n_}
+    GEOMETRY_BATCH = 64
+    GEOMETRY_BATCHES = 64  # batches per candidate before it counts as rejected
+    TRIES_PER_CANDIDATE = 64  # deflectors tried (sharing the candidate's streams) before rejection
 
     def _place(self, mass: MassModel, theta_e: float, v: dict, rng) -> dict | None:
         """The source centre and placement truth by the placement mode (System fields); None when a
@@ -551,6 +592,13 @@ def _uniform_in_disc(radius: float, rng) -> tuple[float, float]:
     r = radius * math.sqrt(rng.uniform())
     phi = rng.uniform(0.0, 2.0 * math.pi)
     return r * math.cos(phi), r * math.sin(phi)
+
+
+def _merge_counts(a: dict, b: dict) -> dict:
+    out = dict(a)
+    for name, n in b.items():
+        out[name] = out.get(name, 0) + n
+    return out
 
 
 def _exhausted_message(system_id: int, limit: int, rejections: dict) -> str:

@@ -179,7 +179,7 @@ class Choice:
         """The value whose cumulative weight first exceeds ``u`` (inverse CDF)."""
         n = len(self.values)
         weights = self.weights if self.weights is not None else (1.0,) * n
-        total, target = float(sum(weights)), u * float(sum(weights))
+        target = u * float(sum(weights))
         cumulative = 0.0
         for value, w in zip(self.values, weights):
             cumulative += w
