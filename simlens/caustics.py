@@ -125,14 +125,17 @@ def _isothermal_in_uniform_field(mass: MassModel, center) -> tuple | None:
     return (homogeneous, uniform) if homogeneous else None
 
 
+_UNIT_CIRCLE = (np.cos(np.linspace(0.0, 2.0 * np.pi, CUT_ANGLES, endpoint=False)),
+                np.sin(np.linspace(0.0, 2.0 * np.pi, CUT_ANGLES, endpoint=False)))
+
+
 def _closed_form(split, center, einstein_radius: float):
     """The tangential critical curve, its caustic and the cut of an isothermal lens in a uniform
     field, all from the isothermal parts evaluated once on the unit circle (their deflection does
     not change along a ray and their Hessian scales as 1/r); None if the route does not apply."""
     homogeneous, uniform = split
     cx, cy = center
-    phi = np.linspace(0.0, 2.0 * np.pi, CUT_ANGLES, endpoint=False)
-    cos, sin = np.cos(phi), np.sin(phi)
+    cos, sin = _UNIT_CIRCLE
     ux, uy = cx + cos, cy + sin
     ax_h = ay_h = h11 = h12 = h22 = 0.0
     for part in homogeneous:

@@ -26,7 +26,7 @@ from .galaxies import LensLightModel, PointSourceColours, SourceModel
 from .light import CompositeLight, LightProfile, Sersic
 from .mass import SIE, ConvergenceSheet, CoredIsothermal, ExternalShear, MassModel, Multipole, PowerLaw, TruncatedSIS
 from .recipe import Recipe
-from .sampling import Grid, grid_cell, system_streams
+from .sampling import Fixed, Grid, grid_cell, system_streams
 from .survey import BandConditions
 from .velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulation
 
@@ -305,6 +305,12 @@ class PopulationSampler:
         self.distances = DistanceTable(self.cosmology)
         self._parameters = list(recipe.parameters())
         self._grid_paths = [path for path, p in self._parameters if isinstance(p, Grid)]
+        # one uniform per parameter (fixed ones included, so adding a distribution to one parameter
+        # leaves the others' draws unchanged)
+        self._fixed_values = {path: float(p.value) for path, p in self._parameters if isinstance(p, Fixed)}
+        self._grid_parameters = [(path, p) for path, p in self._parameters if isinstance(p, Grid)]
+        self._random_parameters = [(i, path, p) for i, (path, p) in enumerate(self._parameters)
+                                   if not isinstance(p, (Fixed, Grid))]
         self._grid_shape = recipe.grid_shape
         base = str(Path(recipe.origin).parent) if recipe.origin != "<recipe>" else "."
         filters = {b.name: b.filter for b in recipe.survey.bands if b.filter is not None}
@@ -346,12 +352,11 @@ class PopulationSampler:
         cell = grid_cell(system_id, self._grid_shape)
         cell_of = dict(zip(self._grid_paths, cell))
         uniforms = streams["parameters"].uniform(size=len(self._parameters)).tolist()
-        values = {}
-        for (path, param), u in zip(self._parameters, uniforms):
-            if isinstance(param, Grid):
-                values[path] = float(param.at(cell_of[path]))
-            else:
-                values[path] = float(param.from_uniform(u))
+        values = dict(self._fixed_values)
+        for index, path, param in self._random_parameters:
+            values[path] = float(param.from_uniform(uniforms[index]))
+        for path, param in self._grid_parameters:
+            values[path] = float(param.at(cell_of[path]))
         return values, cell
 
     def _draw_subhalos(self, v: dict, theta_e: float, z_lens: float, z_source: float, streams) -> tuple:
