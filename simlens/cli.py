@@ -4,6 +4,8 @@
                         [--workers N] [--engine auto|serial|processes|dask] [--scheduler ADDRESS]
     simlens check RECIPE
     simlens verify RUN_DIR
+    simlens score RUN_DIR SCORES (--threshold T | --fpr F) [--by COLUMN ...] [--pair X Y]
+    simlens gallery RUN_DIR [--where "COLUMN OP VALUE" ...] [--missed SCORES --threshold T] [--sort COLUMN]
 
 User errors print one line (``simlens: error: ...``) and exit with status 2; no traceback.
 """
@@ -100,10 +102,42 @@ def _check(args) -> int:
     return 0
 
 
+def _score(args) -> int:
+    from .scoring import score_run
+
+    report = score_run(args.run_dir, args.scores, threshold=args.threshold, false_positive_rate=args.fpr,
+                       columns=args.by, pair=args.pair, n_bins=args.bins, name=args.name, plots=not args.no_plots)
+    print(report.describe())
+    return 0
+
+
+def _gallery(args) -> int:
+    from astropy.table import Table
+
+    from .gallery import contact_sheets, population_plots, select_systems
+    from .scoring import read_scores
+
+    run_dir = Path(args.run_dir)
+    if not (run_dir / "truth.fits").is_file():
+        raise SimlensError(f"{run_dir}: no truth.fits; is it a finished simlens run folder?")
+    truth = Table.read(run_dir / "truth.fits")
+    missed = read_scores(args.missed) if args.missed else None
+    if missed is not None and args.threshold is None:
+        raise SimlensError("--missed needs --threshold (systems scoring below it were missed)")
+    rows = select_systems(truth, args.where or (), missed, args.threshold, args.sort, args.descending)
+    rows = rows[: args.n]
+    files = population_plots(run_dir) if args.population else []
+    files += contact_sheets(run_dir, rows, name=args.name, bands=args.bands)
+    print(f"{len(rows)} systems drawn")
+    for f in files:
+        print(f"  wrote {f}")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="simlens", description="Synthetic survey cutouts of strong gravitational lenses.")
     parser.add_argument("--version", action="version", version=f"simlens {__version__}")
-    verbs = parser.add_subparsers(dest="verb", required=True, metavar="{make,check,verify}")
+    verbs = parser.add_subparsers(dest="verb", required=True, metavar="{make,check,verify,score,gallery}")
 
     make = verbs.add_parser("make", help="render the systems of a recipe into a run folder")
     make.add_argument("recipe", help="recipe file (TOML)")
@@ -128,6 +162,35 @@ def build_parser() -> argparse.ArgumentParser:
     verify = verbs.add_parser("verify", help="check a run folder's files against its manifest")
     verify.add_argument("run_dir", help="run folder")
     verify.set_defaults(func=_verify)
+
+    score = verbs.add_parser("score", help="completeness, purity and ROC of a finder's scores against a run's truth")
+    score.add_argument("run_dir", help="finished run folder")
+    score.add_argument("scores", help="table of system_id, score (CSV, ECSV or FITS); higher = more lens-like")
+    which = score.add_mutually_exclusive_group(required=True)
+    which.add_argument("--threshold", type=float, help="score threshold: systems at or above it are found")
+    which.add_argument("--fpr", type=float, help="choose the threshold giving this false-positive rate")
+    score.add_argument("--by", nargs="+", metavar="COLUMN",
+                       help="truth columns for completeness (default: Einstein radius, source magnitude, arc S/N, "
+                            "seeing, lens magnitude in the reference band)")
+    score.add_argument("--pair", nargs=2, metavar=("X", "Y"), help="two truth columns for a 2D completeness map")
+    score.add_argument("--bins", type=int, default=6, help="quantile bins per column (default 6)")
+    score.add_argument("--name", default="finder", help="output folder RUN_DIR/scores/NAME (default: finder)")
+    score.add_argument("--no-plots", action="store_true", help="tables only")
+    score.set_defaults(func=_score)
+
+    gallery = verbs.add_parser("gallery", help="contact sheets of colour composites, and population plots")
+    gallery.add_argument("run_dir", help="finished run folder")
+    gallery.add_argument("--where", action="append", metavar="CUT",
+                         help="truth cut 'COLUMN OP VALUE' (OP: < <= > >= == !=); repeat to combine")
+    gallery.add_argument("--missed", metavar="SCORES", help="only the lenses this finder's scores missed")
+    gallery.add_argument("--threshold", type=float, help="with --missed: the finder's score threshold")
+    gallery.add_argument("--sort", metavar="COLUMN", help="order by this truth column (ascending)")
+    gallery.add_argument("--descending", action="store_true", help="sort in descending order")
+    gallery.add_argument("--n", type=int, default=36, help="at most this many systems (default 36)")
+    gallery.add_argument("--bands", nargs=3, metavar=("RED", "GREEN", "BLUE"), help="bands for R, G, B")
+    gallery.add_argument("--name", default="gallery", help="file stem in RUN_DIR/gallery/ (default: gallery)")
+    gallery.add_argument("--population", action="store_true", help="also plot the population's distributions")
+    gallery.set_defaults(func=_gallery)
     return parser
 
 
