@@ -78,14 +78,23 @@ def _images_of(run_dir: Path, ids: np.ndarray) -> dict:
     return out
 
 
+def _number(row, column: str) -> float:
+    value = row[column] if column in row.colnames else np.nan
+    return float(np.ma.filled(value, np.nan)) if np.ma.is_masked(value) else float(value)
+
+
 def _caption(row, band: str) -> str:
-    parts = [f"#{row['system_id']}", f"θE {row['einstein_radius']:.2f}\""]
-    if f"arc_snr_{band}" in row.colnames:
-        parts.append(f"S/N {row[f'arc_snr_{band}']:.0f}")
-    parts.append(f"z {row['z_lens']:.2f}/{row['z_source']:.2f}")
-    if f"source_mag_{band}" in row.colnames:
-        parts.append(f"{band} {row[f'source_mag_{band}']:.1f}")
-    return "  ".join(parts[:3]) + "\n" + "  ".join(parts[3:])
+    first = [f"#{row['system_id']}", f"θE {row['einstein_radius']:.2f}\""]
+    snr = _number(row, f"arc_snr_{band}")
+    if np.isfinite(snr):
+        first.append(f"S/N {snr:.0f}")
+    second = [f"z {row['z_lens']:.2f}/{row['z_source']:.2f}"]
+    mag = _number(row, f"source_mag_{band}")
+    if np.isfinite(mag):
+        second.append(f"{band} {mag:.1f}")
+    if "system_class" in row.colnames and str(row["system_class"]) != "lens":
+        second.append(str(row["system_class"]))
+    return "  ".join(first) + "\n" + "  ".join(second)
 
 
 def contact_sheets(run_dir: str | Path, rows: Table, name: str = "gallery", per_page: int = 36,

@@ -17,7 +17,8 @@ from dataclasses import dataclass, replace
 import numpy as np
 from scipy import special
 
-__all__ = ["LightProfile", "Sersic", "PointSource", "CompositeLight", "sersic_b", "split_points"]
+__all__ = ["LightProfile", "Sersic", "PointSource", "CompositeLight", "GaussianRing", "SpiralArms", "sersic_b",
+           "split_points"]
 
 SERSIC_INDEX_RANGE = (0.3, 8.0)
 
@@ -153,6 +154,104 @@ class PointSource(LightProfile):
         return np.zeros(np.broadcast(np.asarray(x), np.asarray(y)).shape)
 
     def with_flux(self, flux: float) -> "PointSource":
+        return replace(self, flux=flux)
+
+
+def _stretched_polar(x, y, center, q, angle):
+    """Polar coordinates ``(R, phi)`` in the area-preserving frame ``(sqrt(q) x', y' / sqrt(q))``:
+    ``R`` is the elliptical radius of the module docstring and ``dA = R dR dphi``."""
+    c, s = math.cos(math.radians(angle)), math.sin(math.radians(angle))
+    dx = np.asarray(x, dtype=float) - center[0]
+    dy = np.asarray(y, dtype=float) - center[1]
+    u = math.sqrt(q) * (c * dx + s * dy)
+    v = (-s * dx + c * dy) / math.sqrt(q)
+    return np.hypot(u, v), np.arctan2(v, u)
+
+
+@dataclass(frozen=True)
+class GaussianRing(LightProfile):
+    """An elliptical ring of Gaussian cross-section, whole or an arc segment (for ring galaxies,
+    tidal shells and streams):
+
+        I = I_0 exp(-(R - radius)^2 / (2 width^2)) exp(-dphi^2 / (2 arc_width^2)),
+
+    ``dphi`` the angle from ``arc_angle`` (degrees, in the ring's frame); ``arc_width=None`` is the
+    whole ring.  Normalised analytically (the stretched frame preserves area):
+    ``flux = I_0 [w^2 exp(-r0^2 / 2w^2) + r0 w sqrt(pi/2) (1 + erf(r0 / (sqrt(2) w)))] A`` with
+    ``A = 2 pi`` for the whole ring, else ``sqrt(2 pi) s erf(pi / (sqrt(2) s))`` (``s`` in radians)."""
+
+    flux: float
+    radius: float
+    width: float
+    q: float = 1.0
+    angle: float = 0.0
+    arc_angle: float = 0.0
+    arc_width: float | None = None
+    center: tuple = (0.0, 0.0)
+
+    def __post_init__(self):
+        if not (self.radius >= 0 and self.width > 0 and 0 < self.q <= 1 and self.flux >= 0):
+            raise ValueError(f"GaussianRing: needs radius >= 0, width > 0, 0 < q <= 1, flux >= 0; got {self}")
+        if self.arc_width is not None and not self.arc_width > 0:
+            raise ValueError(f"GaussianRing: arc_width must be > 0 degrees, got {self.arc_width}")
+        object.__setattr__(self, "center", tuple(float(v) for v in self.center))
+
+    @property
+    def _norm(self) -> float:
+        r0, w = self.radius, self.width
+        radial = w * w * math.exp(-r0 * r0 / (2 * w * w)) + r0 * w * math.sqrt(math.pi / 2) * (
+            1 + math.erf(r0 / (math.sqrt(2) * w)))
+        if self.arc_width is None:
+            angular = 2 * math.pi
+        else:
+            sig = math.radians(self.arc_width)
+            angular = math.sqrt(2 * math.pi) * sig * math.erf(math.pi / (math.sqrt(2) * sig))
+        return radial * angular
+
+    def surface_brightness(self, x, y) -> np.ndarray:
+        r, phi = _stretched_polar(x, y, self.center, self.q, self.angle)
+        sb = np.exp(-((r - self.radius) ** 2) / (2 * self.width**2))
+        if self.arc_width is not None:
+            dphi = np.angle(np.exp(1j * (phi - math.radians(self.arc_angle))))
+            sb = sb * np.exp(-(dphi**2) / (2 * math.radians(self.arc_width) ** 2))
+        return self.flux / self._norm * sb
+
+    def with_flux(self, flux: float) -> "GaussianRing":
+        return replace(self, flux=flux)
+
+
+@dataclass(frozen=True)
+class SpiralArms(LightProfile):
+    """Logarithmic spiral arms on an exponential disk (spiral-arm look-alikes of arcs):
+
+        I = I_0 exp(-R / h) [1 + cos(m (phi - ln(R / h) / tan(pitch)))]^2 / 4,
+
+    ``m`` arms of pitch angle ``pitch`` (degrees).  At fixed ``R`` the bracket averages to 3/8 over
+    ``phi`` for any integer ``m``, so ``flux = I_0 (3/8) 2 pi h^2`` exactly."""
+
+    flux: float
+    scale_radius: float
+    pitch: float = 15.0
+    arms: int = 2
+    q: float = 1.0
+    angle: float = 0.0
+    phase: float = 0.0
+    center: tuple = (0.0, 0.0)
+
+    def __post_init__(self):
+        if not (self.scale_radius > 0 and 0 < self.pitch < 90 and int(self.arms) == self.arms >= 1
+                and 0 < self.q <= 1 and self.flux >= 0):
+            raise ValueError(f"SpiralArms: invalid parameters {self}")
+        object.__setattr__(self, "center", tuple(float(v) for v in self.center))
+
+    def surface_brightness(self, x, y) -> np.ndarray:
+        r, phi = _stretched_polar(x, y, self.center, self.q, self.angle)
+        h = self.scale_radius
+        wind = np.log(np.maximum(r, 1e-9) / h) / math.tan(math.radians(self.pitch))
+        pattern = (1 + np.cos(self.arms * (phi - wind) - math.radians(self.phase))) ** 2 / 4
+        return self.flux / (0.375 * 2 * math.pi * h * h) * np.exp(-r / h) * pattern
+
+    def with_flux(self, flux: float) -> "SpiralArms":
         return replace(self, flux=flux)
 
 

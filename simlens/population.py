@@ -24,6 +24,7 @@ from .distances import C_KM_S, DistanceTable
 from .errors import SimlensError
 from .galaxies import LensLightModel, PointSourceColours, SourceModel
 from .light import CompositeLight, LightProfile, Sersic
+from .negatives import lookalike_light
 from .mass import SIE, ConvergenceSheet, CoredIsothermal, ExternalShear, MassModel, Multipole, PowerLaw, TruncatedSIS
 from .recipe import Recipe
 from .sampling import Fixed, Grid, grid_cell, system_streams
@@ -35,7 +36,7 @@ __all__ = ["System", "Clump", "Subhalo", "PopulationSampler", "SelectionExhauste
 # Named random streams of a system; append new names at the end to keep old draws unchanged.
 # "physics" feeds, in code order, the deflector and source geometry, subhalos, placement, lens light,
 # source size and clumps; "observation" the sky position and the noise seeds.
-STREAMS = ("parameters", "physics", "observation")
+STREAMS = ("parameters", "physics", "observation", "negatives")
 
 CLUMP_SERSIC_INDEX = 0.5  # Gaussian clumps
 
@@ -117,13 +118,19 @@ class System:
     candidate: int = 0  # which draw of this system passed the selection (0: the first)
     rejections: Mapping[str, int] = dataclasses.field(default_factory=dict)  # earlier candidates, by cut
     selection_flags: Mapping[str, bool] = dataclasses.field(default_factory=dict)  # cut -> passed
+    # -- negatives (simlens.negatives) --
+    system_class: str = "lens"  # lens, missed_caustics, source_in_front, or a negative class
+    lensing: bool = True  # False: nothing is deflected (negatives)
+    source_present: bool = True  # False: no background source (look-alikes)
+    extra_light: tuple = ()  # lens-plane look-alike light: (unit-flux profile, {band: mag}) pairs
 
     # -- models -------------------------------------------------------------------------------
     def mass_model(self) -> MassModel:
         """The deflector: the main profile (its Einstein radius is that of the SIS with the drawn
         velocity dispersion), multipoles, external shear.  A source in front of the lens (sky mode)
         is not deflected at all."""
-        return build_deflector(self.mass_model_name, self.einstein_radius, self.mass_q, self.mass_angle,
+        return build_deflector(self.mass_model_name, self.einstein_radius if self.lensing else 0.0,
+                               self.mass_q, self.mass_angle,
                                self.mass_slope, self.mass_core_radius, self.subhalos, self.multipoles,
                                self.shear_gamma, self.shear_angle)
 
@@ -133,10 +140,16 @@ class System:
                 return b
         raise KeyError(f"system {self.system_id} has no band {name!r}")
 
-    def lens_light(self, band: str) -> Sersic:
-        counts = self.band(band).counts_from_magnitude(self.lens_magnitudes[band])
-        return Sersic(flux=counts, half_light_radius=self.lens_half_light_radius,
-                      sersic_index=self.lens_sersic_index, q=self.lens_q, angle=self.lens_angle)
+    def lens_light(self, band: str) -> LightProfile:
+        """The lens galaxy (Sersic), with any look-alike features of a negative, in counts."""
+        conditions = self.band(band)
+        galaxy = Sersic(flux=conditions.counts_from_magnitude(self.lens_magnitudes[band]),
+                        half_light_radius=self.lens_half_light_radius,
+                        sersic_index=self.lens_sersic_index, q=self.lens_q, angle=self.lens_angle)
+        if not self.extra_light:
+            return galaxy
+        return CompositeLight((galaxy,) + tuple(shape.with_flux(conditions.counts_from_magnitude(mags[band]))
+                                                for shape, mags in self.extra_light))
 
     @property
     def region_area(self) -> float:
@@ -144,7 +157,7 @@ class System:
 
     def quasar_flux(self, band: str) -> float:
         """Counts of the unlensed point source in ``band`` (0 without one)."""
-        if self.quasar_magnitudes is None:
+        if self.quasar_magnitudes is None or not self.source_present:
             return 0.0
         return self.band(band).counts_from_magnitude(self.quasar_magnitudes[band])
 
@@ -152,7 +165,7 @@ class System:
         """The unlensed source galaxy in the source plane (disk plus clumps), in counts.  A point
         source is not part of it: its images are found and placed by the renderer."""
         conditions = self.band(band)
-        if not self.host:
+        if not self.host or not self.source_present:
             return Sersic(flux=0.0, half_light_radius=self.source_half_light_radius,
                           center=(self.source_x, self.source_y))
         disk = Sersic(flux=conditions.counts_from_magnitude(self.source_disk_magnitudes[band]),
@@ -167,7 +180,10 @@ class System:
         return CompositeLight((disk,) + knots)
 
     def source_magnitude(self, band: str) -> float:
-        """Total unlensed magnitude of the source galaxy (disk plus clumps) in ``band``."""
+        """Total unlensed magnitude of the source galaxy (disk plus clumps) in ``band`` (nan when a
+        look-alike negative has no source)."""
+        if not self.source_present:
+            return math.nan
         flux = 10 ** (-0.4 * self.source_disk_magnitudes[band])
         flux += sum(10 ** (-0.4 * c.magnitudes[band]) for c in self.clumps)
         return -2.5 * math.log10(flux)
@@ -538,8 +554,35 @@ class PopulationSampler:
             host=source_settings.quasar.host if source_settings.quasar is not None else True,
             days_per_arcsec2=self.distances.fermat_to_days(z_lens, z_source) if behind else math.nan,
             candidate=candidate, rejections=geometry_rejections, **lens_extra)
-
+        system = self._classify(system, streams["negatives"])
         return system, None
+
+    def _classify(self, system: System, rng) -> System:
+        """The system's class; a share ``negatives.fraction`` becomes a negative (see negatives.py)."""
+        negatives = self.recipe.negatives
+        if negatives.fraction > 0 and rng.uniform() < negatives.fraction:
+            weights = negatives.weights()
+            names = [n for n, w in weights.items() if w > 0]
+            p = np.array([weights[n] for n in names], dtype=float)
+            kind = names[int(rng.choice(len(names), p=p / p.sum()))]
+            scale = system.einstein_radius if system.einstein_radius > 0 else system.lens_half_light_radius
+            extra = lookalike_light(kind, rng, scale, system.lens_half_light_radius, system.lens_q, system.lens_angle,
+                                    dict(system.lens_magnitudes), {b: system.source_magnitude(b) for b in system.lens_magnitudes})
+            flags = dict(system.selection_flags)
+            if "multiply_imaged" in flags:
+                flags["multiply_imaged"] = False
+            changes = dict(system_class=kind, lensing=False, multiply_imaged=False, extra_light=extra,
+                           selection_flags=flags,
+                           source_present=kind == "unlensed_source", tangential_caustic_area=0.0,
+                           inner_caustic_area=0.0)
+            if kind == "unlensed_source":
+                x, y = _uniform_in_annulus(0.3 * scale, 2.5 * scale, rng)
+                changes.update(source_x=x, source_y=y)
+            return dataclasses.replace(system, **changes)
+        if system.multiply_imaged:
+            return system
+        return dataclasses.replace(system, system_class="source_in_front" if system.z_source <= system.z_lens
+                                   else "missed_caustics")
 
     GEOMETRY_BATCH = 64
     GEOMETRY_BATCHES = 64  # batches per candidate before it counts as rejected
@@ -591,6 +634,12 @@ class PopulationSampler:
 
 
 LENS_MODE_PLACEMENT_TRIES = 1000
+
+
+def _uniform_in_annulus(r_in: float, r_out: float, rng) -> tuple[float, float]:
+    r = math.sqrt(r_in**2 + rng.uniform() * (r_out**2 - r_in**2))
+    phi = rng.uniform(0.0, 2.0 * math.pi)
+    return r * math.cos(phi), r * math.sin(phi)
 
 
 def _uniform_in_disc(radius: float, rng) -> tuple[float, float]:

@@ -51,6 +51,7 @@ __all__ = [
     "ClumpSettings",
     "OutputSettings",
     "SelectionSettings",
+    "NegativeSettings",
     "DeflectorPopulationSettings",
     "LensLightScalingSettings",
     "SourceCountsSettings",
@@ -424,6 +425,22 @@ class SelectionSettings:
 
 
 @dataclass(frozen=True, kw_only=True)
+class NegativeSettings:
+    fraction: float = number(0.0, low=0, high=1, doc="fraction of the systems made non-lenses")
+    unlensed_source: float = number(1.0, low=0, doc="weight: the source unlensed, behind or beside the galaxy")
+    ring_galaxy: float = number(1.0, low=0, doc="weight: a blue star-forming ring around the galaxy")
+    spiral_arms: float = number(1.0, low=0, doc="weight: blue spiral arms around the galaxy")
+    tidal_features: float = number(1.0, low=0, doc="weight: red shells or streams, sometimes a merging companion")
+    edge_on_disk: float = number(1.0, low=0, doc="weight: a blue edge-on disk next to the galaxy")
+    blue_companions: float = number(1.0, low=0, doc="weight: compact blue galaxies near the galaxy")
+
+    def weights(self) -> dict:
+        from .negatives import NEGATIVE_CLASSES
+
+        return {name: getattr(self, name) for name in NEGATIVE_CLASSES}
+
+
+@dataclass(frozen=True, kw_only=True)
 class OutputSettings:
     shard_size: int = number(100, low=1, high=100_000, integer=True,
                              doc="systems per shard file (the unit of parallel work and of resuming)")
@@ -444,6 +461,7 @@ class Recipe:
     cosmology: CosmologySettings = table(CosmologySettings, doc="cosmology")
     footprint: FootprintSettings = table(FootprintSettings, doc="sky area for RA/Dec")
     selection: SelectionSettings = table(SelectionSettings, doc="cuts on the truth")
+    negatives: NegativeSettings = table(NegativeSettings, doc="labelled non-lenses: classes and their share")
     output: OutputSettings = table(OutputSettings, doc="what a run writes")
     name: str = text("simlens-run", doc="run name (default: the recipe file's stem)")
     count: int = number(100, low=1, high=10_000_000, integer=True, doc="number of systems")
@@ -793,6 +811,10 @@ def _check_consistency(recipe: Recipe) -> None:
     for path, settings in (("lens.light.scaling", lens.light.scaling), ("source.counts", source.counts)):
         if settings is not None:
             _check_filter(origin, f"{path}.rest_filter", settings.rest_filter, base)
+    neg = recipe.negatives
+    if neg.fraction > 0 and sum(neg.weights().values()) <= 0:
+        raise RecipeError(origin, "negatives", f"fraction = {neg.fraction:g} but every class weight is 0",
+                          "a positive weight for at least one class")
     sel = recipe.selection
     if sel.arc_snr_band is not None and sel.arc_snr_band not in names:
         raise RecipeError(origin, "selection.arc_snr_band", f"{sel.arc_snr_band!r} is not a band",

@@ -8,8 +8,9 @@ lens-like).  It is joined with the run's truth catalogue, every system is labell
   false-positive rate on the non-lenses is a given value -- overall, in bins of any truth column
   and in 2D bins of two columns, each with a binomial confidence interval (Wilson score interval,
   via ``astropy.stats.binom_conf_interval``; 68.27 % by default);
-* purity, and the false-positive rate by class of non-lens (the truth column ``negative_class`` if
-  the run has one, else all non-lenses together);
+* purity, and the false-positive rate by class of non-lens (the truth column ``system_class``: the
+  negative classes of simlens.negatives, ``missed_caustics``, ``source_in_front``,
+  ``undetectable_lens``);
 * the ROC curve and its area (trapezoidal, ties counted half: the Mann-Whitney statistic).
 
 Bins are quantiles of the lenses' values, so each holds a similar number of lenses.
@@ -63,8 +64,10 @@ def read_scores(path: str | Path) -> Table:
 
 def lens_labels(truth: Table) -> np.ndarray:
     """``is_lens``: the source centre is multiply imaged (inside a caustic or the cut) and the system
-    passes every cut of the recipe's selection (``selected``).  Runs without these columns fall
-    back to two or more images in the cutout."""
+    passes every cut of the recipe's selection (``selected``), and it is not a negative (the truth's
+    ``is_lens`` column).  Runs without these columns fall back to two or more images in the cutout."""
+    if "is_lens" in truth.colnames:
+        return np.asarray(truth["is_lens"], dtype=bool)
     if "multiply_imaged" in truth.colnames:
         multiple = np.asarray(truth["multiply_imaged"], dtype=bool)
     else:
@@ -243,8 +246,10 @@ def score_run(run_dir: str | Path, scores_path: str | Path, *, threshold: float 
     purity = k / int(selected.sum()) if selected.any() else math.nan
     fp = int((selected & ~labels).sum())
     area = roc_area(labels, values) if n_pos and n_neg else math.nan
-    classes = (np.asarray(table["negative_class"]).astype(str) if "negative_class" in table.colnames
+    classes = (np.asarray(table["system_class"]).astype(str) if "system_class" in table.colnames
                else np.full(len(table), "non_lens"))
+    # a multiply-imaged system that fails the detectability cuts is not a lens by the label
+    classes = np.where((classes == "lens") & ~labels, "undetectable_lens", classes)
     rows = []
     for c in sorted(set(classes[~labels])):
         members = (~labels) & (classes == c)

@@ -49,7 +49,8 @@ def select_and_render(sampler: PopulationSampler, system_id: int) -> tuple[Rende
         rendered = render_system(system, recipe.survey, recipe.reference_band)
         results = image_cut_results(rendered, recipe)
         failed = next((name for name, ok in results.items() if not ok), None)
-        if failed is None or not sel.enforce:
+        # negatives are labelled non-lenses: the cuts flag them but never redraw them
+        if failed is None or not sel.enforce or system.system_class not in ("lens",):
             flags = dict(system.selection_flags)
             flags.update(results)
             return rendered, {"rejections": rejections, "flags": flags}

@@ -159,3 +159,21 @@ def test_streamed_catalogue_equals_the_stacked_table(tmp_path):
     np.testing.assert_array_equal(kept["x"], whole["x"].value)
     with fits.open(tmp_path / "cat.fits") as hdul:
         hdul.verify("exception")
+
+
+def test_catalogue_text_columns_of_different_widths_per_shard(tmp_path):
+    # Shards whose text columns differ in width (read back from FITS as bytes) stream into one
+    # catalogue without corrupting rows; astropy reads both files back.
+    from astropy.table import Table
+
+    from simlens.output.catalogue import write_catalogue
+
+    parts = [Table({"system_id": [0, 1], "label": ["lens", "ring_galaxy"], "x": [1.0, 2.0]}),
+             Table({"system_id": [2], "label": ["tidal_features"], "x": [3.0]})]
+    for i, part in enumerate(parts):
+        part.write(tmp_path / f"p{i}.fits")
+    write_catalogue(lambda i: Table.read(tmp_path / f"p{i}.fits"), 2, tmp_path, "cat")
+    for name in ("cat.fits", "cat.ecsv"):
+        table = Table.read(tmp_path / name)
+        assert [str(v) for v in table["label"]] == ["lens", "ring_galaxy", "tidal_features"]
+        assert list(table["x"]) == [1.0, 2.0, 3.0]

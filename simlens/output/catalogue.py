@@ -31,7 +31,15 @@ def _with_widths(table: Table, widths: dict) -> Table:
 
 
 def _string_widths(table: Table) -> dict:
-    return {name: int(table[name].dtype.itemsize // 4) for name in table.colnames if table[name].dtype.kind == "U"}
+    """Character widths of the text columns (unicode, or bytes as FITS tables are read back)."""
+    widths = {}
+    for name in table.colnames:
+        dtype = table[name].dtype
+        if dtype.kind == "U":
+            widths[name] = int(dtype.itemsize // 4)
+        elif dtype.kind == "S":
+            widths[name] = int(dtype.itemsize)
+    return widths
 
 
 def write_catalogue(read_part: Callable[[int], Table], n_parts: int, folder: Path, stem: str,

@@ -56,6 +56,10 @@ inner_caustic_area         arcsec2   area inside the radial caustic or the cut
 candidate                            which draw of this system passed the selection (0: first)
 passes_<cut>                         the system passes that [selection] cut
 selected                             it passes all of them
+system_class                         lens (source centre multiply imaged), missed_caustics,
+                                     source_in_front, or a negative class (simlens.negatives)
+is_lens                              system_class is lens and the system is selected: the label
+n_lookalike_features                 look-alike light components added (negatives)
 arc_snr_<band>                       matched-filter S/N of the noiseless lensed source:
                                      sqrt(sum_i S_i^2 / var_i), var_i = expected per-pixel variance
                                      (sky + lens + source Poisson and read noise), over the cutout
@@ -129,6 +133,9 @@ def truth_row(rendered: RenderedSystem, file: str, shard: str = "", shard_index:
     flags = flags or {}
     row.update({f"passes_{name}": bool(flags.get(name, True)) for name in cut_names})
     row["selected"] = all(bool(flags.get(name, True)) for name in cut_names)
+    row["system_class"] = s.system_class
+    row["is_lens"] = s.system_class == "lens" and row["selected"]
+    row["n_lookalike_features"] = len(s.extra_light)
     row.update({f"arc_snr_{b.band.name}": b.arc_snr for b in rendered.bands})
     row.update({f"psf_fwhm_{b.name}": b.psf_fwhm for b in s.bands})
     row.update({f"magzero_{b.name}": b.magzero for b in s.bands})
