@@ -90,6 +90,10 @@ def _check(args) -> int:
     print(f"    source {recipe.reference_band} magnitude {mags.min():.1f} / {np.median(mags):.1f} / {mags.max():.1f}; "
           f"multiply imaged (source centre inside a caustic): {sum(s.multiply_imaged for s in systems)}/{n}; "
           f"placement: {systems[0].placement}")
+    classes: dict = {}
+    for s in systems:
+        classes[s.system_class] = classes.get(s.system_class, 0) + 1
+    print("    classes: " + ", ".join(f"{name} {n}" for name, n in sorted(classes.items(), key=lambda kv: -kv[1])))
     rejected: dict = {}
     for s in systems:
         for name, count in s.rejections.items():
