@@ -244,6 +244,7 @@ class ComponentImages:
         self.adaptive = adaptive
         self.refined_pixels = 0  # how many pixel refinements were made (for benchmarks)
         self._cache: dict = {}
+        self._fine: dict = {}  # unit-flux lensed components at full resolution, from prepare_lensed
         self._shared_refinement = None  # (flagged pixels, their rays) from prepare_lensed
 
     def _reduce(self, fine: np.ndarray) -> np.ndarray:
@@ -257,7 +258,9 @@ class ComponentImages:
         rm = self.ray_map
         grid = rm.grid
         x, y = (rm.beta_x, rm.beta_y) if lensed else (rm.x, rm.y)
-        inner = profile.surface_brightness(x, y) * grid.fine_pixel_area
+        inner = self._fine.pop(profile, None) if lensed else None
+        if inner is None:
+            inner = profile.surface_brightness(x, y) * grid.fine_pixel_area
         if not lensed and hasattr(profile, "center"):
             refine_centre(inner, profile, rm.axis, grid.fine_scale)
         refinement = None
@@ -298,7 +301,12 @@ class ComponentImages:
         total = np.zeros_like(rm.beta_x)
         for part in parts:
             if part.flux > 0 and not isinstance(part, PointSource):
-                total += part.surface_brightness(rm.beta_x, rm.beta_y) * grid.fine_pixel_area
+                unit = part.with_flux(1.0)
+                fine = self._fine.get(unit)
+                if fine is None:  # kept for _unit_image, which would evaluate the same rays again
+                    fine = unit.surface_brightness(rm.beta_x, rm.beta_y) * grid.fine_pixel_area
+                    self._fine[unit] = fine
+                total += part.flux * fine
         self._shared_refinement = self._trace_refinement(self._flag(total))
 
     def _trace_refinement(self, flagged):

@@ -103,6 +103,7 @@ def render_system(system: System, survey: SurveySettings, reference_band: str) -
     # Shapes are achromatic: evaluate each once for all bands, on the PSF stage's grid.
     components = ComponentImages(rays, sampling=sampling, adaptive=survey.adaptive_supersampling)
     components.prepare_lensed(system.source_light(reference_band))  # refine where the whole source needs it
+    timings["adaptive_refinement"] = time.perf_counter() - t_images
     t_scene = t_observe = 0.0
     for conditions, seed in zip(system.bands, system.noise_seeds):
         ta = time.perf_counter()

@@ -80,8 +80,8 @@ def render_shard(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
     rows, subhalos, images, files = [], [], [], {}
     attrition: dict = {}
     shard_file = shard_path(recipe, spec.index)
-    timings = {"sampling": 0.0, "ray_tracing": 0.0, "scene": 0.0, "galsim_stage": 0.0,
-               "image_finding": 0.0, "writing": 0.0}
+    timings = {"sampling": 0.0, "ray_tracing": 0.0, "image_finding": 0.0, "adaptive_refinement": 0.0,
+               "scene": 0.0, "galsim_stage": 0.0, "writing": 0.0}
     for k in range(spec.n_systems):
         system_id = spec.first_system + k
         t0 = time.perf_counter()
