@@ -3,9 +3,12 @@
 The pipeline, one module a stage::
 
     recipe.py      TOML recipe -> validated, frozen settings (Recipe)
-    population.py  Recipe + system_id -> System (the truth, plain numbers)
-    mass/          deflectors (SIS, SIE, PointMass, ExternalShear, ConvergenceSheet)
-    light.py       surface brightness (Sersic, sums of components)
+    population.py  Recipe + system_id -> System (the truth, plain numbers); uses distances.py,
+                   velocity_function.py, scaling_relations.py, photometry.py, galaxies.py,
+                   caustics.py and negatives.py
+    selection.py   candidates redrawn until the selection cuts pass; attrition
+    mass/          deflectors (SIS, SIE, power law, cored, NFW, Sersic, multipoles, subhalos, ...)
+    light.py       surface brightness (Sersic, rings, spiral arms, point sources, sums)
     raytrace.py    System -> Scene per band (ray map once, lensed source + lens light)
     observe.py     Scene -> ObservedBand (GalSim PSF, pixel, sky, CCD noise)
     render.py      System -> RenderedSystem (all bands + measured truth)
@@ -15,6 +18,8 @@ The pipeline, one module a stage::
     output/        shard files, per-system FITS cutouts with WCS, truth catalogue
     pipeline.py    a whole run into a folder
     loader.py      (images, truth) batches from a run, for training
+    scoring.py     a finder's completeness, purity and ROC against a run's truth
+    gallery.py     contact sheets and population plots
 
 Five lines::
 
@@ -25,7 +30,7 @@ Five lines::
     image = rendered.band("r").image
 """
 
-__version__ = "0.1.0"
+__version__ = "0.2.0"
 
 from .errors import RecipeError, SimlensError
 from .pipeline import run
@@ -34,6 +39,8 @@ from .recipe import Recipe, load_recipe, parse_recipe
 from .render import RenderedSystem, render_system
 from .loader import iter_batches
 from .run_folder import verify_run
+from .scoring import score_run
 
 __all__ = ["__version__", "SimlensError", "RecipeError", "Recipe", "load_recipe", "parse_recipe",
-           "PopulationSampler", "System", "render_system", "RenderedSystem", "run", "iter_batches", "verify_run"]
+           "PopulationSampler", "System", "render_system", "RenderedSystem", "run", "iter_batches", "verify_run",
+           "score_run"]
