@@ -22,6 +22,7 @@ __all__ = ["ImageSet", "find_images", "fermat_potential", "time_delays"]
 NEWTON_ITERATIONS = 40
 SOLUTION_TOLERANCE = 1e-9  # arcsec, in the source plane
 MERGE_DISTANCE = 1e-5  # arcsec: two solutions closer than this are one image
+MAX_MAGNIFICATION = 1e6  # |mu| of an image on a critical curve
 
 
 @dataclass(frozen=True)
@@ -119,7 +120,10 @@ def find_images(mass: MassModel, source_x: float, source_y: float,
             keep_y.append(yi)
     x, y = np.array(keep_x), np.array(keep_y)
     mu = mass.magnification(x, y) if x.size else np.empty(0)
-    return ImageSet(x=x, y=y, magnification=np.asarray(mu, dtype=float))
+    # An image exactly on a critical curve (a source exactly on a caustic, e.g. the centre of an
+    # SIS, whose image is the Einstein ring) has infinite point magnification: capped, sign kept.
+    mu = np.clip(np.asarray(mu, dtype=float), -MAX_MAGNIFICATION, MAX_MAGNIFICATION)
+    return ImageSet(x=x, y=y, magnification=mu)
 
 
 def fermat_potential(mass: MassModel, x, y, source_x: float, source_y: float) -> np.ndarray:

@@ -19,13 +19,15 @@ import numpy as np
 from pathlib import Path
 
 from .caustics import CausticSet, find_caustics
+from .composite_lens import stars_and_halo
 from .cosmology import critical_surface_density, ARCSEC_PER_RADIAN
 from .distances import C_KM_S, DistanceTable
 from .errors import SimlensError
 from .galaxies import LensLightModel, PointSourceColours, SourceModel
 from .light import CompositeLight, LightProfile, Sersic
 from .negatives import lookalike_light
-from .mass import SIE, ConvergenceSheet, CoredIsothermal, ExternalShear, MassModel, Multipole, PowerLaw, TruncatedSIS
+from .mass import (NFW, SIE, ConvergenceSheet, CoredIsothermal, ExternalShear, MassModel, Multipole, PowerLaw,
+                   SersicMass, TruncatedSIS)
 from .recipe import Recipe
 from .sampling import Fixed, Grid, grid_cell, system_streams
 from .survey import BandConditions
@@ -118,6 +120,13 @@ class System:
     candidate: int = 0  # which draw of this system passed the selection (0: the first)
     rejections: Mapping[str, int] = dataclasses.field(default_factory=dict)  # earlier candidates, by cut
     selection_flags: Mapping[str, bool] = dataclasses.field(default_factory=dict)  # cut -> passed
+    # -- stars_and_halo mass model (simlens.composite_lens); the stars take the lens light's shape --
+    stellar_kappa_e: float = 0.0
+    halo_mass: float = math.nan  # M200, M_sun
+    halo_concentration: float = math.nan
+    halo_kappa_s: float = 0.0
+    halo_scale_radius: float = math.nan  # arcsec
+    halo_ellipticity: float = 0.0
     # -- negatives (simlens.negatives) --
     system_class: str = "lens"  # lens, missed_caustics, source_in_front, or a negative class
     lensing: bool = True  # False: nothing is deflected (negatives)
@@ -129,10 +138,15 @@ class System:
         """The deflector: the main profile (its Einstein radius is that of the SIS with the drawn
         velocity dispersion), multipoles, external shear.  A source in front of the lens (sky mode)
         is not deflected at all."""
-        return build_deflector(self.mass_model_name, self.einstein_radius if self.lensing else 0.0,
-                               self.mass_q, self.mass_angle,
+        composite = None
+        if self.mass_model_name == "stars_and_halo" and self.stellar_kappa_e > 0:
+            composite = dict(stellar_kappa_e=self.stellar_kappa_e, stellar_r_e=self.lens_half_light_radius,
+                             stellar_n=self.lens_sersic_index, stellar_q=self.lens_q, stellar_angle=self.lens_angle,
+                             halo_kappa_s=self.halo_kappa_s, halo_scale_radius=self.halo_scale_radius,
+                             halo_ellipticity=self.halo_ellipticity)
+        return build_deflector(self.mass_model_name, self.einstein_radius, self.mass_q, self.mass_angle,
                                self.mass_slope, self.mass_core_radius, self.subhalos, self.multipoles,
-                               self.shear_gamma, self.shear_angle)
+                               self.shear_gamma, self.shear_angle, composite=composite, lensing=self.lensing)
 
     def band(self, name: str) -> BandConditions:
         for b in self.bands:
@@ -191,12 +205,19 @@ class System:
 
 def build_deflector(model: str, einstein_radius: float, q: float, angle: float, slope: float,
                     core_radius: float, subhalos: tuple, multipoles: tuple, shear_gamma: float,
-                    shear_angle: float) -> MassModel:
-    """The mass model of a system from its truth values (see :meth:`System.mass_model`)."""
+                    shear_angle: float, composite: dict | None = None, lensing: bool = True) -> MassModel:
+    """The mass model of a system from its truth values (see :meth:`System.mass_model`).  For
+    ``stars_and_halo``, ``composite`` holds the stellar Sersic and NFW parameters."""
     theta_e = einstein_radius
-    if theta_e <= 0:
+    if not lensing or (theta_e <= 0 and composite is None):
         return ConvergenceSheet(kappa=0.0)
-    if model == "power_law":
+    if model == "stars_and_halo":
+        c = composite
+        lens = (SersicMass(kappa_e=c["stellar_kappa_e"], half_light_radius=c["stellar_r_e"],
+                           sersic_index=c["stellar_n"], q=c["stellar_q"], angle=c["stellar_angle"])
+                + NFW(kappa_s=c["halo_kappa_s"], scale_radius=c["halo_scale_radius"],
+                      ellipticity=c["halo_ellipticity"], angle=angle))
+    elif model == "power_law":
         lens = PowerLaw(einstein_radius=theta_e, slope=slope, q=q, angle=angle)
     elif model == "cored_isothermal":
         lens = CoredIsothermal(einstein_radius=theta_e, core_radius=core_radius, q=q, angle=angle)
@@ -205,7 +226,7 @@ def build_deflector(model: str, einstein_radius: float, q: float, angle: float, 
     for sub in subhalos:
         lens = lens + TruncatedSIS(einstein_radius=sub.einstein_radius, truncation_radius=sub.truncation_radius,
                                    center=(sub.x, sub.y))
-    for order, strength, relative_angle in multipoles:
+    for order, strength, relative_angle in (multipoles if theta_e > 0 else ()):
         lens = lens + Multipole(order=order, strength=strength, einstein_radius=theta_e, angle=angle + relative_angle)
     if shear_gamma > 0:
         lens = lens + ExternalShear(gamma=shear_gamma, angle=shear_angle)
@@ -261,7 +282,8 @@ class _GeometryQueue:
             weighted = behind & ((u <= ratio**2) if sampler.deflectors is not None else True)
             kept = weighted
             selection = sampler.recipe.selection
-            if selection.einstein_radius is not None and selection.enforce:
+            if (selection.einstein_radius is not None and selection.enforce
+                    and sampler.recipe.lens.mass.model != "stars_and_halo"):  # its theta_E is solved later
                 theta = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * ratio * ARCSEC_PER_RADIAN
                 kept = weighted & (theta >= selection.einstein_radius[0]) & (theta <= selection.einstein_radius[1])
             self._batch = (sigma, z_l, z_s, m, behind, weighted, kept)
@@ -435,6 +457,28 @@ class PopulationSampler:
             behind = z_source > z_lens
             ratio = float(self.distances.ratio(z_lens, z_source)) if behind else 0.0
             theta_e = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * ratio * ARCSEC_PER_RADIAN
+            mass_q, mass_angle = v["lens.mass.q"], v["lens.mass.angle"]
+            model = recipe.lens.mass.model
+            composite, composite_truth, light = None, {}, None
+            if model == "stars_and_halo":
+                # the stars follow the light: draw it first; theta_E is then solved for
+                light = self.lens_light_model.draw(sigma, z_lens, mass_q, mass_angle, streams["physics"])
+                theta_e = 0.0
+                if behind:
+                    parts = stars_and_halo(light.luminosity, recipe.lens.light.scaling.mass_to_light,
+                                           light.half_light_radius, v["lens.light.sersic_index"],
+                                           v["lens.mass.halo_mass"], v.get("lens.mass.concentration"),
+                                           z_lens, z_source, self.distances)
+                    theta_e = parts.einstein_radius
+                    composite = dict(stellar_kappa_e=parts.stellar_kappa_e, stellar_r_e=light.half_light_radius,
+                                     stellar_n=v["lens.light.sersic_index"], stellar_q=light.q,
+                                     stellar_angle=light.angle, halo_kappa_s=parts.halo_kappa_s,
+                                     halo_scale_radius=parts.halo_scale_radius,
+                                     halo_ellipticity=v["lens.mass.halo_ellipticity"])
+                    composite_truth = dict(stellar_kappa_e=parts.stellar_kappa_e, halo_mass=v["lens.mass.halo_mass"],
+                                           halo_concentration=parts.halo_concentration,
+                                           halo_kappa_s=parts.halo_kappa_s, halo_scale_radius=parts.halo_scale_radius,
+                                           halo_ellipticity=v["lens.mass.halo_ellipticity"])
             checks = {}
             if selection.einstein_radius is not None:
                 lo, hi = selection.einstein_radius
@@ -442,8 +486,6 @@ class PopulationSampler:
                 if selection.enforce and not checks["einstein_radius"]:
                     tries["einstein_radius"] = tries.get("einstein_radius", 0) + 1
                     continue
-            mass_q, mass_angle = v["lens.mass.q"], v["lens.mass.angle"]
-            model = recipe.lens.mass.model
             deflector = dict(
                 mass_model_name=model, mass_q=mass_q, mass_angle=mass_angle,
                 mass_slope=v["lens.mass.slope"] if model == "power_law" else 2.0,
@@ -454,7 +496,8 @@ class PopulationSampler:
                 shear_gamma=v["lens.shear.gamma"], shear_angle=v["lens.shear.angle"])
             mass = build_deflector(deflector["mass_model_name"], theta_e, mass_q, mass_angle,
                                    deflector["mass_slope"], deflector["mass_core_radius"], deflector["subhalos"],
-                                   deflector["multipoles"], deflector["shear_gamma"], deflector["shear_angle"])
+                                   deflector["multipoles"], deflector["shear_gamma"], deflector["shear_angle"],
+                                   composite=composite)
             placed = self._place(mass, theta_e, v, streams["physics"])
             if placed is None:
                 tries["placement"] = tries.get("placement", 0) + 1
@@ -475,11 +518,12 @@ class PopulationSampler:
         def magnitudes(base: float, prefix: str) -> dict:
             return {b: base + (0.0 if b == ref else v[f"{prefix}.{b}"]) for b in band_names}
 
-        lens_extra = {}
+        lens_extra = dict(composite_truth)
         if self.lens_light_model is not None:
-            light = self.lens_light_model.draw(sigma, z_lens, mass_q, mass_angle, streams["physics"])
+            if light is None:
+                light = self.lens_light_model.draw(sigma, z_lens, mass_q, mass_angle, streams["physics"])
             lens_mags, lens_r_e, lens_q, lens_angle = light.magnitudes, light.half_light_radius, light.q, light.angle
-            lens_extra = dict(lens_absolute_magnitude=light.absolute_magnitude, lens_luminosity=light.luminosity,
+            lens_extra.update(lens_absolute_magnitude=light.absolute_magnitude, lens_luminosity=light.luminosity,
                               lens_stellar_mass=light.stellar_mass)
         else:
             lens_mags = magnitudes(v["lens.light.magnitude"], "lens.light.colors")

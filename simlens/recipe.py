@@ -206,7 +206,7 @@ class FootprintSettings:
     radius: float = number(1.0, low=0, low_open=True, high=180, unit="deg", doc="footprint radius")
 
 
-MASS_MODELS = ("sie", "power_law", "cored_isothermal")
+MASS_MODELS = ("sie", "power_law", "cored_isothermal", "stars_and_halo")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -218,6 +218,12 @@ class MassSettings:
                                  doc="3D density slope (power_law; 2 = isothermal)")
     core_radius: Parameter = parameter(0.05, low=0, low_open=True, unit="arcsec",
                                        doc="core radius (cored_isothermal)")
+    halo_mass: Parameter = parameter(optional=True, low=1e9, high=1e16, unit="M_sun",
+                                     doc="NFW halo M200 (stars_and_halo: Sersic stars following the light + NFW)")
+    concentration: Parameter = parameter(optional=True, low=1, high=50,
+                                         doc="NFW c200 (stars_and_halo; default: Duffy et al. 2008)")
+    halo_ellipticity: Parameter = parameter(0.0, low=0, high=0.25,
+                                            doc="ellipticity of the halo's potential (stars_and_halo; along the mass angle)")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -820,10 +826,24 @@ def _check_consistency(recipe: Recipe) -> None:
         raise RecipeError(origin, "selection.arc_snr_band", f"{sel.arc_snr_band!r} is not a band",
                           ", ".join(repr(n) for n in names))
     mass, defaults = recipe.lens.mass, MassSettings()
-    for key, model in (("slope", "power_law"), ("core_radius", "cored_isothermal")):
+    for key, model in (("slope", "power_law"), ("core_radius", "cored_isothermal"),
+                       ("halo_ellipticity", "stars_and_halo")):
         if mass.model != model and getattr(mass, key) != getattr(defaults, key):
             raise RecipeError(origin, f"lens.mass.{key}", f"applies to model = '{model}' only, "
                               f"not to model = '{mass.model}'", f"remove it, or set model = '{model}'")
+    for key in ("halo_mass", "concentration"):
+        if mass.model != "stars_and_halo" and getattr(mass, key) is not None:
+            raise RecipeError(origin, f"lens.mass.{key}", "applies to model = 'stars_and_halo' only",
+                              "remove it, or set model = 'stars_and_halo'")
+    if mass.model == "stars_and_halo":
+        if mass.halo_mass is None:
+            raise RecipeError(origin, "lens.mass.halo_mass", "is missing for model = 'stars_and_halo'",
+                              "an NFW M200 in M_sun, e.g. { log_uniform = [1e12, 1e13] }")
+        scaling = recipe.lens.light.scaling
+        if scaling is None or scaling.mass_to_light is None:
+            raise RecipeError(origin, "lens.light.scaling.mass_to_light",
+                              "is needed for model = 'stars_and_halo' (the stars' mass follows the light)",
+                              "a [lens.light.scaling] table with mass_to_light")
     subs = recipe.lens.subhalos
     if not subs.mass_min < subs.mass_max:
         raise RecipeError(origin, "lens.subhalos.mass_max", f"{subs.mass_max:g} is not above mass_min {subs.mass_min:g}",

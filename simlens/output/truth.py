@@ -12,7 +12,8 @@ shard, shard_index                   shard file (relative path) and the system's
 ra, dec                    deg       lens centre (= cutout centre, CRVAL of the WCS)
 z_lens, z_source                     redshifts
 velocity_dispersion        km / s    lens stellar velocity dispersion
-einstein_radius            arcsec    SIS/SIE Einstein radius from sigma and the distances
+einstein_radius            arcsec    SIS/SIE Einstein radius from sigma and the distances;
+                                     stars_and_halo: solved (mean convergence 1 within it)
 mass_model                           sie, power_law or cored_isothermal
 mass_q, mass_angle         -, deg    mass axis ratio and major-axis angle (CCW from +x)
 mass_slope                           3D density slope (2 unless power_law)
@@ -56,6 +57,10 @@ inner_caustic_area         arcsec2   area inside the radial caustic or the cut
 candidate                            which draw of this system passed the selection (0: first)
 passes_<cut>                         the system passes that [selection] cut
 selected                             it passes all of them
+stellar_kappa_e                      stars_and_halo: the stars' convergence at R_e (0: other models)
+halo_mass, halo_concentration        stars_and_halo: NFW M200 (M_sun) and c200 (nan: other models)
+halo_kappa_s, halo_scale_radius      stars_and_halo: NFW kappa_s and r_s (arcsec)
+halo_ellipticity                     stars_and_halo: ellipticity of the halo's potential
 system_class                         lens (source centre multiply imaged), missed_caustics,
                                      source_in_front, or a negative class (simlens.negatives)
 is_lens                              system_class is lens and the system is selected: the label
@@ -88,7 +93,7 @@ TRUTH_UNITS = {
     "source_half_light_radius": u.arcsec, "source_angle": u.deg, "source_x": u.arcsec, "source_y": u.arcsec,
     "max_time_delay": u.day, "lens_absolute_magnitude": u.mag, "lens_luminosity": u.L_sun,
     "lens_stellar_mass": u.M_sun, "source_absolute_magnitude": u.mag, "region_radius": u.arcsec,
-    "region_area": u.arcsec**2, "tangential_caustic_area": u.arcsec**2, "inner_caustic_area": u.arcsec**2,
+    "region_area": u.arcsec**2, "halo_mass": u.M_sun, "halo_scale_radius": u.arcsec, "tangential_caustic_area": u.arcsec**2, "inner_caustic_area": u.arcsec**2,
 }
 
 
@@ -133,6 +138,9 @@ def truth_row(rendered: RenderedSystem, file: str, shard: str = "", shard_index:
     flags = flags or {}
     row.update({f"passes_{name}": bool(flags.get(name, True)) for name in cut_names})
     row["selected"] = all(bool(flags.get(name, True)) for name in cut_names)
+    row.update({"stellar_kappa_e": s.stellar_kappa_e, "halo_mass": s.halo_mass,
+                "halo_concentration": s.halo_concentration, "halo_kappa_s": s.halo_kappa_s,
+                "halo_scale_radius": s.halo_scale_radius, "halo_ellipticity": s.halo_ellipticity})
     row["system_class"] = s.system_class
     row["is_lens"] = s.system_class == "lens" and row["selected"]
     row["n_lookalike_features"] = len(s.extra_light)
