@@ -50,7 +50,7 @@ def select_and_render(sampler: PopulationSampler, system_id: int) -> tuple[Rende
         results = image_cut_results(rendered, recipe)
         failed = next((name for name, ok in results.items() if not ok), None)
         # negatives are labelled non-lenses: the cuts flag them but never redraw them
-        if failed is None or not sel.enforce or system.system_class not in ("lens",):
+        if failed is None or not sel.enforce or system.system_class != "lens":
             flags = dict(system.selection_flags)
             flags.update(results)
             return rendered, {"rejections": rejections, "flags": flags}

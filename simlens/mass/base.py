@@ -121,6 +121,27 @@ class CompositeMass(MassModel):
         return tuple(total)
 
 
+class HomogeneousIsothermal:
+    """Mixin for deflectors whose potential is homogeneous of degree one about ``center``
+    (``psi = r F(phi)``: the SIE, isothermal multipoles).  Their Hessian has a zero eigenvalue along
+    the radius and ``F + F'' = 2 kappa r`` along the tangent ``t``: ``H = 2 kappa t t^T``, i.e.
+    ``psi_xx = 2 kappa sin^2 phi``, ``psi_xy = -2 kappa sin phi cos phi``, ``psi_yy = 2 kappa cos^2 phi``
+    (for the SIE: its shear equals its convergence; Kormann, Schneider & Bartelmann 1994).  The flag
+    lets :mod:`simlens.caustics` take its closed-form route."""
+
+    homogeneous_isothermal = True
+    central_floor = 1e-9  # arcsec
+
+    def deflection_and_hessian(self, x, y, step: float = 0.0):
+        """Analytic (see the class docstring); ``step`` is ignored."""
+        ax, ay = self.deflection(x, y)
+        dx = np.asarray(x, dtype=float) - self.center[0]
+        dy = np.asarray(y, dtype=float) - self.center[1]
+        r2 = np.maximum(dx * dx + dy * dy, self.central_floor**2)
+        two_kappa = 2.0 * self.convergence(x, y)
+        return ax, ay, two_kappa * dy * dy / r2, -two_kappa * dx * dy / r2, two_kappa * dx * dx / r2
+
+
 def _components(model: MassModel) -> tuple:
     return model.components if isinstance(model, CompositeMass) else (model,)
 

@@ -6,7 +6,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .base import MassModel, check_axis_ratio, check_center, check_positive, rotate_back, rotate_into_frame
+from .base import HomogeneousIsothermal, MassModel, check_axis_ratio, check_center, check_positive, rotate_back, rotate_into_frame
 
 # Radii below this (arcsec) are raised to it, so the centre gives finite values without warnings.
 # 1e-9 arcsec is far below any pixel; the singular profiles are unphysical there anyway.
@@ -14,7 +14,7 @@ CENTRAL_FLOOR = 1e-9
 
 
 @dataclass(frozen=True)
-class SIS(MassModel):
+class SIS(HomogeneousIsothermal, MassModel):
     """Singular isothermal sphere.
 
     ``kappa = einstein_radius / (2 r)``, ``alpha = einstein_radius * (x, y) / r``,
@@ -55,7 +55,7 @@ class SIS(MassModel):
 
 
 @dataclass(frozen=True)
-class SIE(MassModel):
+class SIE(HomogeneousIsothermal, MassModel):
     """Singular isothermal ellipsoid.
 
     In the frame rotated by ``angle`` (major axis along x'):
@@ -121,20 +121,6 @@ class SIE(MassModel):
         q = self.q
         return 0.5 * self.einstein_radius / np.maximum(np.sqrt(q * xp * xp + yp * yp / q), CENTRAL_FLOOR)
 
-    homogeneous_isothermal = True  # psi = r F(phi): see simlens.caustics
-
-    def deflection_and_hessian(self, x, y, step: float = 0.0):
-        """Analytic.  The potential is homogeneous of degree one (``psi = r F(phi)``), so its
-        Hessian has a zero eigenvalue along the radius and the other, ``2 kappa``, tangential:
-        ``psi_xx = 2 kappa sin^2 phi``, ``psi_yy = 2 kappa cos^2 phi``,
-        ``psi_xy = -2 kappa sin phi cos phi`` (the SIE's shear equals its convergence; Kormann,
-        Schneider & Bartelmann 1994)."""
-        ax, ay = self.deflection(x, y)
-        dx = np.asarray(x, dtype=float) - self.center[0]
-        dy = np.asarray(y, dtype=float) - self.center[1]
-        r2 = np.maximum(dx * dx + dy * dy, CENTRAL_FLOOR**2)
-        two_kappa = 2.0 * self.convergence(x, y)
-        return ax, ay, two_kappa * dy * dy / r2, -two_kappa * dx * dy / r2, two_kappa * dx * dx / r2
 
     def potential(self, x, y):
         ax, ay = self.deflection(x, y)

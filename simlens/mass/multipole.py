@@ -6,13 +6,13 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .base import MassModel, check_center
+from .base import HomogeneousIsothermal, MassModel, check_center
 
 CENTRAL_FLOOR = 1e-9  # arcsec
 
 
 @dataclass(frozen=True)
-class Multipole(MassModel):
+class Multipole(HomogeneousIsothermal, MassModel):
     """An isothermal multipole of order ``m``:
 
         kappa = (strength * einstein_radius / (2 r)) * cos(m (phi - angle))
@@ -65,17 +65,6 @@ class Multipole(MassModel):
         c, s = np.cos(phi), np.sin(phi)
         return c * f - s * df, s * f + c * df
 
-    homogeneous_isothermal = True  # psi = r F(phi): see simlens.caustics
-
-    def deflection_and_hessian(self, x, y, step: float = 0.0):
-        """Analytic: a potential ``r F(phi)`` has the Hessian ``(F + F'')/r t t^T`` along the
-        tangential unit vector ``t``, and ``F + F'' = 2 kappa r`` here."""
-        ax, ay = self.deflection(x, y)
-        dx = np.asarray(x, dtype=float) - self.center[0]
-        dy = np.asarray(y, dtype=float) - self.center[1]
-        r2 = np.maximum(dx * dx + dy * dy, CENTRAL_FLOOR**2)
-        two_kappa = 2.0 * self.convergence(x, y)
-        return ax, ay, two_kappa * dy * dy / r2, -two_kappa * dx * dy / r2, two_kappa * dx * dx / r2
 
     def convergence(self, x, y):
         r, phi = self._polar(x, y)
