@@ -576,7 +576,7 @@ class PopulationSampler:
             fwhm = next(b.psf_fwhm for b in bands if b.name == ref)
             checks["resolvable"] = theta_e**2 > source_r_e**2 + (0.5 * fwhm) ** 2
             if selection.enforce and not checks["resolvable"]:
-                return None, "resolvable"
+                return None, _merge_counts(geometry_rejections, {"resolvable": 1})
 
         # -- sky position and noise seeds (after the cuts, from their own streams) ---------------
         fp = recipe.footprint

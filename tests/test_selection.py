@@ -172,3 +172,16 @@ def test_source_colours_come_from_the_template_at_the_source_redshift():
         ab_magnitude_offset(t, load_filter("LSST_r"), system.z_source)
     disk = system.source_disk_magnitudes
     assert disk["g"] - disk["r"] == pytest.approx(colour, abs=1e-3)
+
+
+def test_resolvable_cut_counts_its_rejections():
+    # theta_E^2 > r_source^2 + (FWHM/2)^2 (common practice of survey forecasts, from memory)
+    recipe = parse_recipe(with_selection("[selection]\nresolvable = true\n"))
+    sampler = PopulationSampler(recipe)
+    for i in range(20):
+        s = sampler.draw(i)
+        fwhm = s.band("r").psf_fwhm
+        assert s.einstein_radius**2 > s.source_half_light_radius**2 + (0.5 * fwhm) ** 2
+        assert s.selection_flags["resolvable"]
+    rejected = sum(sampler.draw(i).rejections.get("resolvable", 0) for i in range(20))
+    assert rejected > 0
