@@ -50,6 +50,10 @@ class DistanceTable:
     def _comoving(self, z):
         return np.interp(z, self._z, self._comoving_table)
 
+    def redshift_at_comoving(self, distance):
+        """The redshift at line-of-sight comoving distance ``distance`` (Mpc): the inverse of D_C."""
+        return np.interp(distance, self._comoving_table, self._z)
+
     def _efunc(self, z):
         return np.interp(z, self._z, self._efunc_table)
 

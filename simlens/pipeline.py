@@ -94,6 +94,8 @@ def run(recipe: Recipe, out: Path | str | None = None, *, overwrite: bool = Fals
                                           keep=("n_images", "einstein_radius", reference))
         write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i], "SUBHALOS"), len(plan), out, "subhalos")
         write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i], "IMAGE_TRUTH"), len(plan), out, "images")
+        write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i], "LINE_OF_SIGHT"), len(plan), out,
+                        "line_of_sight")
     except OSError as exc:
         raise _write_error(out, exc) from None
     seconds = time.perf_counter() - t_start
@@ -103,9 +105,11 @@ def run(recipe: Recipe, out: Path | str | None = None, *, overwrite: bool = Fals
         "grid_cells": sampler.n_grid_cells, "cosmology": repr(sampler.cosmology),
         "files": {"shards": "shards/shard_*.fits", "truth": ["truth.fits", "truth.ecsv"],
                   "subhalos": ["subhalos.fits", "subhalos.ecsv"], "images": ["images.fits", "images.ecsv"],
+                  "line_of_sight": ["line_of_sight.fits", "line_of_sight.ecsv"],
                   "cutouts": "cutouts/system_*.fits" if recipe.output.per_system_files else None},
         "truth": {name: sha256_of(out / name) for name in ("truth.fits", "truth.ecsv", "subhalos.fits", "subhalos.ecsv",
-                                                         "images.fits", "images.ecsv")},
+                                                         "images.fits", "images.ecsv", "line_of_sight.fits",
+                                                         "line_of_sight.ecsv")},
         "selection": attrition,
         "seconds_last_session": round(seconds, 3),
         "engine": resolve_engine(engine, workers, scheduler), "workers": workers,

@@ -26,14 +26,14 @@ from .errors import SimlensError
 from .galaxies import LensLightModel, PointSourceColours, SourceModel
 from .light import CompositeLight, LightProfile, Sersic
 from .negatives import lookalike_light
-from .mass import (NFW, SIE, ConvergenceSheet, CoredIsothermal, ExternalShear, MassModel, Multipole, PowerLaw,
+from .mass import (NFW, SIE, SIS, ConvergenceSheet, CoredIsothermal, ExternalShear, MassModel, Multipole, PowerLaw,
                    SersicMass, TruncatedSIS)
 from .recipe import Recipe
 from .sampling import Fixed, Grid, grid_cell, system_streams
 from .survey import BandConditions
 from .velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulation
 
-__all__ = ["System", "Clump", "Subhalo", "PopulationSampler", "SelectionExhausted", "offset_on_sky"]
+__all__ = ["System", "Clump", "Subhalo", "LineOfSightGalaxy", "PopulationSampler", "SelectionExhausted", "offset_on_sky"]
 
 # Named random streams of a system; append new names at the end to keep old draws unchanged.
 # "physics" feeds, in code order, the deflector and source geometry, subhalos, placement, lens light,
@@ -64,6 +64,18 @@ class Subhalo:
     mass: float
     einstein_radius: float
     truncation_radius: float
+
+
+@dataclass(frozen=True)
+class LineOfSightGalaxy:
+    """An SIS deflector in its own lens plane: redshift, velocity dispersion (km/s), position
+    (arcsec, in its plane) and Einstein radius for the system's source (arcsec)."""
+
+    z: float
+    velocity_dispersion: float
+    x: float
+    y: float
+    einstein_radius: float
 
 
 @dataclass(frozen=True)
@@ -127,6 +139,9 @@ class System:
     halo_kappa_s: float = 0.0
     halo_scale_radius: float = math.nan  # arcsec
     halo_ellipticity: float = 0.0
+    # -- line of sight (multi-plane) --
+    line_of_sight: tuple = ()  # of LineOfSightGalaxy
+    cosmology: object = None  # the run's astropy cosmology, for the multi-plane distances
     # -- negatives (simlens.negatives) --
     system_class: str = "lens"  # lens, missed_caustics, source_in_front, or a negative class
     lensing: bool = True  # False: nothing is deflected (negatives)
@@ -144,9 +159,12 @@ class System:
                              stellar_n=self.lens_sersic_index, stellar_q=self.lens_q, stellar_angle=self.lens_angle,
                              halo_kappa_s=self.halo_kappa_s, halo_scale_radius=self.halo_scale_radius,
                              halo_ellipticity=self.halo_ellipticity)
-        return build_deflector(self.mass_model_name, self.einstein_radius, self.mass_q, self.mass_angle,
+        main = build_deflector(self.mass_model_name, self.einstein_radius, self.mass_q, self.mass_angle,
                                self.mass_slope, self.mass_core_radius, self.subhalos, self.multipoles,
                                self.shear_gamma, self.shear_angle, composite=composite, lensing=self.lensing)
+        if not self.line_of_sight or not self.lensing:
+            return main
+        return multi_plane(main, self.z_lens, self.line_of_sight, self.z_source, self.cosmology)
 
     def band(self, name: str) -> BandConditions:
         for b in self.bands:
@@ -231,6 +249,18 @@ def build_deflector(model: str, einstein_radius: float, q: float, angle: float, 
     if shear_gamma > 0:
         lens = lens + ExternalShear(gamma=shear_gamma, angle=shear_angle)
     return lens
+
+
+def multi_plane(main: MassModel, z_lens: float, line_of_sight: tuple, z_source: float, cosmology) -> MassModel:
+    """The main deflector and the line-of-sight SIS galaxies as a multi-plane lens (planes in
+    redshift order; every plane's model normalised for the source, as simlens.multiplane expects)."""
+    from .multiplane import MultiPlaneLens
+
+    planes = [(z_lens, main)] + [(g.z, SIS(einstein_radius=g.einstein_radius, center=(g.x, g.y)))
+                                 for g in line_of_sight]
+    planes.sort(key=lambda p: p[0])
+    return MultiPlaneLens(planes=tuple(m for _, m in planes), redshifts=tuple(z for z, _ in planes),
+                          z_source=z_source, cosmology=cosmology)
 
 
 def offset_on_sky(ra0: float, dec0: float, position_angle: float, separation: float) -> tuple[float, float]:
@@ -417,6 +447,26 @@ class PopulationSampler:
         return tuple(_subhalo(float(m), float(r * math.cos(p)), float(r * math.sin(p)), theta_e, sigma_cr_arcsec2)
                      for m, r, p in zip(masses, radii, phi))
 
+    def _draw_line_of_sight(self, v: dict, z_lens: float, z_source: float, rng) -> tuple:
+        """SIS galaxies uniform in comoving volume between redshift_min and the source, uniform in
+        a disc around the lens; sigma from the recipe's distribution, each its own draw."""
+        n = int(round(v["lens.line_of_sight.count"]))
+        settings = self.recipe.lens.line_of_sight
+        if n == 0 or settings.redshift_min >= z_source:
+            return ()
+        d_lo, d_hi = (float(self.distances.comoving(z)) for z in (settings.redshift_min, z_source))
+        galaxies = []
+        for _ in range(n):
+            d = (d_lo**3 + rng.uniform() * (d_hi**3 - d_lo**3)) ** (1.0 / 3.0)
+            z = float(self.distances.redshift_at_comoving(d))
+            sigma = float(settings.velocity_dispersion.from_uniform(rng.uniform()))
+            x, y = _uniform_in_disc(settings.radius, rng)
+            if not (z < z_source and z != z_lens):
+                continue
+            theta = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * float(self.distances.ratio(z, z_source)) * ARCSEC_PER_RADIAN
+            galaxies.append(LineOfSightGalaxy(z=z, velocity_dispersion=sigma, x=x, y=y, einstein_radius=theta))
+        return tuple(galaxies)
+
     def draw(self, system_id: int, first_candidate: int = 0) -> System:
         """The first candidate from ``first_candidate`` on that passes the cuts needing no images."""
         if system_id < 0:
@@ -498,6 +548,9 @@ class PopulationSampler:
                                    deflector["mass_slope"], deflector["mass_core_radius"], deflector["subhalos"],
                                    deflector["multipoles"], deflector["shear_gamma"], deflector["shear_angle"],
                                    composite=composite)
+            line_of_sight = self._draw_line_of_sight(v, z_lens, z_source, streams["physics"]) if behind else ()
+            if line_of_sight and theta_e > 0:
+                mass = multi_plane(mass, z_lens, line_of_sight, z_source, self.cosmology)
             placed = self._place(mass, theta_e, v, streams["physics"])
             if placed is None:
                 tries["placement"] = tries.get("placement", 0) + 1
@@ -588,6 +641,7 @@ class PopulationSampler:
         system = System(
             system_id=int(system_id), grid_cell=cell, ra=ra, dec=dec, z_lens=z_lens, z_source=z_source,
             velocity_dispersion=sigma, einstein_radius=theta_e, **deflector,
+            line_of_sight=line_of_sight, cosmology=self.cosmology if line_of_sight else None,
             lens_magnitudes=lens_mags, lens_half_light_radius=lens_r_e,
             lens_sersic_index=v["lens.light.sersic_index"], lens_q=lens_q, lens_angle=lens_angle,
             source_disk_magnitudes=disk_mags, source_half_light_radius=source_r_e,

@@ -51,6 +51,7 @@ __all__ = [
     "ClumpSettings",
     "OutputSettings",
     "SelectionSettings",
+    "LineOfSightSettings",
     "NegativeSettings",
     "DeflectorPopulationSettings",
     "LensLightScalingSettings",
@@ -248,6 +249,17 @@ class SubhaloSettings:
 
 
 @dataclass(frozen=True, kw_only=True)
+class LineOfSightSettings:
+    count: Parameter = parameter(0, low=0, high=30, integer=True,
+                                 doc="SIS galaxies along the line of sight, each in its own lens plane")
+    velocity_dispersion: Parameter = parameter(100.0, low=10, high=500, unit="km/s",
+                                               doc="their velocity dispersions (drawn for each)")
+    radius: float = number(8.0, low=0, low_open=True, unit="arcsec",
+                           doc="they fall uniformly in a disc of this radius around the lens")
+    redshift_min: float = number(0.02, low=0, low_open=True, doc="nearest redshift; the farthest is the source's")
+
+
+@dataclass(frozen=True, kw_only=True)
 class ShearSettings:
     gamma: Parameter = parameter(0.0, low=0, high=0.5, doc="external shear strength")
     angle: Parameter = parameter(0.0, unit="deg", doc="shear angle, CCW from +x")
@@ -312,6 +324,8 @@ class LensSettings:
     mass: MassSettings = table(MassSettings, doc="mass profile")
     multipoles: MultipoleSettings = table(MultipoleSettings, doc="multipole perturbations of the mass")
     subhalos: SubhaloSettings = table(SubhaloSettings, doc="truncated-SIS subhalos around the Einstein ring")
+    line_of_sight: LineOfSightSettings = table(LineOfSightSettings,
+                                               doc="galaxies at other redshifts (multi-plane lensing)")
     shear: ShearSettings = table(ShearSettings, doc="external shear")
     light: LensLightSettings = table(LensLightSettings, doc="lens light (Sersic)")
 
@@ -844,6 +858,10 @@ def _check_consistency(recipe: Recipe) -> None:
             raise RecipeError(origin, "lens.light.scaling.mass_to_light",
                               "is needed for model = 'stars_and_halo' (the stars' mass follows the light)",
                               "a [lens.light.scaling] table with mass_to_light")
+    if isinstance(recipe.lens.line_of_sight.velocity_dispersion, Grid):
+        raise RecipeError(origin, "lens.line_of_sight.velocity_dispersion",
+                          "is drawn for each line-of-sight galaxy, so a grid does not fit",
+                          "a number or a distribution")
     subs = recipe.lens.subhalos
     if not subs.mass_min < subs.mass_max:
         raise RecipeError(origin, "lens.subhalos.mass_max", f"{subs.mass_max:g} is not above mass_min {subs.mass_min:g}",

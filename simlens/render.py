@@ -94,8 +94,12 @@ def render_system(system: System, survey: SurveySettings, reference_band: str) -
     windows = image_search_windows(system.einstein_radius, system.mass_q,
                                    math.hypot(system.source_x, system.source_y), grid)
     images = find_images(mass, system.source_x, system.source_y, windows)
-    delays = (time_delays(mass, images, system.source_x, system.source_y, system.days_per_arcsec2)
-              if math.isfinite(system.days_per_arcsec2) else np.zeros(len(images)))
+    if system.line_of_sight:  # multi-plane: no single Fermat potential (not computed)
+        delays = np.full(len(images), math.nan)
+    elif math.isfinite(system.days_per_arcsec2):
+        delays = time_delays(mass, images, system.source_x, system.source_y, system.days_per_arcsec2)
+    else:
+        delays = np.zeros(len(images))
     t_images = time.perf_counter()
     timings["image_finding"] = t_images - t1
 

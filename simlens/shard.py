@@ -19,7 +19,8 @@ from astropy.table import Table
 from .output.checksums import sha256_of
 from .output.cutout_fits import write_cutout
 from .output.shard_fits import write_shard
-from .output.truth import image_rows, image_table, subhalo_rows, subhalo_table, truth_row, truth_table
+from .output.truth import (image_rows, image_table, line_of_sight_rows, line_of_sight_table, subhalo_rows,
+                           subhalo_table, truth_row, truth_table)
 from .population import PopulationSampler
 from .recipe import Recipe
 from .selection import merge_attrition, select_and_render
@@ -77,7 +78,7 @@ def render_shard(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
         cubes["SOURCE"] = np.zeros(shape, np.float32)
         cubes["LENS"] = np.zeros(shape, np.float32)
     psf_cube = None
-    rows, subhalos, images, files = [], [], [], {}
+    rows, subhalos, images, los, files = [], [], [], [], {}
     attrition: dict = {}
     shard_file = shard_path(recipe, spec.index)
     timings = {"sampling": 0.0, "ray_tracing": 0.0, "image_finding": 0.0, "adaptive_refinement": 0.0,
@@ -109,6 +110,7 @@ def render_shard(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
                               cut_names=recipe.selection.cut_names))
         subhalos += subhalo_rows(rendered)
         images += image_rows(rendered)
+        los += line_of_sight_rows(rendered)
         timings["writing"] += time.perf_counter() - t1
     t2 = time.perf_counter()
     cubes["PSF"] = psf_cube
@@ -119,7 +121,8 @@ def render_shard(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
               "PIXSCALE": (survey.pixel_scale, "[arcsec/pixel] pixel scale"),
               "BUNIT": ("adu", "units of IMAGES, SOURCE, LENS"),
               "MASKTHR": (output.mask_threshold, "MASK: source > MASKTHR x pixel noise sigma")}
-    write_shard(run_folder / shard_file, cubes, truth_table(rows), header, extra_tables={"SUBHALOS": subhalo_table(subhalos), "IMAGE_TRUTH": image_table(images)})
+    write_shard(run_folder / shard_file, cubes, truth_table(rows), header, extra_tables={"SUBHALOS": subhalo_table(subhalos), "IMAGE_TRUTH": image_table(images),
+                                           "LINE_OF_SIGHT": line_of_sight_table(los)})
     checksums = {shard_file: sha256_of(run_folder / shard_file)}
     for relative in files:
         checksums[relative] = sha256_of(run_folder / relative)

@@ -22,6 +22,8 @@ multipole_m{3,4}_strength            multipole amplitudes a_3, a_4 (0: none)
 multipole_m{3,4}_angle     deg       multipole angles relative to the mass major axis
 n_subhalos                           subhalos of this lens (each a row of subhalos.ecsv)
 subhalo_mass_total         M_sun     their total mass
+n_line_of_sight                      SIS galaxies in other lens planes (rows of line_of_sight.ecsv);
+                                     with any, max_time_delay is nan (multi-plane)
 shear_gamma, shear_angle   -, deg    external shear
 lens_mag_<band>            mag       lens light, AB
 lens_half_light_radius     arcsec    circularised R_e of the lens light
@@ -84,7 +86,8 @@ from astropy.table import Table
 
 from ..render import RenderedSystem
 
-__all__ = ["truth_row", "truth_table", "subhalo_rows", "subhalo_table", "image_rows", "image_table", "TRUTH_UNITS"]
+__all__ = ["truth_row", "truth_table", "subhalo_rows", "subhalo_table", "image_rows", "image_table",
+           "line_of_sight_rows", "line_of_sight_table", "TRUTH_UNITS"]
 
 TRUTH_UNITS = {
     "ra": u.deg, "dec": u.deg, "velocity_dispersion": u.km / u.s, "einstein_radius": u.arcsec,
@@ -112,6 +115,7 @@ def truth_row(rendered: RenderedSystem, file: str, shard: str = "", shard_index:
         "multipole_m4_strength": next((a for m, a, _ in s.multipoles if m == 4), 0.0),
         "multipole_m4_angle": next((t for m, _, t in s.multipoles if m == 4), 0.0),
         "n_subhalos": len(s.subhalos), "subhalo_mass_total": float(sum(h.mass for h in s.subhalos)),
+        "n_line_of_sight": len(s.line_of_sight),
         "shear_gamma": s.shear_gamma, "shear_angle": s.shear_angle,
     }
     names = [b.name for b in s.bands]
@@ -194,9 +198,12 @@ IMAGE_UNITS = {"x": u.arcsec, "y": u.arcsec, "time_delay": u.day}
 def image_rows(rendered: RenderedSystem) -> list[dict]:
     """One row per image of the source centre: position (arcsec from the lens centre, image plane),
     signed magnification, parity (+1 minimum or maximum, -1 saddle), arrival order (0 first) and
-    time delay after the first image (days)."""
+    time delay after the first image (days); with line-of-sight planes the delays are not computed
+    (NaN, arrival -1)."""
     im, delays = rendered.images, rendered.time_delays
     order = np.argsort(np.argsort(delays, kind="stable"), kind="stable") if len(im) else np.empty(0, int)
+    if len(im) and not np.all(np.isfinite(delays)):  # multi-plane systems: delays not computed
+        order = np.full(len(im), -1)
     return [{"system_id": rendered.system.system_id, "image": k, "x": float(im.x[k]), "y": float(im.y[k]),
              "magnification": float(im.magnification[k]), "parity": int(np.sign(im.magnification[k])),
              "arrival": int(order[k]), "time_delay": float(delays[k])} for k in range(len(im))]
@@ -209,5 +216,26 @@ def image_table(rows: Sequence[dict]) -> Table:
     else:
         table = Table(names=IMAGE_COLUMNS, dtype=(np.int64, np.int64, float, float, float, np.int64, np.int64, float))
     for name, unit in IMAGE_UNITS.items():
+        table[name].unit = unit
+    return table
+
+
+LOS_COLUMNS = ("system_id", "z", "velocity_dispersion", "x", "y", "einstein_radius")
+LOS_UNITS = {"velocity_dispersion": u.km / u.s, "x": u.arcsec, "y": u.arcsec, "einstein_radius": u.arcsec}
+
+
+def line_of_sight_rows(rendered: RenderedSystem) -> list[dict]:
+    return [{"system_id": rendered.system.system_id, "z": g.z, "velocity_dispersion": g.velocity_dispersion,
+             "x": g.x, "y": g.y, "einstein_radius": g.einstein_radius} for g in rendered.system.line_of_sight]
+
+
+def line_of_sight_table(rows: Sequence[dict]) -> Table:
+    """Line-of-sight SIS galaxies keyed by system_id (position in their own plane, arcsec; Einstein
+    radius for the system's source)."""
+    if rows:
+        table = Table(rows=list(rows), names=LOS_COLUMNS)
+    else:
+        table = Table(names=LOS_COLUMNS, dtype=(np.int64,) + (float,) * 5)
+    for name, unit in LOS_UNITS.items():
         table[name].unit = unit
     return table
