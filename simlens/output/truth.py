@@ -166,15 +166,17 @@ def subhalo_rows(rendered: RenderedSystem) -> list[dict]:
             for h in rendered.system.subhalos]
 
 
-def subhalo_table(rows: Sequence[dict]) -> Table:
-    """Subhalos keyed by system_id (positions in the image plane, arcsec from the lens centre)."""
-    if rows:
-        table = Table(rows=list(rows), names=SUBHALO_COLUMNS)
-    else:
-        table = Table(names=SUBHALO_COLUMNS, dtype=(np.int64,) + (float,) * 5)
-    for name, unit in SUBHALO_UNITS.items():
+def _keyed_table(rows: Sequence[dict], names: tuple, units: dict, dtype: tuple) -> Table:
+    """A table of per-system rows (keyed by system_id), with its columns even when empty."""
+    table = Table(rows=list(rows), names=names) if rows else Table(names=names, dtype=dtype)
+    for name, unit in units.items():
         table[name].unit = unit
     return table
+
+
+def subhalo_table(rows: Sequence[dict]) -> Table:
+    """Subhalos keyed by system_id (positions in the image plane, arcsec from the lens centre)."""
+    return _keyed_table(rows, SUBHALO_COLUMNS, SUBHALO_UNITS, (np.int64,) + (float,) * 5)
 
 
 def truth_table(rows: Sequence[dict]) -> Table:
@@ -211,13 +213,8 @@ def image_rows(rendered: RenderedSystem) -> list[dict]:
 
 def image_table(rows: Sequence[dict]) -> Table:
     """Images keyed by system_id (see :func:`image_rows`)."""
-    if rows:
-        table = Table(rows=list(rows), names=IMAGE_COLUMNS)
-    else:
-        table = Table(names=IMAGE_COLUMNS, dtype=(np.int64, np.int64, float, float, float, np.int64, np.int64, float))
-    for name, unit in IMAGE_UNITS.items():
-        table[name].unit = unit
-    return table
+    return _keyed_table(rows, IMAGE_COLUMNS, IMAGE_UNITS,
+                        (np.int64, np.int64, float, float, float, np.int64, np.int64, float))
 
 
 LOS_COLUMNS = ("system_id", "z", "velocity_dispersion", "x", "y", "einstein_radius")
@@ -232,10 +229,4 @@ def line_of_sight_rows(rendered: RenderedSystem) -> list[dict]:
 def line_of_sight_table(rows: Sequence[dict]) -> Table:
     """Line-of-sight SIS galaxies keyed by system_id (position in their own plane, arcsec; Einstein
     radius for the system's source)."""
-    if rows:
-        table = Table(rows=list(rows), names=LOS_COLUMNS)
-    else:
-        table = Table(names=LOS_COLUMNS, dtype=(np.int64,) + (float,) * 5)
-    for name, unit in LOS_UNITS.items():
-        table[name].unit = unit
-    return table
+    return _keyed_table(rows, LOS_COLUMNS, LOS_UNITS, (np.int64,) + (float,) * 5)
