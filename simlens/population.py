@@ -33,7 +33,7 @@ from .sampling import Fixed, Grid, grid_cell, system_streams
 from .survey import BandConditions
 from .velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulation
 
-__all__ = ["System", "Clump", "Subhalo", "LineOfSightGalaxy", "PopulationSampler", "SelectionExhausted", "offset_on_sky"]
+__all__ = ["System", "Clump", "Subhalo", "LineOfSightGalaxy", "SecondSource", "PopulationSampler", "SelectionExhausted", "offset_on_sky"]
 
 # Named random streams of a system; append new names at the end to keep old draws unchanged.
 # "physics" feeds, in code order, the deflector and source geometry, subhalos, placement, lens light,
@@ -76,6 +76,24 @@ class LineOfSightGalaxy:
     x: float
     y: float
     einstein_radius: float
+
+
+@dataclass(frozen=True)
+class SecondSource:
+    """A source galaxy in a second, farther source plane: Sersic light (magnitudes per band), its
+    centre (arcsec, in its own plane), the factor that rescales the main lens's deflection to its
+    redshift, and the Einstein radius of the first source as an SIS deflector (0: none)."""
+
+    z: float
+    magnitudes: Mapping[str, float]
+    half_light_radius: float
+    sersic_index: float
+    q: float
+    angle: float
+    x: float
+    y: float
+    deflection_factor: float
+    deflector_einstein_radius: float
 
 
 @dataclass(frozen=True)
@@ -139,6 +157,7 @@ class System:
     halo_kappa_s: float = 0.0
     halo_scale_radius: float = math.nan  # arcsec
     halo_ellipticity: float = 0.0
+    second_source: SecondSource | None = None
     # -- line of sight (multi-plane) --
     line_of_sight: tuple = ()  # of LineOfSightGalaxy
     cosmology: object = None  # the run's astropy cosmology, for the multi-plane distances
@@ -153,18 +172,21 @@ class System:
         """The deflector: the main profile (its Einstein radius is that of the SIS with the drawn
         velocity dispersion), multipoles, external shear.  A source in front of the lens (sky mode)
         is not deflected at all."""
-        composite = None
-        if self.mass_model_name == "stars_and_halo" and self.stellar_kappa_e > 0:
-            composite = dict(stellar_kappa_e=self.stellar_kappa_e, stellar_r_e=self.lens_half_light_radius,
-                             stellar_n=self.lens_sersic_index, stellar_q=self.lens_q, stellar_angle=self.lens_angle,
-                             halo_kappa_s=self.halo_kappa_s, halo_scale_radius=self.halo_scale_radius,
-                             halo_ellipticity=self.halo_ellipticity)
+        composite = self._composite()
         main = build_deflector(self.mass_model_name, self.einstein_radius, self.mass_q, self.mass_angle,
                                self.mass_slope, self.mass_core_radius, self.subhalos, self.multipoles,
                                self.shear_gamma, self.shear_angle, composite=composite, lensing=self.lensing)
         if not self.line_of_sight or not self.lensing:
             return main
         return multi_plane(main, self.z_lens, self.line_of_sight, self.z_source, self.cosmology)
+
+    def _composite(self) -> dict | None:
+        if self.mass_model_name != "stars_and_halo" or self.stellar_kappa_e <= 0:
+            return None
+        return dict(stellar_kappa_e=self.stellar_kappa_e, stellar_r_e=self.lens_half_light_radius,
+                    stellar_n=self.lens_sersic_index, stellar_q=self.lens_q, stellar_angle=self.lens_angle,
+                    halo_kappa_s=self.halo_kappa_s, halo_scale_radius=self.halo_scale_radius,
+                    halo_ellipticity=self.halo_ellipticity)
 
     def band(self, name: str) -> BandConditions:
         for b in self.bands:
@@ -182,6 +204,37 @@ class System:
             return galaxy
         return CompositeLight((galaxy,) + tuple(shape.with_flux(conditions.counts_from_magnitude(mags[band]))
                                                 for shape, mags in self.extra_light))
+
+    def second_source_mass(self) -> MassModel:
+        """The deflectors for the second source plane: the main lens (and any line-of-sight
+        galaxies) rescaled to its redshift, and the first source as an SIS in its plane."""
+        from .mass import ScaledDeflector
+
+        second = self.second_source
+        main = ScaledDeflector(build_deflector(self.mass_model_name, self.einstein_radius, self.mass_q,
+                                               self.mass_angle, self.mass_slope, self.mass_core_radius,
+                                               self.subhalos, self.multipoles, self.shear_gamma, self.shear_angle,
+                                               composite=self._composite(), lensing=self.lensing),
+                               second.deflection_factor)
+        planes = [(self.z_lens, main)]
+        for g in self.line_of_sight:
+            planes.append((g.z, SIS(einstein_radius=g.einstein_radius * g_factor(self, g), center=(g.x, g.y))))
+        if second.deflector_einstein_radius > 0:
+            planes.append((self.z_source, SIS(einstein_radius=second.deflector_einstein_radius,
+                                              center=(self.source_x, self.source_y))))
+        if len(planes) == 1:
+            return main
+        from .multiplane import MultiPlaneLens
+
+        planes.sort(key=lambda p: p[0])
+        return MultiPlaneLens(planes=tuple(m for _, m in planes), redshifts=tuple(z for z, _ in planes),
+                              z_source=second.z, cosmology=self.cosmology)
+
+    def second_source_light(self, band: str) -> LightProfile:
+        second = self.second_source
+        return Sersic(flux=self.band(band).counts_from_magnitude(second.magnitudes[band]),
+                      half_light_radius=second.half_light_radius, sersic_index=second.sersic_index,
+                      q=second.q, angle=second.angle, center=(second.x, second.y))
 
     @property
     def region_area(self) -> float:
@@ -249,6 +302,14 @@ def build_deflector(model: str, einstein_radius: float, q: float, angle: float, 
     if shear_gamma > 0:
         lens = lens + ExternalShear(gamma=shear_gamma, angle=shear_angle)
     return lens
+
+
+def g_factor(system: "System", galaxy: "LineOfSightGalaxy") -> float:
+    """Rescaling of a line-of-sight galaxy's deflection from the first source to the second."""
+    from .distances import DistanceTable
+
+    table = DistanceTable(system.cosmology) if system.cosmology is not None else None
+    return float(table.ratio(galaxy.z, system.second_source.z) / table.ratio(galaxy.z, system.z_source))
 
 
 def multi_plane(main: MassModel, z_lens: float, line_of_sight: tuple, z_source: float, cosmology) -> MassModel:
@@ -624,6 +685,23 @@ class PopulationSampler:
                 psf_beta=v[f"survey.bands.{b.name}.psf.beta"])
             for b in recipe.survey.bands)
 
+        # -- a second source plane ------------------------------------------------------------------
+        second = None
+        settings2 = source_settings.second
+        if settings2 is not None and behind and v["source.second.redshift"] > z_source and theta_e > 0:
+            z2 = v["source.second.redshift"]
+            factor = float(self.distances.ratio(z_lens, z2)) / ratio
+            sigma_d = v["source.second.deflector_velocity_dispersion"]
+            theta_d = 4.0 * math.pi * (sigma_d / C_KM_S) ** 2 * float(self.distances.ratio(z_source, z2)) * ARCSEC_PER_RADIAN
+            x2, y2 = _uniform_in_disc(v["source.second.radius_in_einstein_radii"] * theta_e * factor, streams["physics"])
+            colours = ({b: 0.0 if b == ref else v[f"source.second.colors.{b}"] for b in band_names}
+                       if settings2.colors else {b: disk_colors[b] - disk_colors[ref] for b in band_names})
+            second = SecondSource(z=z2, magnitudes={b: v["source.second.magnitude"] + colours[b] for b in band_names},
+                                  half_light_radius=v["source.second.half_light_radius"],
+                                  sersic_index=v["source.second.sersic_index"], q=v["source.second.q"],
+                                  angle=v["source.second.angle"], x=x2, y=y2, deflection_factor=factor,
+                                  deflector_einstein_radius=theta_d)
+
         # -- the cut that needs the source size and the seeing -----------------------------------
         if selection.resolvable:
             fwhm = next(b.psf_fwhm for b in bands if b.name == ref)
@@ -641,7 +719,8 @@ class PopulationSampler:
         system = System(
             system_id=int(system_id), grid_cell=cell, ra=ra, dec=dec, z_lens=z_lens, z_source=z_source,
             velocity_dispersion=sigma, einstein_radius=theta_e, **deflector,
-            line_of_sight=line_of_sight, cosmology=self.cosmology if line_of_sight else None,
+            line_of_sight=line_of_sight, second_source=second,
+            cosmology=self.cosmology if (line_of_sight or second is not None) else None,
             lens_magnitudes=lens_mags, lens_half_light_radius=lens_r_e,
             lens_sersic_index=v["lens.light.sersic_index"], lens_q=lens_q, lens_angle=lens_angle,
             source_disk_magnitudes=disk_mags, source_half_light_radius=source_r_e,
@@ -670,6 +749,7 @@ class PopulationSampler:
             if "multiply_imaged" in flags:
                 flags["multiply_imaged"] = False
             changes = dict(system_class=kind, lensing=False, multiply_imaged=False, extra_light=extra,
+                           second_source=None,
                            selection_flags=flags,
                            source_present=kind == "unlensed_source", tangential_caustic_area=0.0,
                            inner_caustic_area=0.0)

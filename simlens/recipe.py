@@ -51,6 +51,7 @@ __all__ = [
     "ClumpSettings",
     "OutputSettings",
     "SelectionSettings",
+    "SecondSourceSettings",
     "LineOfSightSettings",
     "NegativeSettings",
     "DeflectorPopulationSettings",
@@ -389,6 +390,22 @@ class ClumpSettings:
 
 
 @dataclass(frozen=True, kw_only=True)
+class SecondSourceSettings:
+    redshift: Parameter = parameter(low=0, low_open=True, doc="redshift of the second source (behind the first)")
+    magnitude: Parameter = parameter(low=0, high=40, unit="mag", doc="unlensed AB magnitude, reference band")
+    colors: dict = band_colors(doc="m_band - m_reference (default: the first source's disk colours)")
+    half_light_radius: Parameter = parameter(0.2, low=0, low_open=True, unit="arcsec", doc="circularised R_e")
+    sersic_index: Parameter = parameter(1.0, low=0.3, high=8.0, doc="Sersic n")
+    q: Parameter = parameter(0.7, low=0, low_open=True, high=1, doc="axis ratio")
+    angle: Parameter = parameter(0.0, unit="deg", doc="major-axis angle, CCW from +x")
+    radius_in_einstein_radii: Parameter = parameter(1.0, low=0, doc="uniform in area inside this many "
+                                                    "Einstein radii (for this source) of the lens centre")
+    deflector_velocity_dispersion: Parameter = parameter(
+        0.0, low=0, high=500, unit="km/s",
+        doc="the first source as an SIS deflector of the second (0: it does not deflect)")
+
+
+@dataclass(frozen=True, kw_only=True)
 class SourceSettings:
     redshift: Parameter = parameter(optional=True, low=0, low_open=True, doc="source redshift")
     magnitude: Parameter = parameter(optional=True, low=0, high=40, unit="mag",
@@ -400,6 +417,8 @@ class SourceSettings:
                                          doc="magnitudes, redshifts, sizes and colours from published "
                                              "number counts, p(z|m), a size-luminosity relation, a template")
     quasar: QuasarSettings = table(QuasarSettings, optional=True, doc="a point source at the source centre")
+    second: SecondSourceSettings = table(SecondSourceSettings, optional=True,
+                                         doc="a second source plane behind the first (double source plane lens)")
     sersic_index: Parameter = parameter(1.0, low=0.3, high=8.0, doc="Sersic n")
     q: Parameter = parameter(0.7, low=0, low_open=True, high=1, doc="axis ratio")
     angle: Parameter = parameter(0.0, unit="deg", doc="major-axis angle, CCW from +x")
@@ -805,6 +824,8 @@ def _check_consistency(recipe: Recipe) -> None:
     color_sets = [("lens.light.colors", lens.light.colors, lens.light.scaling is None),
                   ("source.colors", source.colors, source.counts is None),
                   ("source.clumps.colors", source.clumps.colors, False)]
+    if source.second is not None:
+        color_sets.append(("source.second.colors", source.second.colors, False))
     for path, colors, required in color_sets:
         for band in colors:
             if band not in others:

@@ -7,6 +7,7 @@ pure function of the System, so any system can be re-rendered alone, identically
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import time
 from dataclasses import dataclass, field
@@ -30,6 +31,7 @@ class RenderedSystem:
     bands: tuple  # of ObservedBand, in survey order
     magnification: float  # extended-source magnification in the reference band
     images: ImageSet  # images of the source centre within the cutout
+    second_magnification: float = math.nan  # of the second source (reference band), if any
     time_delays: np.ndarray = field(default_factory=lambda: np.empty(0), compare=False)  # days after the first image
     timings: dict = field(default_factory=dict, compare=False)
 
@@ -107,6 +109,12 @@ def render_system(system: System, survey: SurveySettings, reference_band: str) -
     # Shapes are achromatic: evaluate each once for all bands, on the PSF stage's grid.
     components = ComponentImages(rays, sampling=sampling, adaptive=survey.adaptive_supersampling)
     components.prepare_lensed(system.source_light(reference_band))  # refine where the whole source needs it
+    second = None
+    if system.second_source is not None:  # its own ray map, through its own deflectors
+        rays2, sampling2 = observation_rays(system.second_source_mass(), grid, max(b.psf_fwhm for b in system.bands))
+        second = ComponentImages(rays2, sampling=sampling2, adaptive=survey.adaptive_supersampling)
+        second.prepare_lensed(system.second_source_light(reference_band))
+    second_magnification = math.nan
     timings["adaptive_refinement"] = time.perf_counter() - t_images
     t_scene = t_observe = 0.0
     for conditions, seed in zip(system.bands, system.noise_seeds):
@@ -118,14 +126,21 @@ def render_system(system: System, survey: SurveySettings, reference_band: str) -
                            for x, y, mu in zip(images.x, images.y, images.magnification))
         scene = render_scene(conditions.name, rays, system.lens_light(conditions.name),
                              system.source_light(conditions.name), components, lensed_points=points)
+        if conditions.name == reference_band:
+            magnification = scene.magnification  # of the first source alone
+        if second is not None:
+            light2 = system.second_source_light(conditions.name)
+            lensed2 = second.render(light2, lensed=True)
+            if conditions.name == reference_band and light2.flux > 0:
+                second_magnification = float(lensed2.sum()) / light2.flux
+            scene = dataclasses.replace(scene, lensed_source=scene.lensed_source + lensed2)
         tb = time.perf_counter()
         observed.append(observe_scene(scene, conditions, seed))
         tc = time.perf_counter()
         t_scene += tb - ta
         t_observe += tc - tb
-        if conditions.name == reference_band:
-            magnification = scene.magnification
     timings["scene"] = t_scene
     timings["galsim_stage"] = t_observe
     return RenderedSystem(system=system, grid=grid, bands=tuple(observed), magnification=magnification,
-                          images=images, time_delays=delays, timings=timings)
+                          images=images, second_magnification=second_magnification, time_delays=delays,
+                          timings=timings)

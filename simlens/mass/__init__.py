@@ -17,9 +17,10 @@ from .multipole import Multipole
 from .nfw import NFW
 from .point_mass import PointMass
 from .power_law import PowerLaw
+from .scaled import ScaledDeflector
 from .sersic_mass import SersicMass
 from .sheets import ConvergenceSheet, ExternalShear
 from .truncated_isothermal import TruncatedSIS
 
 __all__ = ["MassModel", "CompositeMass", "SIS", "SIE", "PowerLaw", "CoredIsothermal", "NFW", "Multipole",
-           "SersicMass", "TruncatedSIS", "PointMass", "ExternalShear", "ConvergenceSheet"]
+           "SersicMass", "TruncatedSIS", "PointMass", "ExternalShear", "ConvergenceSheet", "ScaledDeflector"]

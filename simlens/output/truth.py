@@ -63,6 +63,10 @@ stellar_kappa_e                      stars_and_halo: the stars' convergence at R
 halo_mass, halo_concentration        stars_and_halo: NFW M200 (M_sun) and c200 (nan: other models)
 halo_kappa_s, halo_scale_radius      stars_and_halo: NFW kappa_s and r_s (arcsec)
 halo_ellipticity                     stars_and_halo: ellipticity of the halo's potential
+second_source_z, _x, _y    -, arcsec second source plane (source.second): redshift, centre in its plane
+second_source_mag_<band>   mag       its unlensed magnitude
+second_source_magnification          its lensed flux in the rendered field over the unlensed flux
+second_source_deflector_einstein_radius  arcsec  the first source as an SIS deflector of it
 system_class                         lens (source centre multiply imaged), missed_caustics,
                                      source_in_front, or a negative class (simlens.negatives)
 is_lens                              system_class is lens and the system is selected: the label
@@ -96,7 +100,8 @@ TRUTH_UNITS = {
     "source_half_light_radius": u.arcsec, "source_angle": u.deg, "source_x": u.arcsec, "source_y": u.arcsec,
     "max_time_delay": u.day, "lens_absolute_magnitude": u.mag, "lens_luminosity": u.L_sun,
     "lens_stellar_mass": u.M_sun, "source_absolute_magnitude": u.mag, "region_radius": u.arcsec,
-    "region_area": u.arcsec**2, "halo_mass": u.M_sun, "halo_scale_radius": u.arcsec, "tangential_caustic_area": u.arcsec**2, "inner_caustic_area": u.arcsec**2,
+    "region_area": u.arcsec**2, "second_source_x": u.arcsec, "second_source_y": u.arcsec,
+    "second_source_deflector_einstein_radius": u.arcsec, "halo_mass": u.M_sun, "halo_scale_radius": u.arcsec, "tangential_caustic_area": u.arcsec**2, "inner_caustic_area": u.arcsec**2,
 }
 
 
@@ -145,6 +150,13 @@ def truth_row(rendered: RenderedSystem, file: str, shard: str = "", shard_index:
     row.update({"stellar_kappa_e": s.stellar_kappa_e, "halo_mass": s.halo_mass,
                 "halo_concentration": s.halo_concentration, "halo_kappa_s": s.halo_kappa_s,
                 "halo_scale_radius": s.halo_scale_radius, "halo_ellipticity": s.halo_ellipticity})
+    second = s.second_source
+    row.update({"second_source_z": second.z if second else float("nan"),
+                "second_source_x": second.x if second else float("nan"),
+                "second_source_y": second.y if second else float("nan"),
+                "second_source_magnification": rendered.second_magnification,
+                "second_source_deflector_einstein_radius": second.deflector_einstein_radius if second else 0.0})
+    row.update({f"second_source_mag_{b}": (second.magnitudes[b] if second else float("nan")) for b in names})
     row["system_class"] = s.system_class
     row["is_lens"] = s.system_class == "lens" and row["selected"]
     row["n_lookalike_features"] = len(s.extra_light)
@@ -184,7 +196,7 @@ def truth_table(rows: Sequence[dict]) -> Table:
     for name, column in table.columns.items():
         if name in TRUTH_UNITS:
             column.unit = TRUTH_UNITS[name]
-        elif name.startswith(("lens_mag_", "source_mag_", "quasar_mag_")):
+        elif name.startswith(("lens_mag_", "source_mag_", "quasar_mag_", "second_source_mag_")):
             column.unit = u.mag
         elif name.startswith("psf_fwhm_"):
             column.unit = u.arcsec
