@@ -12,7 +12,7 @@ from astropy import constants
 
 from simlens.cosmology import ARCSEC_PER_RADIAN
 from simlens.mass import (NFW, SIE, SIS, CompositeMass, ConvergenceSheet, CoredIsothermal, ExternalShear,
-                          Multipole, PointMass, PowerLaw, SersicMass, TruncatedSIS)
+                          Multipole, PointMass, PowerLaw, SersicMass, TruncatedSIS, MassModel, ScaledDeflector)
 
 RNG = np.random.default_rng(1)
 # Test positions away from the singular centres (arcsec).
@@ -39,7 +39,22 @@ MODELS = [
     Multipole(order=3, strength=0.02, einstein_radius=1.0, angle=-60.0),
     TruncatedSIS(einstein_radius=0.05, truncation_radius=0.3, center=(0.9, 0.4)),
     SersicMass(kappa_e=0.4, half_light_radius=0.9, sersic_index=3.0, q=0.65, angle=20.0),
+    # stars_and_halo: Sersic stars plus an NFW halo; and a lens rescaled to another source redshift
+    SersicMass(kappa_e=0.3, half_light_radius=0.8, sersic_index=4.0, q=0.7, angle=10.0)
+    + NFW(kappa_s=0.1, scale_radius=6.0, ellipticity=0.1, angle=10.0),
+    ScaledDeflector(SIE(einstein_radius=1.1, q=0.6, angle=-20.0) + ExternalShear(gamma=0.04, angle=30.0), 1.3),
 ]
+
+
+@pytest.mark.parametrize("model", [m for m in MODELS if type(m).deflection_and_hessian
+                                   is not MassModel.deflection_and_hessian], ids=lambda m: type(m).__name__)
+def test_analytic_hessians_equal_central_differences(model):
+    # Models with a closed-form Hessian against central differences of their own deflection
+    # (the Jacobian's definition, SEF 1992 eq. 5.20).
+    analytic = model.deflection_and_hessian(X, Y)
+    differenced = MassModel.deflection_and_hessian(model, X, Y)
+    for a, d in zip(analytic[2:], differenced[2:]):
+        np.testing.assert_allclose(a, d, atol=1e-6)
 
 
 def _derivatives(f, x, y, h=1e-5):
