@@ -5,6 +5,7 @@
     simlens check RECIPE
     simlens verify RUN_DIR
     simlens score RUN_DIR SCORES (--threshold T | --fpr F) [--by COLUMN ...] [--pair X Y]
+    simlens inject IMAGE.fits --recipe RECIPE --lenses CATALOG [--psf PSF.fits] [--out DIR]
     simlens gallery RUN_DIR [--where "COLUMN OP VALUE" ...] [--missed SCORES --threshold T] [--sort COLUMN]
 
 User errors print one line (``simlens: error: ...``) and exit with status 2; no traceback.
@@ -138,10 +139,23 @@ def _gallery(args) -> int:
     return 0
 
 
+def _inject(args) -> int:
+    from .injection import inject
+
+    recipe = load_recipe(args.recipe).with_overrides(seed=args.seed)
+    out = Path(args.out) if args.out else Path("outputs") / f"inject_{Path(args.image).stem}"
+    result = inject(args.image, recipe, args.lenses, out=out, psf_path=args.psf, band=args.band, gain=args.gain,
+                    zero_point=args.zero_point, full_image=args.full_image, overwrite=args.overwrite)
+    print(f"injected {len(result.truth)} lensed sources into a copy of {args.image}; wrote {out}")
+    for f in result.files:
+        print(f"  {f}")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="simlens", description="Synthetic survey cutouts of strong gravitational lenses.")
     parser.add_argument("--version", action="version", version=f"simlens {__version__}")
-    verbs = parser.add_subparsers(dest="verb", required=True, metavar="{make,check,verify,score,gallery}")
+    verbs = parser.add_subparsers(dest="verb", required=True, metavar="{make,check,verify,inject,score,gallery}")
 
     make = verbs.add_parser("make", help="render the systems of a recipe into a run folder")
     make.add_argument("recipe", help="recipe file (TOML)")
@@ -166,6 +180,21 @@ def build_parser() -> argparse.ArgumentParser:
     verify = verbs.add_parser("verify", help="check a run folder's files against its manifest")
     verify.add_argument("run_dir", help="run folder")
     verify.set_defaults(func=_verify)
+
+    inj = verbs.add_parser("inject", help="add lensed sources behind real galaxies of a FITS image (a copy)")
+    inj.add_argument("image", help="single-band FITS image with a celestial WCS")
+    inj.add_argument("--recipe", required=True, help="recipe for the sources (and the default PSF)")
+    inj.add_argument("--lenses", required=True, help="catalogue: ra, dec, z_lens, velocity_dispersion "
+                                                     "[, mass_q, mass_angle] (CSV, ECSV or FITS)")
+    inj.add_argument("--psf", help="PSF image (odd sides, the image's pixels; default: the recipe band's PSF)")
+    inj.add_argument("--out", help="output folder (default: outputs/inject_<image stem>)")
+    inj.add_argument("--band", help="recipe band of the image (default: the reference band)")
+    inj.add_argument("--gain", type=float, help="electrons per image unit (default: header GAIN)")
+    inj.add_argument("--zero-point", type=float, help="AB magnitude of one image unit (default: header MAGZERO)")
+    inj.add_argument("--seed", type=int, help="random seed (overrides the recipe's)")
+    inj.add_argument("--full-image", action="store_true", help="also write the whole injected and added-flux images")
+    inj.add_argument("--overwrite", action="store_true", help="write into a non-empty output folder")
+    inj.set_defaults(func=_inject)
 
     score = verbs.add_parser("score", help="completeness, purity and ROC of a finder's scores against a run's truth")
     score.add_argument("run_dir", help="finished run folder")
