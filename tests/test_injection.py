@@ -51,7 +51,7 @@ def test_injected_flux_matches_the_truth_and_the_input_is_untouched(tmp_path):
     before = hashlib.sha256(image.read_bytes()).hexdigest()
     recipe = parse_recipe(SMALL_RECIPE.replace("cutout_size = 32", "cutout_size = 41"))
     inject(image, recipe, tmp_path / "lenses.csv", out=tmp_path / "out", psf_path=tmp_path / "psf.fits",
-                    full_image=True)
+           full_image=True)
     assert hashlib.sha256(image.read_bytes()).hexdigest() == before  # the input file is never modified
     original = fits.getdata(image).astype(float)
     injected = fits.getdata(tmp_path / "out" / "injected.fits").astype(float)
