@@ -8,7 +8,9 @@ and adds it -- only the lensed source: the lens light is the real galaxy -- with
 the added electrons.  The input file is never modified.
 
 PSF: a user PSF image (``psf``; normalised here, assumed sampled at the image's pixels and centred
-on its central pixel), else the recipe band's PSF drawn by GalSim at the image's pixel scale.
+on its central pixel); ``psf="stars"`` for an empirical PSF built from the image's own stars
+(:func:`empirical_psf`, written to ``psf.fits``); else the recipe band's PSF drawn by GalSim at the
+image's pixel scale.
 Photometry: ``GAIN`` (electrons per image unit) and ``MAGZERO`` (AB magnitude of one image unit)
 from the header, or given explicitly; a missing one is an error that names it.
 
@@ -37,7 +39,7 @@ from .population import PopulationSampler
 from .recipe import Recipe
 from .sampling import Fixed
 
-__all__ = ["SurveyImage", "read_survey_image", "read_lens_catalogue", "inject", "InjectionResult"]
+__all__ = ["SurveyImage", "read_survey_image", "read_lens_catalogue", "inject", "InjectionResult", "empirical_psf"]
 
 ARCSEC_PER_DEGREE = 3600.0
 
@@ -104,7 +106,54 @@ class InjectionResult:
     files: list
 
 
-def _psf_kernel(psf_path: str | Path | None, recipe: Recipe, band: str, pixel_scale: float) -> np.ndarray:
+def empirical_psf(data: np.ndarray, fwhm_pixels: float, size: int = 25, exclude=(), max_stars: int = 200,
+                  exclusion_radius: float = 10.0) -> tuple[np.ndarray, int]:
+    """An effective PSF from the image's own stars (photutils): ``(normalised kernel, stars used)``.
+
+    Star selection (a simple documented rule): DAOStarFinder peaks above 10 sigma of the
+    sigma-clipped background with its default sharpness (0.2-1) and roundness (|r| < 1) limits, which
+    drop most extended galaxies; then only sources with no other detection within ``size`` pixels,
+    whole ``size`` x ``size`` stamps inside the image, farther than ``exclusion_radius`` pixels from
+    every position in ``exclude`` (the lens galaxies), the ``max_stars`` brightest.  The stamps
+    are combined by photutils' EPSFBuilder at the image's sampling (oversampling 1)."""
+    from astropy.nddata import NDData
+    from astropy.stats import sigma_clipped_stats
+    from photutils.detection import DAOStarFinder
+    from photutils.psf import EPSFBuilder, extract_stars
+
+    _, median, std = sigma_clipped_stats(data)
+    found = DAOStarFinder(fwhm=fwhm_pixels, threshold=10.0 * std)(data - median)
+    if found is None or len(found) == 0:
+        raise SimlensError("no stars found for an empirical PSF; give a PSF image with --psf")
+    x = np.asarray(found["x_centroid"] if "x_centroid" in found.colnames else found["xcentroid"], float)
+    y = np.asarray(found["y_centroid"] if "y_centroid" in found.colnames else found["ycentroid"], float)
+    flux = np.asarray(found["flux"], float)
+    half = size // 2
+    ny, nx = data.shape
+    keep = (x > half + 1) & (x < nx - half - 2) & (y > half + 1) & (y < ny - half - 2)
+    separation = np.hypot(x[:, None] - x[None, :], y[:, None] - y[None, :])
+    np.fill_diagonal(separation, np.inf)
+    keep &= separation.min(axis=1) > size
+    for ex, ey in exclude:
+        keep &= np.hypot(x - ex, y - ey) > exclusion_radius
+    chosen = np.flatnonzero(keep)
+    chosen = chosen[np.argsort(-flux[chosen])][:max_stars]
+    if chosen.size < 5:
+        raise SimlensError(f"only {chosen.size} isolated stars found for an empirical PSF (5 needed); "
+                           "give a PSF image with --psf")
+    stars = extract_stars(NDData(data - median), Table({"x": x[chosen], "y": y[chosen]}), size=size)
+    epsf, _ = EPSFBuilder(oversampling=1, maxiters=10, progress_bar=False)(stars)
+    kernel = np.clip(np.asarray(epsf.data, float), 0.0, None)
+    return kernel / kernel.sum(), int(chosen.size)
+
+
+def _psf_kernel(psf_path: str | Path | None, recipe: Recipe, band: str, pixel_scale: float,
+                image: "SurveyImage | None" = None, exclude=()) -> np.ndarray:
+    if psf_path == "stars":
+        settings = recipe.survey.band(band).psf
+        fwhm = float(settings.fwhm.support[0] + settings.fwhm.support[1]) / 2.0
+        kernel, _ = empirical_psf(image.data, fwhm / pixel_scale, exclude=exclude)
+        return kernel
     if psf_path is not None:
         kernel = np.array(fits.getdata(psf_path), dtype=float)
         if kernel.ndim != 2 or kernel.shape[0] % 2 == 0 or kernel.shape[1] % 2 == 0:
@@ -122,6 +171,20 @@ def _psf_kernel(psf_path: str | Path | None, recipe: Recipe, band: str, pixel_sc
     if not total > 0:
         raise SimlensError("the PSF image has no positive flux")
     return kernel / total
+
+
+def _fine_kernel(kernel: np.ndarray, ss: int) -> np.ndarray:
+    """The effective PSF (fraction of a point source's flux per pixel, as a function of the offset)
+    interpolated (cubic) at the fine grid's offsets, for convolving fine flux samples."""
+    from scipy.ndimage import map_coordinates
+
+    n = kernel.shape[0]
+    c = (n - 1) / 2.0
+    m = n * ss
+    offsets = (np.arange(m) - (m - 1) / 2.0) / ss  # in pixels; odd m: 0 is a sample
+    gy, gx = np.meshgrid(offsets + c, offsets + c, indexing="ij")
+    fine = map_coordinates(kernel, [gy, gx], order=3, mode="constant", cval=0.0)
+    return np.clip(fine, 0.0, None)
 
 
 def _lens_recipe(recipe: Recipe, row) -> Recipe:
@@ -148,14 +211,22 @@ def inject(image_path: str | Path, recipe: Recipe, lenses_path: str | Path, *, o
     if out.exists() and any(out.iterdir()) and not overwrite:
         raise SimlensError(f"{out} exists and is not empty; choose another --out or pass --overwrite")
     (out / "cutouts").mkdir(parents=True, exist_ok=True)
-    kernel = _psf_kernel(psf_path, recipe, band, image.pixel_scale)
-    ss = recipe.survey.supersampling
+    files: list = []
+    positions = [tuple(float(v) for v in image.wcs.celestial.world_to_pixel_values(float(r["ra"]), float(r["dec"])))
+                 for r in lenses]
+    kernel = _psf_kernel(psf_path, recipe, band, image.pixel_scale, image, exclude=positions)
+    if psf_path == "stars":
+        with atomic_path(out / "psf.fits") as tmp:
+            fits.PrimaryHDU(data=kernel.astype(np.float32)).writeto(tmp)
+        files.append("psf.fits")
+    ss = recipe.survey.supersampling | 1  # odd, so that pixel centres are fine-grid samples
     size = recipe.survey.cutout_size
     pad = kernel.shape[0] // 2 + 1
+    fine_kernel = _fine_kernel(kernel, ss)
     injected = image.data.copy()
     added_total = np.zeros_like(image.data)
     rng = np.random.default_rng(np.random.SeedSequence(recipe.seed, spawn_key=(0x1A7EC7,)))
-    rows, files = [], []
+    rows = []
     ny, nx = image.data.shape
     for index, row in enumerate(lenses):
         px, py = (float(v) for v in image.wcs.celestial.world_to_pixel_values(float(row["ra"]), float(row["dec"])))
@@ -172,9 +243,12 @@ def inject(image_path: str | Path, recipe: Recipe, lenses_path: str | Path, *, o
         # even cutouts: shift by half a pixel so that pixel (iy, ix)'s centre is the origin
         offset = 0.5 * image.pixel_scale if size % 2 == 0 else 0.0
         bx, by = mass.ray_shoot(gx + offset - dx, gy + offset - dy)
-        sb = source.surface_brightness(bx, by) * (image.pixel_scale / ss) ** 2
-        pixels = sb.reshape(n, ss, n, ss).sum(axis=(1, 3))
-        stamp = fftconvolve(pixels, kernel, mode="same")[pad:pad + size, pad:pad + size]
+        flux = source.surface_brightness(bx, by) * (image.pixel_scale / ss) ** 2
+        # The PSF image already holds the pixel response (it is an effective PSF): convolve the
+        # fine samples with it and read the result at the pixel centres (no second pixel average).
+        convolved = fftconvolve(flux, fine_kernel, mode="same")
+        pixels = convolved[ss // 2::ss, ss // 2::ss]
+        stamp = pixels[pad:pad + size, pad:pad + size]
         stamp = np.clip(stamp, 0.0, None)
         # the stamp's pixel (r, c) is image pixel (iy - half + r, ix - half + c)
         half = size // 2 if size % 2 == 1 else size // 2 - 1
@@ -199,7 +273,8 @@ def inject(image_path: str | Path, recipe: Recipe, lenses_path: str | Path, *, o
                        ("source_y", "arcsec"), ("velocity_dispersion", "km / s")):
         truth[name].unit = unit
     truth.meta.update({"image": str(image.path), "band": band, "gain": image.gain, "magzero": image.zero_point,
-                       "psf": str(psf_path) if psf_path else f"recipe {band} PSF"})
+                       "psf": ("empirical, from the image's stars (psf.fits)" if psf_path == "stars"
+                               else str(psf_path) if psf_path else f"recipe {band} PSF")})
     for name, fmt in (("truth.fits", "fits"), ("truth.ecsv", "ascii.ecsv")):
         with atomic_path(out / name) as tmp:
             truth.write(tmp, format=fmt)

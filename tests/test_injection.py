@@ -108,3 +108,64 @@ def test_missing_photometry_is_a_clear_error_or_given_explicitly(tmp_path, capsy
     with pytest.raises(SimlensError, match="no celestial WCS"):
         fits.PrimaryHDU(data=np.zeros((10, 10))).writeto(tmp_path / "plain.fits")
         inject(tmp_path / "plain.fits", parse_recipe(SMALL_RECIPE), tmp_path / "lenses.csv", out=tmp_path / "o2")
+
+
+def test_an_unlensed_source_adds_its_catalogue_flux(tmp_path):
+    # Absolute photometry: with (almost) no deflection the added counts equal 10^(-0.4 (m - MAGZERO))
+    # of the source (AB definition of the zero point), less the PSF's wings beyond the stamp (< 1 %).
+    image = synthetic_image(tmp_path)
+    Table({"ra": [150.0], "dec": [2.0], "z_lens": [0.4], "velocity_dispersion": [1.0]}).write(
+        tmp_path / "one.csv", format="ascii.csv")
+    text = SMALL_RECIPE.replace("cutout_size = 32", "cutout_size = 41").replace(
+        "[source.clumps]", "[source.position]\nx = 0.0\ny = 0.0\n\n[source.clumps]").replace(
+        "count = { choice = [0, 2] }", "count = 0")
+    result = inject(image, parse_recipe(text), tmp_path / "one.csv", out=tmp_path / "out", psf_path=tmp_path / "psf.fits")
+    row = result.truth[0]
+    expected = 10 ** (-0.4 * (row["source_mag_r"] - 30.0))
+    assert row["added_flux_unclipped"] == pytest.approx(expected, rel=0.01)
+
+
+def test_empirical_psf_from_the_image_stars_recovers_the_fwhm(tmp_path):
+    # photutils EPSFBuilder on stars drawn with a GalSim Moffat (FWHM 0.8") among galaxies: the FWHM
+    # of the empirical PSF (photutils RadialProfile Moffat fit) is within 5 % of the true PSF's
+    # pixel-convolved FWHM (GalSim, same sampling).
+    from photutils.profiles import RadialProfile
+
+    from simlens.injection import empirical_psf
+
+    rng = np.random.default_rng(5)
+    data = rng.normal(0.0, 2.0, (400, 400))
+    psf = galsim.Moffat(beta=3.0, fwhm=0.8)
+    for x, y in rng.uniform(20, 380, (50, 2)):
+        ix, iy = int(round(x)), int(round(y))
+        stamp = psf.withFlux(rng.uniform(3e3, 2e4)).drawImage(nx=31, ny=31, scale=SCALE, offset=(x - ix, y - iy)).array
+        data[iy - 15:iy + 16, ix - 15:ix + 16] += stamp
+    for x, y in rng.uniform(40, 360, (8, 2)):  # extended galaxies the selection should mostly reject
+        ix, iy = int(round(x)), int(round(y))
+        gal = galsim.Convolve(galsim.Sersic(n=1.0, half_light_radius=1.0, flux=2e4), psf)
+        data[iy - 30:iy + 31, ix - 30:ix + 31] += gal.drawImage(nx=61, ny=61, scale=SCALE).array
+    kernel, n_stars = empirical_psf(data, 0.8 / SCALE)
+    assert n_stars >= 10 and kernel.sum() == pytest.approx(1.0)
+    radii = np.arange(0, 12, 0.5)
+    measured = RadialProfile(kernel, (12.0, 12.0), radii).moffat_fwhm
+    reference = psf.drawImage(nx=25, ny=25, scale=SCALE).array
+    expected = RadialProfile(reference, (12.0, 12.0), radii).moffat_fwhm
+    assert measured == pytest.approx(expected, rel=0.05)
+
+
+def test_inject_with_an_empirical_psf_records_it(tmp_path):
+    image = synthetic_image(tmp_path)
+    data = fits.getdata(image).astype(float)
+    header = fits.getheader(image)
+    rng = np.random.default_rng(8)
+    psf = galsim.Moffat(beta=3.0, fwhm=0.8)
+    for x, y in rng.uniform(20, 180, (30, 2)):
+        ix, iy = int(round(x)), int(round(y))
+        data[iy - 15:iy + 16, ix - 15:ix + 16] += psf.withFlux(1e4).drawImage(
+            nx=31, ny=31, scale=SCALE, offset=(x - ix, y - iy)).array
+    starry = tmp_path / "starry.fits"
+    fits.PrimaryHDU(data=data.astype(np.float32), header=header).writeto(starry)
+    recipe = parse_recipe(SMALL_RECIPE.replace("cutout_size = 32", "cutout_size = 41"))
+    result = inject(starry, recipe, tmp_path / "lenses.csv", out=tmp_path / "out", psf_path="stars")
+    assert "psf.fits" in result.files and "empirical" in result.truth.meta["psf"]
+    assert fits.getdata(tmp_path / "out" / "psf.fits").sum() == pytest.approx(1.0, rel=1e-5)
