@@ -185,7 +185,8 @@ def build_parser() -> argparse.ArgumentParser:
     inj.add_argument("image", help="single-band FITS image with a celestial WCS")
     inj.add_argument("--recipe", required=True, help="recipe for the sources (and the default PSF)")
     inj.add_argument("--lenses", required=True, help="catalogue: ra, dec, z_lens, velocity_dispersion "
-                                                     "[, mass_q, mass_angle] (CSV, ECSV or FITS)")
+                                                     "[, mass_q, mass_angle] (CSV, ECSV or FITS), or 'auto' "
+                                                     "to select bright early-type-like galaxies in the image")
     inj.add_argument("--psf", help="PSF image (odd sides, the image's pixels), or 'stars' for an empirical PSF "
                                    "from the image's own stars (default: the recipe band's PSF)")
     inj.add_argument("--out", help="output folder (default: outputs/inject_<image stem>)")

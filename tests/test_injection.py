@@ -169,3 +169,40 @@ def test_inject_with_an_empirical_psf_records_it(tmp_path):
     result = inject(starry, recipe, tmp_path / "lenses.csv", out=tmp_path / "out", psf_path="stars")
     assert "psf.fits" in result.files and "empirical" in result.truth.meta["psf"]
     assert fits.getdata(tmp_path / "out" / "psf.fits").sum() == pytest.approx(1.0, rel=1e-5)
+
+
+def test_automatic_selection_finds_the_early_type_galaxies(tmp_path):
+    # de Vaucouleurs (n = 4) galaxies are selected, exponential disks and stars are not (Gini and
+    # size rule of simlens.injection.select_lens_galaxies); the mass follows the light's moments
+    # (photutils SourceCatalog orientation and elongation) within 0.1 in q and 10 degrees.
+    rng = np.random.default_rng(2)
+    data = rng.normal(0.0, 2.0, (300, 300))
+    psf = galsim.Moffat(beta=3.0, fwhm=0.8)
+    early = [((80, 80), 0.7, 30.0), ((200, 100), 0.6, -40.0), ((150, 220), 0.85, 10.0)]
+    disks = [((60, 220), 0.5, 60.0), ((240, 240), 0.4, 0.0)]
+    for (x, y), q, angle in [(p, q, a) for p, q, a in early] + disks:
+        n = 4.0 if ((x, y), q, angle) in early else 1.0
+        g = galsim.Sersic(n=n, half_light_radius=1.2, flux=4e4).shear(q=q, beta=angle * galsim.degrees)
+        data[y - 40:y + 41, x - 40:x + 41] += galsim.Convolve(g, psf).drawImage(nx=81, ny=81, scale=SCALE).array
+    for x, y in rng.uniform(20, 280, (6, 2)):
+        ix, iy = int(x), int(y)
+        data[iy - 15:iy + 16, ix - 15:ix + 16] += psf.withFlux(1e4).drawImage(nx=31, ny=31, scale=SCALE).array
+    header = WCS(naxis=2)
+    header.wcs.ctype = ["RA---TAN", "DEC--TAN"]
+    header.wcs.crval = [150.0, 2.0]
+    header.wcs.crpix = [150.5, 150.5]
+    header.wcs.cdelt = [-SCALE / 3600.0, SCALE / 3600.0]
+    hdr = header.to_header()
+    hdr["GAIN"], hdr["MAGZERO"] = 4.0, 30.0
+    path = tmp_path / "galaxies.fits"
+    fits.PrimaryHDU(data=data.astype(np.float32), header=hdr).writeto(path)
+    recipe = parse_recipe(SMALL_RECIPE.replace("cutout_size = 32", "cutout_size = 41"))
+    result = inject(path, recipe, "auto", out=tmp_path / "out")
+    selected = Table.read(tmp_path / "out" / "lenses_selected.ecsv")
+    assert len(selected) == 3 and len(result.truth) == 3
+    for (x, y), q, angle in early:
+        match = selected[np.hypot(selected["x_pixel"] - x, selected["y_pixel"] - y) < 1.0]
+        assert len(match) == 1
+        assert match["mass_q"][0] == pytest.approx(q, abs=0.1)
+        assert abs(((match["mass_angle"][0] - angle) + 90) % 180 - 90) < 10
+        assert 50 <= match["velocity_dispersion"][0] <= 500
