@@ -23,15 +23,20 @@ from .conftest import SMALL_RECIPE
 SCALE = 0.2  # arcsec per pixel
 
 
+def tan_header(crpix) -> fits.Header:
+    """A TAN WCS of SCALE-arcsec pixels, north up and east left."""
+    wcs = WCS(naxis=2)
+    wcs.wcs.ctype = ["RA---TAN", "DEC--TAN"]
+    wcs.wcs.crval = [150.0, 2.0]
+    wcs.wcs.crpix = list(crpix)
+    wcs.wcs.cdelt = [-SCALE / 3600.0, SCALE / 3600.0]
+    return wcs.to_header()
+
+
 def synthetic_image(tmp_path, with_gain=True):
     rng = np.random.default_rng(3)
     data = rng.normal(0.0, 2.0, (200, 220))
-    header = WCS(naxis=2)
-    header.wcs.ctype = ["RA---TAN", "DEC--TAN"]
-    header.wcs.crval = [150.0, 2.0]
-    header.wcs.crpix = [110.5, 100.5]
-    header.wcs.cdelt = [-SCALE / 3600.0, SCALE / 3600.0]
-    hdr = header.to_header()
+    hdr = tan_header((110.5, 100.5))
     if with_gain:
         hdr["GAIN"] = 4.0
     hdr["MAGZERO"] = 30.0
@@ -187,12 +192,7 @@ def test_automatic_selection_finds_the_early_type_galaxies(tmp_path):
     for x, y in rng.uniform(20, 280, (6, 2)):
         ix, iy = int(x), int(y)
         data[iy - 15:iy + 16, ix - 15:ix + 16] += psf.withFlux(1e4).drawImage(nx=31, ny=31, scale=SCALE).array
-    header = WCS(naxis=2)
-    header.wcs.ctype = ["RA---TAN", "DEC--TAN"]
-    header.wcs.crval = [150.0, 2.0]
-    header.wcs.crpix = [150.5, 150.5]
-    header.wcs.cdelt = [-SCALE / 3600.0, SCALE / 3600.0]
-    hdr = header.to_header()
+    hdr = tan_header((150.5, 150.5))
     hdr["GAIN"], hdr["MAGZERO"] = 4.0, 30.0
     path = tmp_path / "galaxies.fits"
     fits.PrimaryHDU(data=data.astype(np.float32), header=hdr).writeto(path)
