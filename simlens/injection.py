@@ -208,12 +208,16 @@ def empirical_psf(data: np.ndarray, fwhm_pixels: float, size: int = 25, exclude=
     return kernel / kernel.sum(), int(chosen.size)
 
 
+def _recipe_fwhm(recipe: Recipe, band: str) -> float:
+    """A typical PSF FWHM of the recipe's band (arcsec): the middle of its range."""
+    low, high = recipe.survey.band(band).psf.fwhm.support
+    return 0.5 * (float(low) + float(high))
+
+
 def _psf_kernel(psf_path: str | Path | None, recipe: Recipe, band: str, pixel_scale: float,
                 image: "SurveyImage | None" = None, exclude=()) -> np.ndarray:
     if psf_path == "stars":
-        settings = recipe.survey.band(band).psf
-        fwhm = float(settings.fwhm.support[0] + settings.fwhm.support[1]) / 2.0
-        kernel, _ = empirical_psf(image.data, fwhm / pixel_scale, exclude=exclude)
+        kernel, _ = empirical_psf(image.data, _recipe_fwhm(recipe, band) / pixel_scale, exclude=exclude)
         return kernel
     if psf_path is not None:
         kernel = np.array(fits.getdata(psf_path), dtype=float)
@@ -223,7 +227,7 @@ def _psf_kernel(psf_path: str | Path | None, recipe: Recipe, band: str, pixel_sc
         import galsim
 
         settings = recipe.survey.band(band).psf
-        fwhm = float(settings.fwhm.support[0] + settings.fwhm.support[1]) / 2.0
+        fwhm = _recipe_fwhm(recipe, band)
         profile = (galsim.Moffat(beta=float(settings.beta.support[0]), fwhm=fwhm) if settings.profile == "moffat"
                    else galsim.Kolmogorov(fwhm=fwhm))
         n = 2 * int(math.ceil(2.5 * fwhm / pixel_scale)) + 1
@@ -273,8 +277,7 @@ def inject(image_path: str | Path, recipe: Recipe, lenses_path: str | Path, *, o
     (out / "cutouts").mkdir(parents=True, exist_ok=True)
     files: list = []
     if str(lenses_path) == "auto":
-        settings = recipe.survey.band(band).psf
-        lenses = select_lens_galaxies(image, recipe, band, float(sum(settings.fwhm.support)) / 2.0)
+        lenses = select_lens_galaxies(image, recipe, band, _recipe_fwhm(recipe, band))
         with atomic_path(out / "lenses_selected.ecsv") as tmp:
             lenses.write(tmp, format="ascii.ecsv")
         files.append("lenses_selected.ecsv")

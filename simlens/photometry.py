@@ -68,11 +68,6 @@ class Filter:
     wavelength: np.ndarray
     throughput: np.ndarray
 
-    @property
-    def effective_range(self) -> tuple[float, float]:
-        above = self.wavelength[self.throughput > 1e-3 * self.throughput.max()]
-        return float(above[0]), float(above[-1])
-
 
 @lru_cache(maxsize=64)
 def load_filter(spec: str, base_folder: str = ".") -> Filter:

@@ -306,10 +306,10 @@ def build_deflector(model: str, einstein_radius: float, q: float, angle: float, 
 
 def g_factor(system: "System", galaxy: "LineOfSightGalaxy") -> float:
     """Rescaling of a line-of-sight galaxy's deflection from the first source to the second."""
-    from .distances import DistanceTable
+    from .cosmology import distance_ratio
 
-    table = DistanceTable(system.cosmology) if system.cosmology is not None else None
-    return float(table.ratio(galaxy.z, system.second_source.z) / table.ratio(galaxy.z, system.z_source))
+    cosmo = system.cosmology
+    return distance_ratio(cosmo, galaxy.z, system.second_source.z) / distance_ratio(cosmo, galaxy.z, system.z_source)
 
 
 def multi_plane(main: MassModel, z_lens: float, line_of_sight: tuple, z_source: float, cosmology) -> MassModel:

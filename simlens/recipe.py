@@ -442,10 +442,6 @@ class SelectionSettings:
                                  doc="give up (with an error) after this many candidates for one system")
 
     @property
-    def any(self) -> bool:
-        return bool(self.cut_names)
-
-    @property
     def cut_names(self) -> tuple[str, ...]:
         names = []
         if self.einstein_radius is not None:
