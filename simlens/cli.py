@@ -38,7 +38,9 @@ def _make(args) -> int:
         return tqdm(total=total, initial=initial, desc=f"simlens {recipe.name}", unit="system",
                     disable=args.quiet, file=sys.stderr)
 
-    n_shards = -(-recipe.count // recipe.output.shard_size)
+    from .shard import part_size
+
+    n_shards = -(-recipe.count // part_size(recipe))
     if args.workers > n_shards and not args.quiet:
         print(f"simlens: note: {n_shards} shard(s) for {args.workers} workers; lower output.shard_size "
               f"to use them all", file=sys.stderr)
@@ -70,6 +72,10 @@ def _check(args) -> int:
     print(f"  survey {survey.name!r}: bands {', '.join(survey.band_names)} (reference {recipe.reference_band}); "
           f"{survey.cutout_size}x{survey.cutout_size} pixels of {survey.pixel_scale:g} arcsec; "
           f"supersampling {survey.supersampling}")
+    if recipe.field is not None:
+        from .field import describe_fields
+
+        print(f"  fields: {describe_fields(recipe)}")
     cells = recipe.grid_shape
     grid_text = " x ".join(str(n) for n in cells) if cells else "none"
     print(f"  {recipe.count} systems, seed {recipe.seed}; grid cells: {grid_text}")

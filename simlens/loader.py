@@ -33,6 +33,10 @@ def shard_files(run_folder: str | Path) -> list[Path]:
         raise SimlensError(f"{run_folder}: cannot read its manifest.json ({exc})") from None
     if manifest.get("status") != "complete":
         raise SimlensError(f"{run_folder}: the run is unfinished; run the same `simlens make` command to finish it")
+    if manifest.get("kind") == "fields":
+        raise SimlensError(f"{run_folder}: a field run: its images are whole fields (fields/field_*.fits, one "
+                           f"HDU per band, truth in truth.ecsv and field_objects.ecsv), not cutout shards; "
+                           f"read them with astropy.io.fits")
     shards = manifest["shards"]
     return [run_folder / next(iter(shards[k]["files"])) for k in sorted(shards, key=int)]
 

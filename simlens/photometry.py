@@ -3,7 +3,8 @@
 A :class:`Filter` is a throughput curve: one that GalSim ships (``"LSST_r"``, ``"ACS_wfc_F814W"``,
 ...) or a two-column text file (wavelength in nm, throughput).  A :class:`Template` is a rest-frame
 spectral energy distribution ``f_lambda``: GalSim's Coleman, Wu & Weedman (1980) templates (extended
-by Bolzonella et al. 2000) or a power law ``f_nu ~ nu^alpha`` for quasar continua.
+by Bolzonella et al. 2000), a power law ``f_nu ~ nu^alpha`` for quasar continua, or a black body
+for stars.
 
 Magnitudes are AB and photon-counting (the detector counts photons):
 
@@ -38,6 +39,7 @@ __all__ = ["Filter", "Template", "KCorrection", "kcorrection", "TEMPLATES", "loa
 
 _C_NM_S = 2.99792458e17  # speed of light in nm/s
 _AB_FNU = 3631e-23  # erg/s/cm^2/Hz
+_HC_OVER_K_NM_K = 1.438776877e7  # h c / k_B in nm K (second radiation constant, CODATA 2018)
 
 # Named templates: GalSim's CWW files, and a quasar continuum.
 TEMPLATES = {
@@ -104,6 +106,14 @@ class Template:
     @classmethod
     def power_law(cls, spectral_index: float = QUASAR_SPECTRAL_INDEX) -> "Template":
         return cls(name=f"power_law({spectral_index:g})", spectral_index=float(spectral_index))
+
+    @classmethod
+    def black_body(cls, temperature: float) -> "Template":
+        """Planck's law, ``f_lambda ~ lambda^-5 / (exp(hc / lambda k T) - 1)``, sampled every 1 nm
+        from 90 to 3000 nm (the colours of stars in the field images)."""
+        lam = np.arange(90.0, 3000.0 + 0.5, 1.0)
+        x = _HC_OVER_K_NM_K / (lam * float(temperature))
+        return cls(name=f"black_body({temperature:g} K)", wavelength=lam, flux=lam**-5.0 / np.expm1(x))
 
     def f_lambda(self, wavelength_nm) -> np.ndarray:
         lam = np.asarray(wavelength_nm, dtype=float)

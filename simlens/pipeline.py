@@ -77,7 +77,13 @@ def run(recipe: Recipe, out: Path | str | None = None, *, overwrite: bool = Fals
     todo = [spec for spec in plan if spec.index not in folder.finished]
     done_systems = recipe.count - sum(spec.n_systems for spec in todo)
     bar = progress(recipe.count, done_systems) if progress is not None else None
-    task = functools.partial(render_shard, recipe, str(out))
+    fields = recipe.field is not None
+    if fields:
+        from .field import render_field
+
+        task = functools.partial(render_field, recipe, str(out))
+    else:
+        task = functools.partial(render_shard, recipe, str(out))
     try:
         for result in run_tasks(task, todo, engine=engine, workers=workers, scheduler=scheduler):
             folder.record(result)
@@ -96,20 +102,25 @@ def run(recipe: Recipe, out: Path | str | None = None, *, overwrite: bool = Fals
         write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i], "IMAGE_TRUTH"), len(plan), out, "images")
         write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i], "LINE_OF_SIGHT"), len(plan), out,
                         "line_of_sight")
+        if fields:
+            write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i], "OBJECTS"), len(plan), out,
+                            "field_objects")
     except OSError as exc:
         raise _write_error(out, exc) from None
     seconds = time.perf_counter() - t_start
     sampler = PopulationSampler(recipe)
     attrition = sum_attrition(entry.get("selection", {}) for entry in folder.manifest["shards"].values())
+    catalogues = ["truth", "subhalos", "images", "line_of_sight"] + (["field_objects"] if fields else [])
+    files = {name: [f"{name}.fits", f"{name}.ecsv"] for name in catalogues}
+    if fields:
+        files.update(fields="fields/field_*.fits", regions="fields/field_*.reg")
+    else:
+        files.update(shards="shards/shard_*.fits",
+                     cutouts="cutouts/system_*.fits" if recipe.output.per_system_files else None)
     folder.complete({
         "grid_cells": sampler.n_grid_cells, "cosmology": repr(sampler.cosmology),
-        "files": {"shards": "shards/shard_*.fits", "truth": ["truth.fits", "truth.ecsv"],
-                  "subhalos": ["subhalos.fits", "subhalos.ecsv"], "images": ["images.fits", "images.ecsv"],
-                  "line_of_sight": ["line_of_sight.fits", "line_of_sight.ecsv"],
-                  "cutouts": "cutouts/system_*.fits" if recipe.output.per_system_files else None},
-        "truth": {name: sha256_of(out / name) for name in ("truth.fits", "truth.ecsv", "subhalos.fits", "subhalos.ecsv",
-                                                         "images.fits", "images.ecsv", "line_of_sight.fits",
-                                                         "line_of_sight.ecsv")},
+        "files": files,
+        "truth": {name: sha256_of(out / name) for c in catalogues for name in (f"{c}.fits", f"{c}.ecsv")},
         "selection": attrition,
         "seconds_last_session": round(seconds, 3),
         "engine": resolve_engine(engine, workers, scheduler), "workers": workers,

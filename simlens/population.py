@@ -428,8 +428,11 @@ class PopulationSampler:
     which asks for the next candidate with ``draw(system_id, first_candidate=k)``.
     """
 
-    def __init__(self, recipe: Recipe):
+    def __init__(self, recipe: Recipe, conditions: tuple | None = None):
+        """``conditions``: BandConditions (survey order) that every system takes instead of its
+        own draw -- the one set of seeing, sky and depth of a field image."""
         self.recipe = recipe
+        self.conditions = conditions
         self.cosmology = recipe.cosmology.build()
         self.distances = DistanceTable(self.cosmology)
         self._parameters = list(recipe.parameters())
@@ -672,7 +675,7 @@ class PopulationSampler:
             quasar_mags = {b: v["source.quasar.magnitude"] + colours[b] for b in band_names}
 
         # -- observing conditions ------------------------------------------------------------
-        bands = tuple(
+        bands = self.conditions or tuple(
             BandConditions(
                 name=b.name, pixel_scale=recipe.survey.pixel_scale,
                 zero_point=v[f"survey.bands.{b.name}.zero_point"],

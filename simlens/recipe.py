@@ -50,6 +50,9 @@ __all__ = [
     "SourcePositionSettings",
     "ClumpSettings",
     "OutputSettings",
+    "FieldSettings",
+    "FieldGalaxySettings",
+    "FieldStarSettings",
     "SelectionSettings",
     "SecondSourceSettings",
     "LineOfSightSettings",
@@ -476,6 +479,54 @@ class NegativeSettings:
 
 
 @dataclass(frozen=True, kw_only=True)
+class FieldGalaxySettings:
+    band: str = text(optional=True, doc="band of the counts and magnitude range (default: source.counts.band, "
+                                         "else the reference band)")
+    magnitude_range: tuple = interval((18.0, 25.5), low=5.0, high=35.0, unit="mag",
+                                      doc="magnitudes of the background galaxies in the counts band")
+    redshift_range: tuple = interval((0.02, 4.0), low=0.0, high=7.0, doc="their redshifts")
+    density: float = number(46.0, low=0, unit="arcmin^-2",
+                            doc="N(< pivot); 0: no galaxies (default: LSST Science Book 2009, i band, from memory)")
+    pivot: float = number(25.0, low=5, high=35, unit="mag", doc="pivot magnitude of the counts")
+    slope: float = number(0.31, low=0.01, high=1.0, doc="N(<m) ~ 10^(slope m)")
+    early_type_fraction: float = number(0.2, low=0, high=1,
+                                        doc="share of early types (de Vaucouleurs, elliptical template); "
+                                            "illustrative, from memory")
+    max_half_light_radius: float = number(5.0, low=0, low_open=True, unit="arcsec",
+                                          doc="sizes are capped here (the brightest nearby galaxies)")
+    lens_clearance: float = number(2.5, low=0, unit="Einstein radii",
+                                   doc="no background galaxy centre this close to a lens (it would be lensed)")
+
+
+@dataclass(frozen=True, kw_only=True)
+class FieldStarSettings:
+    magnitude_range: tuple = interval((16.0, 25.5), low=5.0, high=35.0, unit="mag",
+                                      doc="magnitudes of the stars in the reference band")
+    density: float = number(0.4, low=0, unit="arcmin^-2",
+                            doc="N(< pivot); 0: no stars (illustrative high-latitude value, from memory)")
+    pivot: float = number(21.0, low=5, high=35, unit="mag", doc="pivot magnitude of the star counts")
+    slope: float = number(0.12, low=0.01, high=1.0,
+                          doc="N(<m) ~ 10^(slope m) (faint high-latitude counts; illustrative, from memory)")
+    temperature_range: tuple = interval((3500.0, 7500.0), low=1000.0, high=50000.0, unit="K",
+                                        doc="black-body temperatures for the star colours (uniform)")
+
+
+@dataclass(frozen=True, kw_only=True)
+class FieldSettings:
+    size: int = number(2048, low=64, high=16384, integer=True, unit="pixel", doc="field image side")
+    lenses: int = number(10, low=1, high=100_000, integer=True,
+                         doc="lens systems per field (the recipe's count is spread over the fields)")
+    lens_stamp_size: int = number(128, low=16, high=4096, integer=True, unit="pixel",
+                                  doc="side of the stamp each lens system is rendered on")
+    galaxies: FieldGalaxySettings = table(FieldGalaxySettings, doc="unlensed background galaxies")
+    stars: FieldStarSettings = table(FieldStarSettings, doc="stars")
+
+    def cells_per_side(self) -> int:
+        """Lenses sit in distinct cells of a grid of stamp-sized cells (no two stamps overlap)."""
+        return self.size // self.lens_stamp_size
+
+
+@dataclass(frozen=True, kw_only=True)
 class OutputSettings:
     shard_size: int = number(100, low=1, high=100_000, integer=True,
                              doc="systems per shard file (the unit of parallel work and of resuming)")
@@ -498,6 +549,8 @@ class Recipe:
     selection: SelectionSettings = table(SelectionSettings, doc="cuts on the truth")
     negatives: NegativeSettings = table(NegativeSettings, doc="labelled non-lenses: classes and their share")
     output: OutputSettings = table(OutputSettings, doc="what a run writes")
+    field: FieldSettings = table(FieldSettings, optional=True,
+                                 doc="make whole survey fields with lenses at known places instead of cutouts")
     name: str = text("simlens-run", doc="run name (default: the recipe file's stem)")
     count: int = number(100, low=1, high=10_000_000, integer=True, doc="number of systems")
     seed: int = number(0, low=0, high=2**63 - 1, integer=True, doc="random seed of the run")
@@ -848,6 +901,8 @@ def _check_consistency(recipe: Recipe) -> None:
     for path, settings in (("lens.light.scaling", lens.light.scaling), ("source.counts", source.counts)):
         if settings is not None:
             _check_filter(origin, f"{path}.rest_filter", settings.rest_filter, base)
+    if recipe.field is not None:
+        _check_field(recipe, needs_filters)
     neg = recipe.negatives
     if neg.fraction > 0 and sum(neg.weights().values()) <= 0:
         raise RecipeError(origin, "negatives", f"fraction = {neg.fraction:g} but every class weight is 0",
@@ -928,6 +983,36 @@ def _check_consistency(recipe: Recipe) -> None:
     elif cosmo.H0 is None or cosmo.Om0 is None:
         raise RecipeError(origin, "cosmology", "needs a name or both H0 and Om0",
                           "name = 'Planck18', or H0 = 70, Om0 = 0.3")
+
+
+def _check_field(recipe: Recipe, needs_filters: list) -> None:
+    origin, f = recipe.origin, recipe.field
+    if f.lens_stamp_size > f.size:
+        raise RecipeError(origin, "field.lens_stamp_size", f"{f.lens_stamp_size} is larger than the field ({f.size})",
+                          "a stamp smaller than field.size")
+    cells = f.cells_per_side() ** 2
+    if f.lenses > cells:
+        raise RecipeError(origin, "field.lenses", f"{f.lenses} lenses do not fit: the field holds {cells} "
+                          f"non-overlapping stamps of {f.lens_stamp_size} pixels",
+                          f"at most {cells}, a larger field.size or a smaller field.lens_stamp_size")
+    if f.lens_stamp_size < recipe.survey.cutout_size:
+        raise RecipeError(origin, "field.lens_stamp_size", f"{f.lens_stamp_size} is smaller than the cutout "
+                          f"({recipe.survey.cutout_size})", "at least survey.cutout_size")
+    names = recipe.survey.band_names
+    if f.galaxies.band is not None and f.galaxies.band not in names:
+        raise RecipeError(origin, "field.galaxies.band", f"{f.galaxies.band!r} is not a band",
+                          ", ".join(repr(n) for n in names))
+    if f.galaxies.density > 0:
+        missing = [b.name for b in recipe.survey.bands if b.filter is None]
+        if missing:
+            raise RecipeError(origin, f"survey.bands.{missing[0]}.filter", "is missing",
+                              "a filter curve for the background galaxies' template colours (or "
+                              "field.galaxies.density = 0)")
+    if f.stars.density > 0:
+        missing = [b.name for b in recipe.survey.bands if b.filter is None]
+        if missing:
+            raise RecipeError(origin, f"survey.bands.{missing[0]}.filter", "is missing",
+                              "a filter curve for the stars' black-body colours (or field.stars.density = 0)")
 
 
 def _check_either(origin: str, where: str, table_given: bool, table_name: str, keys: Mapping,

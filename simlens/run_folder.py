@@ -22,7 +22,7 @@ from .output.atomic import atomic_path
 from .output.checksums import sha256_of
 from .output.manifest import package_versions
 from .recipe import Recipe
-from .shard import ShardResult
+from .shard import ShardResult, part_size
 
 __all__ = ["RunFolder", "VerifyReport", "verify_run"]
 
@@ -33,7 +33,7 @@ FORMAT = "simlens-run/1"
 def recipe_identity(recipe: Recipe) -> dict:
     """What must match for a run folder to be resumed with this recipe."""
     return {"recipe_sha256": hashlib.sha256(recipe.source_text.encode("utf-8")).hexdigest(),
-            "seed": recipe.seed, "count": recipe.count, "shard_size": recipe.output.shard_size,
+            "seed": recipe.seed, "count": recipe.count, "shard_size": part_size(recipe),
             "per_system_files": recipe.output.per_system_files, "simlens": __version__}
 
 
@@ -72,7 +72,7 @@ class RunFolder:
                 folder._drop_damaged_shards()
                 return folder
         try:
-            (path / "shards").mkdir(parents=True, exist_ok=True)
+            (path / ("fields" if recipe.field is not None else "shards")).mkdir(parents=True, exist_ok=True)
             if recipe.output.per_system_files:
                 (path / "cutouts").mkdir(exist_ok=True)
         except OSError as exc:
@@ -81,7 +81,8 @@ class RunFolder:
         folder = cls(path, {
             "format": FORMAT, "simlens_run": recipe.name, "status": "running",
             "identity": recipe_identity(recipe), "recipe_file": recipe.origin, "recipe_text": recipe.source_text,
-            "seed": recipe.seed, "count": recipe.count, "shard_size": recipe.output.shard_size,
+            "seed": recipe.seed, "count": recipe.count, "shard_size": part_size(recipe),
+            "kind": "fields" if recipe.field is not None else "cutouts",
             "bands": list(recipe.survey.band_names), "reference_band": recipe.reference_band,
             "started_utc": _now(), "shards": {}, "seconds_by_stage": {}, "versions": package_versions()})
         folder.save()

@@ -32,6 +32,7 @@ __all__ = [
     "Grid",
     "Parameter",
     "system_streams",
+    "field_streams",
     "grid_cell",
 ]
 
@@ -248,6 +249,18 @@ def system_streams(seed: int, system_id: int, names: Sequence[str], candidate: i
     """
     key = (int(system_id),) if candidate == 0 else (int(system_id), int(candidate))
     root = np.random.SeedSequence(entropy=int(seed), spawn_key=key)
+    return _Streams(names, root.generate_state(2 * len(names), np.uint64))
+
+
+# Spawn-key tag of field streams: system streams use keys of one or two words, so a three-word key
+# never meets one of them.
+_FIELD_TAG = 0x6669656C64  # "field"
+
+
+def field_streams(seed: int, field_index: int, names: Sequence[str]) -> dict[str, np.random.Generator]:
+    """Independent generators for one field image (lens places, background objects, noise), apart
+    from every system's streams; they depend only on ``(seed, field_index)``."""
+    root = np.random.SeedSequence(entropy=int(seed), spawn_key=(int(field_index), 0, _FIELD_TAG))
     return _Streams(names, root.generate_state(2 * len(names), np.uint64))
 
 

@@ -25,7 +25,7 @@ from .population import PopulationSampler
 from .recipe import Recipe
 from .selection import merge_attrition, select_and_render
 
-__all__ = ["ShardSpec", "ShardResult", "shard_plan", "render_shard", "shard_path", "cutout_path"]
+__all__ = ["ShardSpec", "ShardResult", "shard_plan", "part_size", "render_shard", "shard_path", "cutout_path"]
 
 
 @dataclass(frozen=True)
@@ -43,8 +43,14 @@ class ShardResult:
     selection: dict = field(default_factory=dict)  # attrition: accepted, candidates, rejected_by
 
 
+def part_size(recipe: Recipe) -> int:
+    """Systems per unit of work: a shard (``output.shard_size``), or a field (``field.lenses``)."""
+    return recipe.field.lenses if recipe.field is not None else recipe.output.shard_size
+
+
 def shard_plan(recipe: Recipe) -> list[ShardSpec]:
-    size = recipe.output.shard_size
+    """The units of work of a run: shards of cutouts, or the fields of a field run."""
+    size = part_size(recipe)
     return [ShardSpec(i, first, min(size, recipe.count - first))
             for i, first in enumerate(range(0, recipe.count, size))]
 
@@ -54,8 +60,11 @@ def _digits(n: int) -> int:
 
 
 def shard_path(recipe: Recipe, index: int) -> str:
-    n_shards = -(-recipe.count // recipe.output.shard_size)
-    return f"shards/shard_{index:0{_digits(n_shards)}d}.fits"
+    """The file of unit ``index``: a shard, or in a field run the field image (see simlens.field)."""
+    n_parts = -(-recipe.count // part_size(recipe))
+    if recipe.field is not None:
+        return f"fields/field_{index:0{_digits(n_parts)}d}.fits"
+    return f"shards/shard_{index:0{_digits(n_parts)}d}.fits"
 
 
 def cutout_path(recipe: Recipe, system_id: int) -> str:

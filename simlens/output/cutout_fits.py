@@ -33,7 +33,7 @@ from astropy.wcs import WCS
 from ..render import RenderedSystem
 from .atomic import atomic_path
 
-__all__ = ["cutout_wcs", "write_cutout", "read_cutout"]
+__all__ = ["cutout_wcs", "band_keywords", "write_cutout", "read_cutout"]
 
 
 def cutout_wcs(ra: float, dec: float, pixel_scale: float, size: int) -> WCS:
@@ -54,7 +54,12 @@ def _image_hdu(data: np.ndarray, name: str, content: str, rendered: RenderedSyst
     system = rendered.system
     header = cutout_wcs(system.ra, system.dec, band.pixel_scale, data.shape[0]).to_header()
     hdu = fits.ImageHDU(data=data.astype(np.float32), header=header, name=name)
-    h = hdu.header
+    band_keywords(hdu.header, band, content)
+    return hdu
+
+
+def band_keywords(h: fits.Header, band, content: str) -> None:
+    """The band's observing keywords (see the module docstring) written into header ``h``."""
     h["BAND"] = (band.name, "band name from the recipe")
     h["CONTENT"] = (content, "what this image holds")
     h["BUNIT"] = ("adu" if content != "psf" else "", "pixel units" if content != "psf" else "unit sum")
@@ -69,7 +74,6 @@ def _image_hdu(data: np.ndarray, name: str, content: str, rendered: RenderedSyst
     if band.psf_profile == "moffat":
         h["PSFBETA"] = (band.psf_beta, "Moffat beta")
     h["PIXSCALE"] = (band.pixel_scale, "[arcsec/pixel] pixel scale")
-    return hdu
 
 
 def write_cutout(rendered: RenderedSystem, path: Path, run_name: str = "") -> None:
