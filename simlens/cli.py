@@ -4,7 +4,8 @@
                         [--workers N] [--engine auto|serial|processes|dask] [--scheduler ADDRESS]
     simlens check RECIPE
     simlens verify RUN_DIR
-    simlens score RUN_DIR SCORES (--threshold T | --fpr F) [--by COLUMN ...] [--pair X Y]
+    simlens score RUN_DIR SCORES (--threshold T | --fpr F | --fp-density D) [--by COLUMN ...] [--pair X Y]
+                  [--match-radius ARCSEC]
     simlens inject IMAGE.fits --recipe RECIPE --lenses CATALOG [--psf PSF.fits] [--out DIR]
     simlens gallery RUN_DIR [--where "COLUMN OP VALUE" ...] [--missed SCORES --threshold T] [--sort COLUMN]
 
@@ -116,6 +117,20 @@ def _check(args) -> int:
 def _score(args) -> int:
     from .scoring import score_run
 
+    if (Path(args.run_dir) / "fields").is_dir():
+        from .field_scoring import score_fields
+
+        if args.fpr is not None:
+            raise SimlensError("a field run has no non-lens cutouts to take a false-positive rate of; "
+                               "use --threshold or --fp-density (false positives per deg^2)")
+        report = score_fields(args.run_dir, args.scores, threshold=args.threshold,
+                              false_positives_per_deg2=args.fp_density, match_radius=args.match_radius,
+                              columns=args.by, pair=args.pair, n_bins=args.bins, name=args.name,
+                              plots=not args.no_plots)
+        print(report.describe())
+        return 0
+    if args.fp_density is not None:
+        raise SimlensError("--fp-density is for field runs (detections in whole images); use --fpr or --threshold")
     report = score_run(args.run_dir, args.scores, threshold=args.threshold, false_positive_rate=args.fpr,
                        columns=args.by, pair=args.pair, n_bins=args.bins, name=args.name, plots=not args.no_plots)
     print(report.describe())
@@ -206,10 +221,16 @@ def build_parser() -> argparse.ArgumentParser:
 
     score = verbs.add_parser("score", help="completeness, purity and ROC of a finder's scores against a run's truth")
     score.add_argument("run_dir", help="finished run folder")
-    score.add_argument("scores", help="table of system_id, score (CSV, ECSV or FITS); higher = more lens-like")
+    score.add_argument("scores", help="table of system_id, score (CSV, ECSV or FITS); higher = more lens-like. "
+                                      "For a field run: detections with field_id, x_pixel and y_pixel "
+                                      "(or ra and dec) and score")
     which = score.add_mutually_exclusive_group(required=True)
     which.add_argument("--threshold", type=float, help="score threshold: systems at or above it are found")
     which.add_argument("--fpr", type=float, help="choose the threshold giving this false-positive rate")
+    which.add_argument("--fp-density", type=float, metavar="PER_DEG2",
+                       help="field runs: choose the threshold giving at most this many false positives per deg^2")
+    score.add_argument("--match-radius", type=float, default=3.0, metavar="ARCSEC",
+                       help="field runs: a detection within this distance of a lens finds it (default 3)")
     score.add_argument("--by", nargs="+", metavar="COLUMN",
                        help="truth columns for completeness (default: Einstein radius, source magnitude, arc S/N, "
                             "seeing, lens magnitude in the reference band)")

@@ -30,7 +30,9 @@ from astropy.table import Table
 from .errors import SimlensError
 
 __all__ = ["read_scores", "lens_labels", "roc_curve", "roc_area", "threshold_for_false_positive_rate",
-           "completeness_by", "completeness_2d", "ScoreReport", "score_run", "CONFIDENCE"]
+           "completeness_by", "completeness_2d", "wilson_interval", "plot_tables", "describe_tables",
+           "write_report", "ScoreReport", "score_run",
+           "CONFIDENCE"]
 
 CONFIDENCE = 0.6827  # one-sigma binomial intervals
 
@@ -107,7 +109,8 @@ def threshold_for_false_positive_rate(labels, scores, rate: float) -> float:
     return float(thresholds[ok[-1]])
 
 
-def _interval(k, n) -> tuple[np.ndarray, np.ndarray]:
+def wilson_interval(k, n) -> tuple[np.ndarray, np.ndarray]:
+    """Wilson score intervals (CONFIDENCE) of k successes in n trials; nan where n = 0."""
     k, n = np.atleast_1d(k), np.atleast_1d(n)
     lo, hi = np.full(k.shape, np.nan), np.full(k.shape, np.nan)
     ok = n > 0
@@ -137,7 +140,7 @@ def completeness_by(table: Table, column: str, threshold: float, n_bins: int = 6
     inside = np.isfinite(values) & (values >= edges[0]) & (values <= edges[-1])
     n = np.bincount(index[inside], minlength=edges.size - 1)
     k = np.bincount(index[inside], weights=found[inside].astype(float), minlength=edges.size - 1).astype(int)
-    lo, hi = _interval(k, n)
+    lo, hi = wilson_interval(k, n)
     with np.errstate(invalid="ignore", divide="ignore"):
         frac = np.where(n > 0, k / np.maximum(n, 1), np.nan)
     out = Table({f"{column}_low": edges[:-1], f"{column}_high": edges[1:], "n_lenses": n, "n_found": k,
@@ -163,7 +166,7 @@ def completeness_2d(table: Table, x: str, y: str, threshold: float, n_bins: int 
         for j in range(ey.size - 1):
             cell = (ix == i) & (iy == j) & np.isfinite(vx) & np.isfinite(vy)
             n, k = int(cell.sum()), int((found & cell).sum())
-            lo, hi = _interval(k, n)
+            lo, hi = wilson_interval(k, n)
             rows.append((ex[i], ex[i + 1], ey[j], ey[j + 1], n, k, k / n if n else math.nan, lo[0], hi[0]))
     out = Table(rows=rows, names=(f"{x}_low", f"{x}_high", f"{y}_low", f"{y}_high", "n_lenses", "n_found",
                                   "completeness", "interval_low", "interval_high"))
@@ -194,13 +197,33 @@ class ScoreReport:
         for row in self.by_class:
             lines.append(f"  non-lenses of class {row['negative_class']}: {row['n_found']}/{row['n']} above "
                          f"threshold ({row['false_positive_rate']:.4f})")
-        for name, table in self.tables.items():
-            if name.startswith("completeness_") and "n_lenses" in table.colnames and len(table.colnames) == 7:
-                column = table.colnames[0][: -len("_low")]
-                cells = ", ".join(f"{r[0]:.3g}-{r[1]:.3g}: {r['completeness']:.2f}" for r in table)
-                lines.append(f"  completeness by {column}: {cells}")
-        lines += [f"  wrote {f}" for f in self.files]
-        return "\n".join(lines)
+        return "\n".join(lines + describe_tables(self.tables, self.files))
+
+
+def describe_tables(tables: dict, files: list) -> list[str]:
+    """Summary lines of a report's 1D completeness tables and of the files written."""
+    lines = []
+    for name, table in tables.items():
+        if name.startswith("completeness_") and "n_lenses" in table.colnames and len(table.colnames) == 7:
+            column = table.colnames[0][: -len("_low")]
+            cells = ", ".join(f"{r[0]:.3g}-{r[1]:.3g}: {r['completeness']:.2f}" for r in table)
+            lines.append(f"  completeness by {column}: {cells}")
+    return lines + [f"  wrote {f}" for f in files]
+
+
+def write_report(report, out: Path, plots: bool, plotter=None) -> None:
+    """Write a report's tables (ECSV), plots (PNG, by ``plotter``, default :func:`plot_tables`) and
+    summary.txt into ``out``; the paths go to ``report.files``."""
+    out.mkdir(parents=True, exist_ok=True)
+    for table_name, t in report.tables.items():
+        path = out / f"{table_name}.ecsv"
+        t.write(path, format="ascii.ecsv", overwrite=True)
+        report.files.append(str(path))
+    if plots:
+        report.files += (plotter or plot_tables)(report, out)
+    summary = out / "summary.txt"
+    summary.write_text(report.describe() + "\n", encoding="utf-8")
+    report.files.append(str(summary))
 
 
 def default_columns(truth: Table, reference_band: str) -> list[str]:
@@ -242,7 +265,7 @@ def score_run(run_dir: str | Path, scores_path: str | Path, *, threshold: float 
     n_pos, n_neg = int(labels.sum()), int((~labels).sum())
     selected = values >= threshold
     k = int((selected & labels).sum())
-    lo, hi = _interval(k, n_pos) if n_pos else (np.array([np.nan]), np.array([np.nan]))
+    lo, hi = wilson_interval(k, n_pos) if n_pos else (np.array([np.nan]), np.array([np.nan]))
     purity = k / int(selected.sum()) if selected.any() else math.nan
     fp = int((selected & ~labels).sum())
     area = roc_area(labels, values) if n_pos and n_neg else math.nan
@@ -280,17 +303,7 @@ def score_run(run_dir: str | Path, scores_path: str | Path, *, threshold: float 
         fpr, tpr, thr = roc_curve(labels, values)
         report.tables["roc"] = Table({"false_positive_rate": fpr, "true_positive_rate": tpr, "threshold": thr})
     report.tables["false_positives_by_class"] = by_class
-    out = run_dir / "scores" / name
-    out.mkdir(parents=True, exist_ok=True)
-    for table_name, t in report.tables.items():
-        path = out / f"{table_name}.ecsv"
-        t.write(path, format="ascii.ecsv", overwrite=True)
-        report.files.append(str(path))
-    if plots:
-        report.files += _plots(report, out)
-    summary = out / "summary.txt"
-    summary.write_text(report.describe() + "\n", encoding="utf-8")
-    report.files.append(str(summary))
+    write_report(report, run_dir / "scores" / name, plots)
     return report
 
 
@@ -305,7 +318,8 @@ def _reference_band(run_dir: Path, truth: Table) -> str:
         return bands[0] if bands else ""
 
 
-def _plots(report: ScoreReport, out: Path) -> list[str]:
+def plot_tables(report, out: Path) -> list[str]:
+    """PNG plots of a report's ROC and completeness tables (other tables are skipped)."""
     import matplotlib
 
     matplotlib.use("Agg")

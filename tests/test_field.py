@@ -231,3 +231,61 @@ def test_impossible_field_layouts_are_clear_errors():
     with pytest.raises(RecipeError, match="background galaxies"):
         parse_recipe(no_filters)
     parse_recipe(no_filters + NO_BACKGROUND)  # without a background no filter curve is needed
+
+
+def _detections(truth, offsets_arcsec, scores, extra=()):
+    """Detections offset along +x from the given truth rows, plus extra (field, x, y, score) ones."""
+    rows = [(int(truth["field_id"][k]), truth["x_pixel"][k] + dx / 0.2, truth["y_pixel"][k], s)
+            for k, dx, s in zip(range(len(truth)), offsets_arcsec, scores) if dx is not None]
+    rows += list(extra)
+    return Table(rows=rows, names=("field_id", "x_pixel", "y_pixel", "score"))
+
+
+def test_field_detections_are_scored_by_position(plain_field_run, tmp_path):
+    from simlens.field_scoring import score_fields
+
+    recipe, out = plain_field_run
+    truth = Table.read(out / "truth.fits")
+    assert truth["is_lens"].all()
+    # Worked example by hand: lens 0 found at 1" (and again, weaker), lens 1 missed, lens 2 found at
+    # 2.5", lens 3's detection 4" away (beyond the 3" radius: a false positive), one stray detection.
+    a, b, c, d = truth[0], truth[1], truth[2], truth[3]
+    assert (a["field_id"], b["field_id"], c["field_id"], d["field_id"]) == (0, 0, 1, 1)
+    detections = _detections(truth, [1.0, None, 2.5, 4.0], [0.9, None, 0.7, 0.95],
+                             extra=[(0, a["x_pixel"], a["y_pixel"] + 3.0, 0.5), (1, 10.0, 10.0, 0.3)])
+    detections.write(tmp_path / "found.csv", format="ascii.csv")
+    area = 2 * (256 * 0.2 / 3600.0) ** 2
+    report = score_fields(out, tmp_path / "found.csv", threshold=0.6, columns=["einstein_radius"], n_bins=2,
+                          plots=False)
+    assert report.completeness == 0.5 and report.false_positives == 1
+    assert report.purity == pytest.approx(2 / 3) and report.area_deg2 == pytest.approx(area)
+    assert report.false_positives_per_deg2 == pytest.approx(1 / area)
+    # the loosest threshold with at most 1.5 false positives per field area: 0.5 (a duplicate of lens 0
+    # is no false positive; the stray one at 0.3 would be the second)
+    report = score_fields(out, tmp_path / "found.csv", false_positives_per_deg2=1.5 / area, plots=False, name="fp")
+    assert report.threshold == 0.5 and report.false_positives == 1 and report.completeness == 0.5
+    curve = Table.read(out / "scores/fp/completeness_vs_false_positives.ecsv")
+    assert list(curve["false_positives"]) == [1, 1, 1, 1, 2] and list(curve["n_found"]) == [0, 1, 2, 2, 2]
+    # the same detections in sky coordinates (through each field's WCS, astropy) match the same way
+    sky = []
+    for row in detections:
+        with fits.open(out / f"fields/field_{row['field_id']:05d}.fits") as hdul:
+            ra, dec = WCS(hdul["R"].header).pixel_to_world_values(row["x_pixel"], row["y_pixel"])
+        sky.append((row["field_id"], float(ra), float(dec), row["score"]))
+    Table(rows=sky, names=("field_id", "ra", "dec", "score")).write(tmp_path / "sky.ecsv")
+    again = score_fields(out, tmp_path / "sky.ecsv", threshold=0.6, plots=False, name="sky")
+    assert (again.completeness, again.false_positives) == (0.5, 1)
+
+
+def test_score_cli_on_a_field_run(plain_field_run, tmp_path, capsys):
+    from simlens.cli import main
+
+    recipe, out = plain_field_run
+    truth = Table.read(out / "truth.fits")
+    _detections(truth, [0.0] * len(truth), [1.0] * len(truth)).write(tmp_path / "all.csv", format="ascii.csv")
+    assert main(["score", str(out), str(tmp_path / "all.csv"), "--threshold", "0.5", "--name", "cli"]) == 0
+    printed = capsys.readouterr().out
+    assert "completeness 1.000" in printed and "0 false positives" in printed
+    assert (out / "scores/cli/completeness_vs_false_positives.png").is_file()
+    assert main(["score", str(out), str(tmp_path / "all.csv"), "--fpr", "0.1"]) == 2
+    assert "field run" in capsys.readouterr().err
