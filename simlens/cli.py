@@ -87,7 +87,7 @@ def _check(args) -> int:
         print(f"    {path:<42} {param.describe()}")
     sampler = PopulationSampler(recipe)
     n = min(recipe.count, args.sample)
-    systems = [sampler.draw(i) for i in range(n)]
+    systems = sampler.draw_many(range(n))
     theta = np.array([s.einstein_radius for s in systems])
     mags = np.array([s.source_magnitude(recipe.reference_band) for s in systems])
     z_l, z_s = np.array([s.z_lens for s in systems]), np.array([s.z_source for s in systems])

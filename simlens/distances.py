@@ -125,6 +125,8 @@ class DistanceTable:
         d_l, d_s = self.angular_diameter(z_lens), self.angular_diameter(z_source)
         return (1.0 + np.asarray(z_lens)) * d_l * d_s / self.between(z_lens, z_source)
 
-    def fermat_to_days(self, z_lens, z_source) -> float:
-        """Days of delay per arcsec^2 of Fermat potential: ``(1 + z_l)/c D_l D_s/D_ls`` (rad^2)."""
-        return float(self.time_delay_distance(z_lens, z_source)) * MPC_IN_KM / C_KM_S * _ARCSEC**2 / SECONDS_PER_DAY
+    def fermat_to_days(self, z_lens, z_source):
+        """Days of delay per arcsec^2 of Fermat potential: ``(1 + z_l)/c D_l D_s/D_ls`` (rad^2); a
+        float for scalar redshifts, else an array."""
+        days = self.time_delay_distance(z_lens, z_source) * MPC_IN_KM / C_KM_S * _ARCSEC**2 / SECONDS_PER_DAY
+        return float(days) if np.ndim(days) == 0 else days

@@ -44,6 +44,16 @@ class _BandK:
         values = self._k[:, i] * (1.0 - w) + self._k[:, i + 1] * w
         return dict(zip(self.bands, values.tolist()))
 
+    def at_many(self, z: np.ndarray) -> np.ndarray:
+        """K of every band (rows) at every redshift (columns): :meth:`at` on arrays."""
+        z = np.asarray(z, dtype=float)
+        if np.any(z < 0.0) or np.any(z > self.z_max):
+            raise ValueError(f"K-correction table covers 0 <= z <= {self.z_max:g}; got {z.min():g}..{z.max():g}")
+        f = z / self._step
+        i = np.minimum(f.astype(np.int64), self._z.size - 2)
+        w = f - i
+        return self._k[:, i] * (1.0 - w) + self._k[:, i + 1] * w
+
 
 def _arcsec(size_kpc: float, d_a_mpc: float) -> float:
     return size_kpc / (d_a_mpc * 1e3) * ARCSEC_PER_RADIAN
@@ -73,19 +83,31 @@ class LensLightModel:
         self.k = _BandK({b: kcorrection(settings.template, f, settings.rest_filter, base)
                          for b, f in band_filters.items()})
 
+    NORMALS = 4  # standard normals per galaxy: luminosity, size, axis ratio, angle
+
     def draw(self, sigma: float, z: float, mass_q: float, mass_angle: float, rng) -> LensLight:
+        return self.draw_many([sigma], [z], [mass_q], [mass_angle], rng.standard_normal(size=(1, self.NORMALS)))[0]
+
+    def draw_many(self, sigma, z, mass_q, mass_angle, normals: np.ndarray) -> list[LensLight]:
+        """One galaxy per entry, from NORMALS standard normals each (``normals`` of shape (n, 4)):
+        the same galaxies as :meth:`draw` given a generator that yields those normals."""
         s = self.settings
-        absolute = self.faber_jackson.draw(sigma, rng)
-        r_kpc = self.plane.draw_radius(sigma, absolute, rng)
-        modulus = float(self.distances.distance_modulus(z))
-        mags = {b: absolute + modulus + k for b, k in self.k.at(z).items()}
-        q = float(np.clip(mass_q + s.q_scatter * rng.standard_normal(), MIN_LIGHT_AXIS_RATIO, 1.0))
-        angle = mass_angle + s.angle_scatter * rng.standard_normal()
+        sigma, z = np.asarray(sigma, dtype=float), np.asarray(z, dtype=float)
+        fj, plane = self.faber_jackson, self.plane
+        absolute = fj.mean_magnitude(sigma) + fj.scatter * normals[:, 0]
+        r_kpc = 10 ** (plane.mean_log_radius(sigma, absolute) + plane.scatter * normals[:, 1])
+        modulus = self.distances.distance_modulus(z)
+        k = self.k.at_many(z)
+        q = np.clip(np.asarray(mass_q, dtype=float) + s.q_scatter * normals[:, 2], MIN_LIGHT_AXIS_RATIO, 1.0)
+        angle = np.asarray(mass_angle, dtype=float) + s.angle_scatter * normals[:, 3]
         luminosity = 10 ** (-0.4 * (absolute - SUN_ABSOLUTE_MAGNITUDE_R))
-        stellar = luminosity * s.mass_to_light if s.mass_to_light is not None else math.nan
-        return LensLight(absolute_magnitude=absolute, luminosity=luminosity, stellar_mass=stellar,
-                         magnitudes=mags, half_light_radius=_arcsec(r_kpc, float(self.distances.angular_diameter(z))),
-                         half_light_radius_kpc=r_kpc, q=q, angle=angle)
+        stellar = luminosity * s.mass_to_light if s.mass_to_light is not None else np.full(z.shape, math.nan)
+        radius = _arcsec(r_kpc, self.distances.angular_diameter(z))
+        mags = absolute + modulus + k  # (bands, n)
+        return [LensLight(absolute_magnitude=float(absolute[j]), luminosity=float(luminosity[j]),
+                          stellar_mass=float(stellar[j]), magnitudes=dict(zip(self.k.bands, mags[:, j].tolist())),
+                          half_light_radius=float(radius[j]), half_light_radius_kpc=float(r_kpc[j]), q=float(q[j]),
+                          angle=float(angle[j])) for j in range(z.size)]
 
 
 @dataclass(frozen=True)
@@ -131,20 +153,35 @@ class SourceModel:
         m, z = self.draw_magnitudes_and_redshifts(rng, 1)
         return self.complete(float(m[0]), float(z[0]), rng)
 
+    @property
+    def normals(self) -> int:
+        """Standard normals per source: one for the size scatter, or none."""
+        return 1 if self.settings.size_scatter else 0
+
     def complete(self, m: float, z: float, rng) -> SourcePhotometry:
         """The rest of a source of anchor magnitude ``m`` at redshift ``z``: size and colours."""
-        s = self.settings
-        k_disk, k_clump = self.k_disk.at(z), self.k_clump.at(z)
-        k_anchor = k_disk[self.anchor_band]
-        absolute = m - float(self.distances.distance_modulus(z)) - k_anchor
-        r_kpc = self.sizes.draw(absolute, z, rng) if s.size_scatter else float(10 ** self.sizes.mean_log_radius(absolute, z))
-        clump_anchor = k_clump[self.anchor_band]
-        return SourcePhotometry(
-            redshift=z, anchor_magnitude=m, absolute_magnitude=absolute,
-            disk_colors={b: k - k_anchor for b, k in k_disk.items()},
-            clump_colors={b: k - clump_anchor for b, k in k_clump.items()},
-            half_light_radius=_arcsec(r_kpc, float(self.distances.angular_diameter(z))),
-            half_light_radius_kpc=r_kpc)
+        return self.complete_many([m], [z], rng.standard_normal(size=(1, self.normals)))[0]
+
+    def complete_many(self, m, z, normals: np.ndarray) -> list[SourcePhotometry]:
+        """:meth:`complete` for many sources, from ``normals`` (shape (n, self.normals))."""
+        m, z = np.asarray(m, dtype=float), np.asarray(z, dtype=float)
+        k_disk, k_clump = self.k_disk.at_many(z), self.k_clump.at_many(z)
+        anchor = self.k_disk.bands.index(self.anchor_band)
+        k_anchor, clump_anchor = k_disk[anchor], k_clump[anchor]
+        absolute = m - self.distances.distance_modulus(z) - k_anchor
+        log_r = self.sizes.mean_log_radius(absolute, z)
+        r_kpc = 10 ** log_r
+        if self.normals:
+            r_kpc = r_kpc * np.exp(self.sizes.scatter_ln(absolute) * normals[:, 0])
+        radius = _arcsec(r_kpc, self.distances.angular_diameter(z))
+        disk, clump = k_disk - k_anchor, k_clump - clump_anchor
+        bands = self.k_disk.bands
+        return [SourcePhotometry(redshift=float(z[j]), anchor_magnitude=float(m[j]),
+                                 absolute_magnitude=float(absolute[j]),
+                                 disk_colors=dict(zip(bands, disk[:, j].tolist())),
+                                 clump_colors=dict(zip(bands, clump[:, j].tolist())),
+                                 half_light_radius=float(radius[j]), half_light_radius_kpc=float(r_kpc[j]))
+                for j in range(z.size)]
 
 
 class PointSourceColours:

@@ -355,7 +355,7 @@ class _GeometryQueue:
         n = sampler.GEOMETRY_BATCH if (self.bulk and self.lens_mode) else 1
         if sampler.deflectors is not None:
             z_l = sampler.deflectors.draw_redshift(rng.uniform(size=n))
-            sigma = sampler.deflectors.draw_sigma(rng.uniform(size=n), z_l)
+            u_sigma = rng.uniform(size=n)
         else:
             z_l = np.full(n, v["lens.redshift"])
             sigma = np.full(n, v["lens.velocity_dispersion"])
@@ -364,6 +364,8 @@ class _GeometryQueue:
         else:
             m, z_s = np.full(n, math.nan), np.full(n, v["source.redshift"])
         if not self.lens_mode:
+            if sampler.deflectors is not None:
+                sigma = sampler.deflectors.draw_sigma(u_sigma, z_l)
             ones = np.ones(n, dtype=bool)
             self._batch = (sigma, z_l, z_s, m, ones, ones, ones)
         else:
@@ -371,6 +373,9 @@ class _GeometryQueue:
             behind = z_s > z_l
             ratio = np.where(behind, sampler.distances.ratio(np.minimum(z_l, z_s), z_s), 0.0)
             weighted = behind & ((u <= ratio**2) if sampler.deflectors is not None else True)
+            if sampler.deflectors is not None:  # sigma only where a pair can still be kept (the costly part)
+                sigma = np.full(n, math.nan)
+                sigma[weighted] = sampler.deflectors.draw_sigma(u_sigma[weighted], z_l[weighted])
             kept = weighted
             selection = sampler.recipe.selection
             if (selection.einstein_radius is not None and selection.enforce
@@ -444,6 +449,11 @@ class PopulationSampler:
         self._random_parameters = [(i, path, p) for i, (path, p) in enumerate(self._parameters)
                                    if not isinstance(p, (Fixed, Grid))]
         self._grid_shape = recipe.grid_shape
+        # (band, ((BandConditions field, parameter key path), ...)) for the conditions of each system
+        self._band_keys = [(b, tuple((name, f"survey.bands.{b.name}.{path}") for name, path in (
+            ("zero_point", "zero_point"), ("sky_brightness", "sky_brightness"), ("exposure_time", "exposure_time"),
+            ("gain", "gain"), ("read_noise", "read_noise"), ("psf_fwhm", "psf.fwhm"), ("psf_beta", "psf.beta"))))
+            for b in recipe.survey.bands]
         base = str(Path(recipe.origin).parent) if recipe.origin != "<recipe>" else "."
         filters = {b.name: b.filter for b in recipe.survey.bands if b.filter is not None}
         lens, source = recipe.lens, recipe.source
@@ -531,6 +541,13 @@ class PopulationSampler:
             galaxies.append(LineOfSightGalaxy(z=z, velocity_dispersion=sigma, x=x, y=y, einstein_radius=theta))
         return tuple(galaxies)
 
+    def draw_many(self, system_ids) -> list[System]:
+        """``[self.draw(i) for i in system_ids]``, several times faster: the geometry of all the
+        systems' candidates is computed on arrays (see :mod:`simlens.block_sampling`)."""
+        from .block_sampling import draw_many
+
+        return draw_many(self, system_ids)
+
     def draw(self, system_id: int, first_candidate: int = 0) -> System:
         """The first candidate from ``first_candidate`` on that passes the cuts needing no images."""
         if system_id < 0:
@@ -550,11 +567,22 @@ class PopulationSampler:
         raise SelectionExhausted(_exhausted_message(system_id, limit, rejections))
 
     def _draw_candidate(self, system_id: int, candidate: int) -> tuple[System | None, str | None]:
+        streams = system_streams(self.recipe.seed, system_id, STREAMS, candidate)
+        geometry, rejections = self._geometry(system_id, streams)
+        if geometry is None:
+            return None, rejections
+        return self._finish(system_id, candidate, streams, geometry)
+
+    # What the geometry phase hands to the rest of a candidate (see simlens.block_sampling, which
+    # computes the same for many systems at once).
+    GEOMETRY_FIELDS = ("v", "cell", "sigma", "z_lens", "z_source", "anchor_magnitude", "behind", "ratio", "theta_e",
+                       "mass_q", "mass_angle", "light", "composite_truth", "checks", "deflector", "line_of_sight",
+                       "placed", "geometry_rejections")
+
+    def _geometry(self, system_id: int, streams) -> tuple[dict | None, dict | None]:
+        """The deflector, the source redshift and the source's place: the tries of one candidate
+        (GEOMETRY_FIELDS), or None and the rejections by cut."""
         recipe = self.recipe
-        streams = system_streams(recipe.seed, system_id, STREAMS, candidate)
-        ref = recipe.reference_band
-        band_names = recipe.survey.band_names
-        source_settings = recipe.source
         selection = recipe.selection
         queue = _GeometryQueue(self, streams["physics"])
         tries: dict[str, int] = {}
@@ -628,8 +656,25 @@ class PopulationSampler:
         else:
             return None, _merge_counts(queue.nonzero_rejections(), tries)
         geometry_rejections = _merge_counts(queue.nonzero_rejections(), tries)
-        photometry = (self.source_model.complete(anchor_magnitude, z_source, streams["physics"])
-                      if self.source_model is not None else None)
+        return dict(v=v, cell=cell, sigma=sigma, z_lens=z_lens, z_source=z_source, anchor_magnitude=anchor_magnitude,
+                    behind=behind, ratio=ratio, theta_e=theta_e, mass_q=mass_q, mass_angle=mass_angle, light=light,
+                    composite_truth=composite_truth, checks=checks, deflector=deflector, line_of_sight=line_of_sight,
+                    placed=placed, geometry_rejections=geometry_rejections), None
+
+    def _finish(self, system_id: int, candidate: int, streams, geometry: dict) -> tuple[System | None, dict | None]:
+        """The rest of a candidate after its geometry: photometry, lens light, clumps, conditions,
+        the resolvable cut, sky position, class."""
+        recipe = self.recipe
+        ref = recipe.reference_band
+        band_names = recipe.survey.band_names
+        source_settings = recipe.source
+        selection = recipe.selection
+        (v, cell, sigma, z_lens, z_source, anchor_magnitude, behind, ratio, theta_e, mass_q, mass_angle, light,
+         composite_truth, checks, deflector, line_of_sight, placed, geometry_rejections) = (
+            geometry[name] for name in self.GEOMETRY_FIELDS)
+        photometry = geometry.get("photometry")  # drawn already by simlens.block_sampling
+        if photometry is None and self.source_model is not None:
+            photometry = self.source_model.complete(anchor_magnitude, z_source, streams["physics"])
 
         # -- lens light ----------------------------------------------------------------------
         def magnitudes(base: float, prefix: str) -> dict:
@@ -676,17 +721,9 @@ class PopulationSampler:
 
         # -- observing conditions ------------------------------------------------------------
         bands = self.conditions or tuple(
-            BandConditions(
-                name=b.name, pixel_scale=recipe.survey.pixel_scale,
-                zero_point=v[f"survey.bands.{b.name}.zero_point"],
-                sky_brightness=v[f"survey.bands.{b.name}.sky_brightness"],
-                exposure_time=v[f"survey.bands.{b.name}.exposure_time"],
-                gain=v[f"survey.bands.{b.name}.gain"],
-                read_noise=v[f"survey.bands.{b.name}.read_noise"],
-                psf_profile=b.psf.profile,
-                psf_fwhm=v[f"survey.bands.{b.name}.psf.fwhm"],
-                psf_beta=v[f"survey.bands.{b.name}.psf.beta"])
-            for b in recipe.survey.bands)
+            BandConditions(name=b.name, pixel_scale=recipe.survey.pixel_scale, psf_profile=b.psf.profile,
+                           **{name: v[key] for name, key in keys})
+            for b, keys in self._band_keys)
 
         # -- a second source plane ------------------------------------------------------------------
         second = None
@@ -719,8 +756,13 @@ class PopulationSampler:
         ra, dec = offset_on_sky(fp.ra, fp.dec, rng.uniform(0.0, 360.0), math.degrees(math.acos(cos_sep)))
         noise_seeds = tuple(int(s) for s in streams["observation"].integers(1, 2**31 - 1, size=len(bands)))
 
+        days_per_arcsec2 = geometry.get("days_per_arcsec2")  # computed already by simlens.block_sampling
+        if days_per_arcsec2 is None:
+            days_per_arcsec2 = self.distances.fermat_to_days(z_lens, z_source) if behind else math.nan
+        system_class = ("lens" if placed["multiply_imaged"] else
+                        "source_in_front" if z_source <= z_lens else "missed_caustics")
         system = System(
-            system_id=int(system_id), grid_cell=cell, ra=ra, dec=dec, z_lens=z_lens, z_source=z_source,
+            system_id=int(system_id), grid_cell=cell, system_class=system_class, ra=ra, dec=dec, z_lens=z_lens, z_source=z_source,
             velocity_dispersion=sigma, einstein_radius=theta_e, **deflector,
             line_of_sight=line_of_sight, second_source=second,
             cosmology=self.cosmology if (line_of_sight or second is not None) else None,
@@ -732,15 +774,17 @@ class PopulationSampler:
             source_absolute_magnitude=photometry.absolute_magnitude if photometry is not None else math.nan,
             quasar_magnitudes=quasar_mags,
             host=source_settings.quasar.host if source_settings.quasar is not None else True,
-            days_per_arcsec2=self.distances.fermat_to_days(z_lens, z_source) if behind else math.nan,
+            days_per_arcsec2=days_per_arcsec2,
             candidate=candidate, rejections=geometry_rejections, **lens_extra)
-        system = self._classify(system, streams["negatives"])
+        system = self._classify(system, streams)
         return system, None
 
-    def _classify(self, system: System, rng) -> System:
-        """The system's class; a share ``negatives.fraction`` becomes a negative (see negatives.py)."""
+    def _classify(self, system: System, streams) -> System:
+        """A share ``negatives.fraction`` of the systems becomes a negative (see negatives.py); the
+        others keep the class they were made with.  The negatives stream is made only when needed."""
         negatives = self.recipe.negatives
-        if negatives.fraction > 0 and rng.uniform() < negatives.fraction:
+        rng = streams["negatives"] if negatives.fraction > 0 else None
+        if rng is not None and rng.uniform() < negatives.fraction:
             weights = negatives.weights()
             names = [n for n, w in weights.items() if w > 0]
             p = np.array([weights[n] for n in names], dtype=float)
@@ -760,10 +804,7 @@ class PopulationSampler:
                 x, y = _uniform_in_annulus(0.3 * scale, 2.5 * scale, rng)
                 changes.update(source_x=x, source_y=y)
             return dataclasses.replace(system, **changes)
-        if system.multiply_imaged:
-            return system
-        return dataclasses.replace(system, system_class="source_in_front" if system.z_source <= system.z_lens
-                                   else "missed_caustics")
+        return system
 
     GEOMETRY_BATCH = 64
     GEOMETRY_BATCHES = 64  # batches per candidate before it counts as rejected

@@ -49,6 +49,10 @@ class Fixed:
     def from_uniform(self, u: float) -> float:
         return self.value
 
+    def from_uniforms(self, u: np.ndarray) -> np.ndarray:
+        """``from_uniform`` of every entry of ``u`` (vectorised; used by simlens.block_sampling)."""
+        return np.full(np.shape(u), float(self.value))
+
     @property
     def support(self) -> tuple[float, float]:
         return (self.value, self.value)
@@ -73,6 +77,9 @@ class Uniform:
 
     def from_uniform(self, u: float) -> float:
         return self.low + u * (self.high - self.low)
+
+    def from_uniforms(self, u: np.ndarray) -> np.ndarray:
+        return self.low + np.asarray(u, dtype=float) * (self.high - self.low)
 
     @property
     def support(self) -> tuple[float, float]:
@@ -99,6 +106,12 @@ class LogUniform:
     def from_uniform(self, u: float) -> float:
         lo = math.log(self.low)
         return math.exp(lo + u * (math.log(self.high) - lo))
+
+    def from_uniforms(self, u: np.ndarray) -> np.ndarray:
+        lo = math.log(self.low)
+        t = lo + np.asarray(u, dtype=float) * (math.log(self.high) - lo)
+        # math.exp, not np.exp: the same values as from_uniform to the last bit
+        return np.fromiter((math.exp(v) for v in t.ravel()), float, t.size).reshape(t.shape)
 
     @property
     def support(self) -> tuple[float, float]:
@@ -147,6 +160,17 @@ class TruncatedNormal:
             x = special.ndtri(lo + u * (hi - lo))
         return float(min(max(self.mean + self.sigma * x, self.low), self.high))
 
+    def from_uniforms(self, u: np.ndarray) -> np.ndarray:
+        u = np.asarray(u, dtype=float)
+        a, b = (self.low - self.mean) / self.sigma, (self.high - self.mean) / self.sigma
+        if a > 0:
+            lo, hi = special.ndtr(-b), special.ndtr(-a)
+            x = -special.ndtri(hi - u * (hi - lo))
+        else:
+            lo, hi = special.ndtr(a), special.ndtr(b)
+            x = special.ndtri(lo + u * (hi - lo))
+        return np.minimum(np.maximum(self.mean + self.sigma * x, self.low), self.high)
+
     @property
     def support(self) -> tuple[float, float]:
         return (self.low, self.high)
@@ -187,6 +211,17 @@ class Choice:
             if target < cumulative and w > 0:
                 return value
         return next(v for v, w in zip(reversed(self.values), reversed(weights)) if w > 0)
+
+    def from_uniforms(self, u: np.ndarray) -> np.ndarray:
+        n = len(self.values)
+        weights = self.weights if self.weights is not None else (1.0,) * n
+        target = np.asarray(u, dtype=float) * float(sum(weights))
+        cumulative = np.cumsum(np.asarray(weights, dtype=float))  # running sums, as from_uniform adds them
+        usable = np.asarray(weights) > 0
+        hit = (target[..., None] < cumulative) & usable
+        last = max(j for j in range(n) if usable[j])
+        index = np.where(hit.any(axis=-1), np.argmax(hit, axis=-1), last)
+        return np.asarray(self.values, dtype=float)[index]
 
     @property
     def support(self) -> tuple[float, float]:
