@@ -228,7 +228,7 @@ class _Geometry:
         rows = np.flatnonzero(passed)
         if rows.size == 0:
             return out
-        caustics = _Caustics(s, values, theta_e, rows)
+        caustics = _Caustics(values, theta_e, rows)
         physics = [self.streams[k]["physics"] for k in active]
         if mode == "fixed":
             if pos.x is not None:
@@ -273,7 +273,7 @@ class _Caustics:
     """Closed-form tangential caustics and cuts of SIE + shear lenses, for the rows with theta_E > 0
     (the scan of simlens.caustics for any whose closed form does not apply)."""
 
-    def __init__(self, sampler, values: dict, theta_e: np.ndarray, rows: np.ndarray):
+    def __init__(self, values: dict, theta_e: np.ndarray, rows: np.ndarray):
         theta = theta_e[rows]
         self.lensed = theta > 0
         self.theta = theta

@@ -164,13 +164,14 @@ def render_field(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
     timings = {"sampling": 0.0, "ray_tracing": 0.0, "image_finding": 0.0, "adaptive_refinement": 0.0,
                "scene": 0.0, "galsim_stage": 0.0, "background": 0.0, "noise": 0.0, "writing": 0.0}
     t0 = time.perf_counter()
-    first = PopulationSampler(recipe).draw(spec.first_system)
+    # the stamp size changes no draw, so one sampler gives the field's conditions and then its lenses
+    sampler = PopulationSampler(dataclasses.replace(recipe, survey=dataclasses.replace(survey, cutout_size=stamp)))
+    first = sampler.draw(spec.first_system)
     conditions = first.bands
+    sampler.conditions = conditions
     wcs = cutout_wcs(first.ra, first.dec, scale, size)
     streams = field_streams(recipe.seed, spec.index, FIELD_STREAMS)
     origins = place_lenses(size, stamp, spec.n_systems, streams["layout"])
-    stamp_recipe = dataclasses.replace(recipe, survey=dataclasses.replace(survey, cutout_size=stamp))
-    sampler = PopulationSampler(stamp_recipe, conditions=conditions)
     timings["sampling"] += time.perf_counter() - t0
 
     file = shard_path(recipe, spec.index)
@@ -195,7 +196,7 @@ def render_field(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
         los += line_of_sight_rows(rendered)
 
     t2 = time.perf_counter()
-    background = BackgroundModel(recipe, DistanceTable(sampler.cosmology))
+    background = BackgroundModel(recipe, sampler.distances)
     objects = background.draw(streams["background"], [(r["x_pixel"], r["y_pixel"], r["einstein_radius"]) for r in rows])
     noise_seeds = streams["noise"].integers(1, 2**31 - 1, size=len(conditions))
     primary = fits.PrimaryHDU()

@@ -127,7 +127,7 @@ def test_lenses_beyond_the_closed_form_use_the_scan():
     values = {"lens.mass.q": np.array([0.7, 0.7]), "lens.mass.angle": np.array([20.0, 20.0]),
               "lens.shear.gamma": np.array([0.05, 1.05]), "lens.shear.angle": np.array([80.0, 80.0])}
     theta = np.array([1.2, 1.2])
-    caustics = _Caustics(None, values, theta, np.arange(2))
+    caustics = _Caustics(values, theta, np.arange(2))
     assert list(caustics.closed) == [True, False] and list(caustics.scanned) == [1]
     x, y = np.array([0.1, 0.1]), np.array([0.05, 0.05])
     inside = caustics.multiply_imaged(np.arange(2), x, y)
