@@ -23,7 +23,7 @@ from typing import Sequence
 
 import numpy as np
 
-from .caustics import _UNIT_CIRCLE, CUT_ANGLES, OUTER_RADIUS_IN_EINSTEIN_RADII, find_caustics
+from .caustics import _UNIT_CIRCLE, CUT_ANGLES, OUTER_RADIUS_IN_EINSTEIN_RADII, find_caustics, polygon_area
 from .cosmology import ARCSEC_PER_RADIAN
 from .distances import C_KM_S
 from .mass.isothermal import CENTRAL_FLOOR
@@ -332,19 +332,13 @@ class _Caustics:
             inner = next((c for c in found.caustics if c.kind != "tangential"), None)
             areas = (tangential.area if tangential is not None else 0.0, inner.area if inner is not None else 0.0)
         elif self.closed[i]:
-            areas = (_area(self.tangential[0][i], self.tangential[1][i]),
-                     _area(self.cut[0][i], self.cut[1][i]) if self.has_cut[i] else 0.0)
+            areas = (polygon_area(self.tangential[0][i], self.tangential[1][i]),
+                     polygon_area(self.cut[0][i], self.cut[1][i]) if self.has_cut[i] else 0.0)
         else:
             areas = (0.0, 0.0)
         return dict(source_x=float(x), source_y=float(y), placement=mode, region_radius=float(radius),
                     region_widened=bool(widened), multiply_imaged=bool(multiple),
                     tangential_caustic_area=areas[0], inner_caustic_area=areas[1])
-
-
-def _area(x: np.ndarray, y: np.ndarray) -> float:
-    from .caustics import polygon_area
-
-    return polygon_area(x, y)
 
 
 def _inside(px, py, vx, vy) -> np.ndarray:
