@@ -22,6 +22,7 @@ with ``full_image`` the whole injected image and the added-flux image.
 from __future__ import annotations
 
 import dataclasses
+import json
 import math
 from dataclasses import dataclass
 from pathlib import Path
@@ -35,6 +36,7 @@ from scipy.signal import fftconvolve
 
 from .errors import SimlensError
 from .output.atomic import atomic_path
+from .output.ownership import confined
 from .population import PopulationSampler
 from .recipe import Recipe
 from .sampling import Fixed
@@ -272,9 +274,7 @@ def inject(image_path: str | Path, recipe: Recipe, lenses_path: str | Path, *, o
     if band not in recipe.survey.band_names:
         raise SimlensError(f"band {band!r} is not in the recipe ({', '.join(recipe.survey.band_names)})")
     out = Path(out)
-    if out.exists() and any(out.iterdir()) and not overwrite:
-        raise SimlensError(f"{out} exists and is not empty; choose another --out or pass --overwrite")
-    (out / "cutouts").mkdir(parents=True, exist_ok=True)
+    _claim_output_folder(out, overwrite)
     files: list = []
     if str(lenses_path) == "auto":
         lenses = select_lens_galaxies(image, recipe, band, _recipe_fwhm(recipe, band))
@@ -357,7 +357,43 @@ def inject(image_path: str | Path, recipe: Recipe, lenses_path: str | Path, *, o
             with atomic_path(out / name) as tmp:
                 fits.PrimaryHDU(data=data.astype(np.float32), header=header).writeto(tmp)
             files.append(name)
+    with atomic_path(out / INJECTION_RECORD) as tmp:
+        tmp.write_text(json.dumps({"format": INJECTION_FORMAT, "files": files}, indent=1) + "\n", encoding="utf-8")
     return InjectionResult(truth=truth, files=files)
+
+
+INJECTION_RECORD = "injection.json"  # the files an injection wrote: the only ones --overwrite removes
+INJECTION_FORMAT = "simlens-injection/1"
+
+
+def _claim_output_folder(out: Path, overwrite: bool) -> None:
+    """Make ``out`` ready: an empty or new folder, or (with ``overwrite``) a folder of an earlier
+    injection, whose recorded files are removed; a folder holding anything else is refused."""
+    if out.exists() and not out.is_dir():
+        raise SimlensError(f"{out}: exists and is not a folder; choose another --out")
+    if out.exists() and any(out.iterdir()):
+        record = out / INJECTION_RECORD
+        if not overwrite:
+            raise SimlensError(f"{out} exists and is not empty; choose another --out, or pass --overwrite "
+                               f"if it holds an earlier simlens injection")
+        try:
+            written = json.loads(record.read_text(encoding="utf-8"))
+            listed = [str(name) for name in written["files"]] if written.get("format") == INJECTION_FORMAT else None
+        except (OSError, ValueError, TypeError, KeyError, AttributeError):
+            listed = None
+        if listed is None:
+            raise SimlensError(f"{out}: holds no simlens injection ({INJECTION_RECORD} missing or unreadable); "
+                               f"simlens replaces only its own output: choose another --out")
+        ours = {confined(out, name, record).relative_to(out) for name in listed} | {Path(INJECTION_RECORD)}
+        foreign = sorted(str(p.relative_to(out)) for p in out.rglob("*")
+                         if not p.is_dir() and p.relative_to(out) not in ours)
+        if foreign:
+            raise SimlensError(f"{out}: holds files simlens did not write there ({', '.join(foreign[:3])}"
+                               f"{' ...' if len(foreign) > 3 else ''}); nothing was removed: move them away "
+                               f"or choose another --out")
+        for name in ours:
+            (out / name).unlink(missing_ok=True)
+    (out / "cutouts").mkdir(parents=True, exist_ok=True)
 
 
 def _write_cutout(path: Path, injected: np.ndarray, added: np.ndarray, kernel: np.ndarray, image: SurveyImage,

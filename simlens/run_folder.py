@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import hashlib
 import json
-import shutil
+import re
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -20,6 +20,7 @@ from . import __version__
 from .errors import SimlensError
 from .output.atomic import atomic_path
 from .output.checksums import sha256_of
+from .output.ownership import confined
 from .output.manifest import package_versions
 from .recipe import Recipe
 from .shard import ShardResult, part_size
@@ -55,19 +56,19 @@ class RunFolder:
             raise SimlensError(f"{path}: exists and is not a folder; choose another --out")
         manifest_path = path / MANIFEST
         if path.exists() and any(path.iterdir()):
+            if not manifest_path.is_file():
+                raise SimlensError(f"{path}: folder is not empty and holds no simlens run; simlens writes only "
+                                   f"into an empty folder or its own run folder: choose another --out")
+            folder = cls(path, _load_manifest(manifest_path))
             if overwrite:
-                _remove_run(path)
-            elif not manifest_path.is_file():
-                raise SimlensError(f"{path}: folder is not empty and holds no simlens run; "
-                                   f"choose another --out, or pass --overwrite to replace its contents")
+                folder._remove_own_files()
+            elif folder.manifest.get("status") == "complete":
+                raise SimlensError(f"{path}: a finished run already exists; pass --overwrite to replace it, "
+                                   f"or choose another --out")
+            elif folder.manifest.get("identity") != recipe_identity(recipe):
+                raise SimlensError(f"{path}: holds an unfinished run of another recipe, seed or count; "
+                                   f"run that command again to finish it, or pass --overwrite")
             else:
-                folder = cls(path, _load_manifest(manifest_path))
-                if folder.manifest.get("status") == "complete":
-                    raise SimlensError(f"{path}: a finished run already exists; pass --overwrite to replace it, "
-                                       f"or choose another --out")
-                if folder.manifest.get("identity") != recipe_identity(recipe):
-                    raise SimlensError(f"{path}: holds an unfinished run of another recipe, seed or count; "
-                                       f"run that command again to finish it, or pass --overwrite")
                 folder._clean_temporaries()
                 folder._drop_damaged_shards()
                 return folder
@@ -113,9 +114,32 @@ class RunFolder:
             tmp.write_text(json.dumps(self.manifest, indent=1, default=str) + "\n", encoding="utf-8")
 
     # -- repair ----------------------------------------------------------------------------------
+    def own_files(self) -> list[Path]:
+        """The files of this run: those its manifest names and those its layout names (shard, field,
+        cutout and catalogue files, the manifest, and write-then-rename temporaries of them)."""
+        named = set(self.manifest.get("truth", {}))
+        for entry in self.manifest.get("shards", {}).values():
+            named.update(entry.get("files", {}))
+        found = {confined(self.path, relative, self.path / MANIFEST) for relative in named}
+        for relative in _layout_files(self.path):
+            found.add(self.path / relative)
+        return sorted(p for p in found if p.is_file() and not p.is_symlink())
+
+    def _remove_own_files(self) -> None:
+        """Delete this run's files (:meth:`own_files`) and its layout folders once empty; everything
+        else in the folder stays where it is."""
+        for target in self.own_files():
+            target.unlink()
+        for sub in LAYOUT_FOLDERS:
+            folder = self.path / sub
+            if folder.is_dir() and not folder.is_symlink() and not any(folder.iterdir()):
+                folder.rmdir()
+        self.manifest = {}
+
     def _clean_temporaries(self) -> None:
-        for tmp in self.path.rglob(".*.tmp-*"):
-            tmp.unlink(missing_ok=True)
+        for relative in _layout_files(self.path):
+            if _TEMPORARY.fullmatch(relative.name):
+                (self.path / relative).unlink(missing_ok=True)
 
     def _drop_damaged_shards(self) -> None:
         damaged = [k for k, entry in self.manifest.get("shards", {}).items()
@@ -126,10 +150,38 @@ class RunFolder:
             self.save()
 
 
+# What a run writes, by folder: the only files --overwrite and resume may delete (besides those
+# the manifest names).  A temporary is ".<final name>.tmp-<pid>" (simlens.output.atomic).
+LAYOUT_FOLDERS = ("shards", "fields", "cutouts")
+CATALOGUES = ("truth", "subhalos", "images", "line_of_sight", "field_objects")
+_LAYOUT = {
+    ".": re.compile(rf"(manifest\.json|({'|'.join(CATALOGUES)})\.(fits|ecsv))"),
+    "shards": re.compile(r"shard_\d+\.fits"),
+    "fields": re.compile(r"field_\d+\.(fits|reg)"),
+    "cutouts": re.compile(r"system_\d+\.fits"),
+}
+_TEMPORARY = re.compile(r"\.(?P<final>.+)\.tmp-\d+")
+
+
+def _layout_files(root: Path) -> list[Path]:
+    """Files under ``root`` whose names the run layout gives (final names and their temporaries)."""
+    out = []
+    for sub, pattern in _LAYOUT.items():
+        folder = root / sub
+        if not folder.is_dir() or folder.is_symlink():
+            continue
+        for child in folder.iterdir():
+            temporary = _TEMPORARY.fullmatch(child.name)
+            name = temporary.group("final") if temporary else child.name
+            if pattern.fullmatch(name) and child.is_file() and not child.is_symlink():
+                out.append(Path(sub) / child.name if sub != "." else Path(child.name))
+    return out
+
+
 def _damaged_files(root: Path, files: dict) -> list[str]:
     bad = []
     for relative, digest in files.items():
-        target = root / relative
+        target = confined(root, relative, root / MANIFEST)
         if not target.is_file() or sha256_of(target) != digest:
             bad.append(relative)
     return bad
@@ -140,18 +192,10 @@ def _load_manifest(path: Path) -> dict:
         manifest = json.loads(path.read_text(encoding="utf-8"))
     except (OSError, ValueError) as exc:
         raise SimlensError(f"{path}: cannot be read as a simlens manifest ({exc}); "
-                           f"pass --overwrite to start the run afresh") from None
+                           f"simlens replaces only folders it can read as its own runs: choose another --out") from None
     if manifest.get("format") != FORMAT:
         raise SimlensError(f"{path}: not a manifest this simlens can resume (format {manifest.get('format')!r})")
     return manifest
-
-
-def _remove_run(path: Path) -> None:
-    for child in path.iterdir():
-        if child.is_dir() and not child.is_symlink():
-            shutil.rmtree(child)
-        else:
-            child.unlink()
 
 
 @dataclass(frozen=True)
