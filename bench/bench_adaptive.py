@@ -17,12 +17,12 @@ import time
 
 import numpy as np
 
-from simlens.light import CompositeLight, Sersic
-from simlens.mass import SIE, ExternalShear
-from simlens.observe import observe_scene, padding_for
-from simlens.raytrace import ComponentImages, PixelGrid, render_scene
-from simlens.render import observation_rays
-from simlens.survey import BandConditions
+from simlens.imaging.light import CompositeLight, Sersic
+from simlens.lensing.mass import SIE, ExternalShear
+from simlens.imaging.observe import observe_scene, padding_for
+from simlens.imaging.rays import ComponentImages, PixelGrid, render_scene
+from simlens.imaging.render import observation_rays
+from simlens.truth.conditions import BandConditions
 
 BAND = BandConditions(name="r", pixel_scale=0.2, zero_point=26.8, sky_brightness=21.2, exposure_time=900,
                       gain=4, read_noise=7, psf_profile="moffat", psf_fwhm=0.7, psf_beta=3.0)

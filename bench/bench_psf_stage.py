@@ -7,7 +7,7 @@ routes, noise excluded from all:
   galsim-direct   per band, galsim.Convolve(Sersic + Sersic, PSF).drawImage(...): the accuracy
                   reference (GalSim integrates the pixel and convolves in Fourier space)
   simlens         what `simlens make` does: one ray map and one evaluation of each shape per system,
-                  then per band simlens.observe.observe_scene (PSF kernel drawn by GalSim, FFT
+                  then per band simlens.imaging.observe.observe_scene (PSF kernel drawn by GalSim, FFT
                   convolution, block sums, and CCD noise, whose cost is included; the noiseless
                   planes are compared)
   interpolated    the same supersampled scene wrapped in galsim.InterpolatedImage, convolved with each
@@ -26,12 +26,12 @@ import time
 import galsim
 import numpy as np
 
-from simlens.light import Sersic
-from simlens.mass import SIS
-from simlens.observe import observe_scene, padding_for, psf_profile
-from simlens.raytrace import ComponentImages, PixelGrid, Scene, trace_rays
-from simlens.render import observation_rays
-from simlens.survey import BandConditions
+from simlens.imaging.light import Sersic
+from simlens.lensing.mass import SIS
+from simlens.imaging.observe import observe_scene, padding_for, psf_profile
+from simlens.imaging.rays import ComponentImages, PixelGrid, Scene, trace_rays
+from simlens.imaging.render import observation_rays
+from simlens.truth.conditions import BandConditions
 
 FWHMS = (0.9, 0.8, 0.75)
 

@@ -8,7 +8,7 @@
               Convolve(Sersic_lens + Sersic_source, Moffat).drawImage + CCDNoise, the images
               stacked into a cube and written with the truth rows to one FITS file
    The ratio simlens / galsim is measured side by side in this run (goal <= 1.0).
-2. Deflection per ray: simlens.mass.SIE.deflection against the bare closed-form numpy expression
+2. Deflection per ray: simlens.lensing.mass.SIE.deflection against the bare closed-form numpy expression
    on 65,536 rays (goal <= 1.2x).
 
 Run: python bench/bench_throughput.py [--n 100] [--rounds 3]
@@ -28,10 +28,10 @@ from astropy.io import fits
 from astropy.table import Table
 
 import simlens
-from simlens.mass import SIE
-from simlens.observe import psf_profile
-from simlens.sampling import Fixed
-from simlens.shard import ShardSpec, render_shard
+from simlens.lensing.mass import SIE
+from simlens.imaging.observe import psf_profile
+from simlens.recipe.distributions import Fixed
+from simlens.runs.shards import ShardSpec, render_shard
 
 
 def demo_without_clumps(n: int, adaptive: bool = True):

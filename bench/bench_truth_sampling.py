@@ -11,7 +11,7 @@ and bulk geometry pairs included) and the seconds for 100,000.  The modes, side 
 * fixed -- the source placed uniformly inside one Einstein radius (no placement mode).
 
 Each mode is drawn two ways, side by side in one run: ``draw_many`` (the vectorised route of
-simlens.block_sampling, all --n systems) and ``draw`` one system at a time (the first --scalar-n
+simlens.truth.block_sampling, all --n systems) and ``draw`` one system at a time (the first --scalar-n
 systems, default 10,000); the ratio of their rates is printed.  Both routes give the same systems.
 
 Goal: 100,000 systems well under a minute on one core.
@@ -26,7 +26,7 @@ import time
 from pathlib import Path
 
 import simlens
-from simlens.population import PopulationSampler
+from simlens.truth.sampler import PopulationSampler
 
 RECIPE = Path(__file__).parents[1] / "recipes" / "population.toml"
 
@@ -38,7 +38,7 @@ def variant(mode: str):
     if mode == "fixed":
         position = dataclasses.replace(position, mode=None)
         selection = dataclasses.replace(selection, einstein_radius=None)
-        from simlens.sampling import Fixed
+        from simlens.recipe.distributions import Fixed
 
         position = dataclasses.replace(position, radius_in_einstein_radii=Fixed(1.0))
         lens = recipe.lens

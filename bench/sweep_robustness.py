@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 
 import simlens
-from simlens.loader import iter_batches
+from simlens.runs.loader import iter_batches
 
 
 def check_run(folder: Path) -> tuple[int, list[str]]:

@@ -30,16 +30,16 @@ Five lines::
     image = rendered.band("r").image
 """
 
-__version__ = "0.2.0"
+from .version import __version__
 
 from .errors import RecipeError, SimlensError
-from .pipeline import run
-from .population import PopulationSampler, System
+from .runs.pipeline import run
+from .truth.sampler import PopulationSampler, System
 from .recipe import Recipe, load_recipe, parse_recipe
-from .render import RenderedSystem, render_system
-from .loader import iter_batches
-from .run_folder import verify_run
-from .scoring import score_run
+from .imaging.render import RenderedSystem, render_system
+from .runs.loader import iter_batches
+from .runs.run_folder import verify_run
+from .scoring.cutouts import score_run
 
 __all__ = ["__version__", "SimlensError", "RecipeError", "Recipe", "load_recipe", "parse_recipe",
            "PopulationSampler", "System", "render_system", "RenderedSystem", "run", "iter_batches", "verify_run",

@@ -20,7 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
+from .version import __version__
 from .errors import SimlensError
 from .recipe import load_recipe
 
@@ -30,7 +30,7 @@ __all__ = ["main"]
 def _make(args) -> int:
     from tqdm import tqdm
 
-    from .pipeline import default_output_folder, run
+    from .runs.pipeline import default_output_folder, run
 
     recipe = load_recipe(args.recipe).with_overrides(count=args.n, seed=args.seed)
     out = Path(args.out) if args.out else default_output_folder(recipe)
@@ -39,7 +39,7 @@ def _make(args) -> int:
         return tqdm(total=total, initial=initial, desc=f"simlens {recipe.name}", unit="system",
                     disable=args.quiet, file=sys.stderr)
 
-    from .shard import part_size
+    from .runs.shards import part_size
 
     n_shards = -(-recipe.count // part_size(recipe))
     if args.workers > n_shards and not args.quiet:
@@ -57,7 +57,7 @@ def _make(args) -> int:
 
 
 def _verify(args) -> int:
-    from .run_folder import verify_run
+    from .runs.run_folder import verify_run
 
     report = verify_run(Path(args.run_dir))
     print(report.describe())
@@ -65,7 +65,7 @@ def _verify(args) -> int:
 
 
 def _check(args) -> int:
-    from .population import PopulationSampler
+    from .truth.sampler import PopulationSampler
 
     recipe = load_recipe(args.recipe).with_overrides(count=args.n, seed=args.seed)
     survey = recipe.survey
@@ -74,7 +74,7 @@ def _check(args) -> int:
           f"{survey.cutout_size}x{survey.cutout_size} pixels of {survey.pixel_scale:g} arcsec; "
           f"supersampling {survey.supersampling}")
     if recipe.field is not None:
-        from .field import describe_fields
+        from .runs.fields import describe_fields
 
         print(f"  fields: {describe_fields(recipe)}")
     cells = recipe.grid_shape
@@ -106,7 +106,7 @@ def _check(args) -> int:
     for s in systems:
         for name, count in s.rejections.items():
             rejected[name] = rejected.get(name, 0) + count
-    from .selection import describe_attrition
+    from .truth.selection import describe_attrition
 
     print("    " + describe_attrition({"accepted": n, "candidates": n + sum(rejected.values()), "rejected_by": rejected})
           + (" (cuts on images are applied by make)" if recipe.selection.min_arc_snr is not None
@@ -115,10 +115,10 @@ def _check(args) -> int:
 
 
 def _score(args) -> int:
-    from .scoring import score_run
+    from .scoring.cutouts import score_run
 
     if (Path(args.run_dir) / "fields").is_dir():
-        from .field_scoring import score_fields
+        from .scoring.fields import score_fields
 
         if args.fpr is not None:
             raise SimlensError("a field run has no non-lens cutouts to take a false-positive rate of; "
@@ -141,7 +141,7 @@ def _gallery(args) -> int:
     from astropy.table import Table
 
     from .gallery import contact_sheets, population_plots, select_systems
-    from .scoring import read_scores
+    from .scoring.cutouts import read_scores
 
     run_dir = Path(args.run_dir)
     if not (run_dir / "truth.fits").is_file():

@@ -19,7 +19,7 @@ import numpy as np
 from astropy.table import Table
 
 from .errors import SimlensError
-from .loader import shard_files
+from .runs.loader import shard_files
 
 __all__ = ["parse_cut", "select_systems", "contact_sheets", "population_plots"]
 
@@ -52,7 +52,7 @@ def select_systems(truth: Table, cuts: Sequence[str] = (), missed: Table | None 
             raise SimlensError(f"cut {text!r}: no truth column {column!r}")
         keep &= np.asarray(op(np.asarray(truth[column]), value), dtype=bool)
     if missed is not None:
-        from .scoring import lens_labels
+        from .scoring.cutouts import lens_labels
 
         scores = dict(zip(np.asarray(missed["system_id"]).tolist(), np.asarray(missed["score"]).tolist()))
         score = np.array([scores.get(int(i), -np.inf) for i in truth["system_id"]])

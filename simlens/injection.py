@@ -37,9 +37,9 @@ from scipy.signal import fftconvolve
 from .errors import SimlensError
 from .output.atomic import atomic_path
 from .output.ownership import confined
-from .population import PopulationSampler
+from .truth.sampler import PopulationSampler
 from .recipe import Recipe
-from .sampling import Fixed
+from .recipe.distributions import Fixed
 
 __all__ = ["SurveyImage", "read_survey_image", "read_lens_catalogue", "inject", "InjectionResult", "empirical_psf",
            "select_lens_galaxies"]
@@ -119,8 +119,8 @@ def select_lens_galaxies(image: SurveyImage, recipe: Recipe, band: str, psf_fwhm
     from astropy.stats import sigma_clipped_stats
     from photutils.segmentation import SourceCatalog, detect_sources
 
-    from .photometry import kcorrection
-    from .scaling_relations import FaberJackson
+    from .populations.photometry import kcorrection
+    from .populations.scaling_relations import FaberJackson
 
     _, median, std = sigma_clipped_stats(image.data)
     data = image.data - median

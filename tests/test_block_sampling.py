@@ -1,4 +1,4 @@
-"""The vectorised route (simlens.block_sampling) draws the same systems as the scalar one.
+"""The vectorised route (simlens.truth.block_sampling) draws the same systems as the scalar one.
 
 The reference is the scalar ``PopulationSampler.draw``, itself checked against published results in
 test_populations.py and test_placement.py: ``draw_many(ids)`` must give ``[draw(i) for i in ids]``,
@@ -14,8 +14,8 @@ from pathlib import Path
 
 import pytest
 
-from simlens.block_sampling import block_route_unavailable
-from simlens.population import PopulationSampler, SelectionExhausted
+from simlens.truth.block_sampling import block_route_unavailable
+from simlens.truth.sampler import PopulationSampler, SelectionExhausted
 from simlens.recipe import load_recipe, parse_recipe
 
 from .conftest import PHYSICAL_RECIPE, SMALL_RECIPE
@@ -117,12 +117,12 @@ def test_impossible_cuts_fail_the_same_way():
 
 def test_lenses_beyond_the_closed_form_use_the_scan():
     # Shear gamma >= 1 (beyond what recipes accept) leaves no closed-form tangential curve; such
-    # rows take the scan of simlens.caustics, and must agree with find_caustics on the same lens.
+    # rows take the scan of simlens.lensing.caustics, and must agree with find_caustics on the same lens.
     import numpy as np
 
-    from simlens.block_sampling import _Caustics
-    from simlens.caustics import find_caustics
-    from simlens.population import build_deflector
+    from simlens.truth.block_sampling import _Caustics
+    from simlens.lensing.caustics import find_caustics
+    from simlens.truth.sampler import build_deflector
 
     values = {"lens.mass.q": np.array([0.7, 0.7]), "lens.mass.angle": np.array([20.0, 20.0]),
               "lens.shear.gamma": np.array([0.05, 1.05]), "lens.shear.angle": np.array([80.0, 80.0])}

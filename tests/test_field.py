@@ -1,4 +1,4 @@
-"""Field images: lenses at known places among background galaxies and stars (simlens.field).
+"""Field images: lenses at known places among background galaxies and stars (simlens.runs.fields).
 
 Each check names its reference: astropy's WCS for the pixel <-> sky positions, photutils for
 centroids and aperture photometry, GalSim for the black-body colours, the number-count relation
@@ -19,12 +19,12 @@ from astropy.table import Table
 from astropy.wcs import WCS
 from scipy import stats
 
-from simlens.background import BackgroundModel
-from simlens.distances import DistanceTable
+from simlens.populations.background import BackgroundModel
+from simlens.cosmology_table import DistanceTable
 from simlens.errors import RecipeError, SimlensError
-from simlens.pipeline import run
+from simlens.runs.pipeline import run
 from simlens.recipe import parse_recipe
-from simlens.run_folder import verify_run
+from simlens.runs.run_folder import verify_run
 
 from .conftest import PHYSICAL_RECIPE
 
@@ -133,7 +133,7 @@ def test_field_runs_verify_resume_and_repeat_byte_for_byte(plain_field_run, tmp_
     (again / "manifest.json").write_text((again / "manifest.json").read_text().replace('"complete"', '"running"'))
     run(recipe, again)  # re-renders the damaged field only
     assert (again / "fields/field_00001.fits").read_bytes() == (out / "fields/field_00001.fits").read_bytes()
-    from simlens.loader import shard_files
+    from simlens.runs.loader import shard_files
 
     with pytest.raises(SimlensError, match="field run"):
         shard_files(out)
@@ -177,7 +177,7 @@ def test_no_background_galaxy_lies_on_a_lens():
 def test_star_colours_are_black_bodies_through_the_filters():
     import galsim
 
-    from simlens.photometry import Template, ab_magnitude_offset, load_filter
+    from simlens.populations.photometry import Template, ab_magnitude_offset, load_filter
 
     for temperature in (3500.0, 5800.0, 9000.0):
         ours = (ab_magnitude_offset(Template.black_body(temperature), load_filter("LSST_g"))
@@ -242,7 +242,7 @@ def _detections(truth, offsets_arcsec, scores, extra=()):
 
 
 def test_field_detections_are_scored_by_position(plain_field_run, tmp_path):
-    from simlens.field_scoring import score_fields
+    from simlens.scoring.fields import score_fields
 
     recipe, out = plain_field_run
     truth = Table.read(out / "truth.fits")

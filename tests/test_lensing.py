@@ -5,10 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from simlens.lens_equation import find_images
-from simlens.light import Sersic
-from simlens.mass import SIE, SIS, ExternalShear
-from simlens.raytrace import PixelGrid, render_scene, trace_rays
+from simlens.lensing.lens_equation import find_images
+from simlens.imaging.light import Sersic
+from simlens.lensing.mass import SIE, SIS, ExternalShear
+from simlens.imaging.rays import PixelGrid, render_scene, trace_rays
 
 WINDOWS = [(4.0, 0.05), (2.0, 0.01)]
 
@@ -81,7 +81,7 @@ def test_unlensed_flux_is_recovered_without_a_lens():
 def test_inner_image_near_the_cut_is_found_by_the_renderers_search(fraction):
     # SIS, beta = f theta_E: the inner image lies at (1 - f) theta_E from the centre, down to
     # 0.005 theta_E here (SEF 1992, sect. 8.1.4); the meshes render_system uses must find it.
-    from simlens.render import image_search_windows
+    from simlens.imaging.render import image_search_windows
 
     theta_e = 1.3
     grid = PixelGrid(size=64, pixel_scale=0.2, supersampling=4)
@@ -94,7 +94,7 @@ def test_inner_image_near_the_cut_is_found_by_the_renderers_search(fraction):
 def test_image_counts_converge_for_sie_with_shear():
     # Convergence check (common practice): adding a mesh ten times finer at the centre must not change
     # the number of images the renderer's search finds, for sources spread over the Einstein radius.
-    from simlens.render import image_search_windows
+    from simlens.imaging.render import image_search_windows
 
     rng = np.random.default_rng(4)
     grid = PixelGrid(size=64, pixel_scale=0.2, supersampling=4)

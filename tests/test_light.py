@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 from scipy import integrate
 
-from simlens.light import CompositeLight, Sersic, sersic_b
+from simlens.imaging.light import CompositeLight, Sersic, sersic_b
 
 
 def ciotti_bertin_b(n: float) -> float:

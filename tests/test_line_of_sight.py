@@ -12,8 +12,8 @@ from astropy.table import Table
 from scipy import stats
 
 import simlens
-from simlens.multiplane import MultiPlaneLens
-from simlens.population import PopulationSampler
+from simlens.lensing.multiplane import MultiPlaneLens
+from simlens.truth.sampler import PopulationSampler
 from simlens.recipe import parse_recipe
 
 from .conftest import SMALL_RECIPE

@@ -11,7 +11,7 @@ import pytest
 from astropy import constants
 
 from simlens.cosmology import ARCSEC_PER_RADIAN
-from simlens.mass import (NFW, SIE, SIS, CompositeMass, ConvergenceSheet, CoredIsothermal, ExternalShear,
+from simlens.lensing.mass import (NFW, SIE, SIS, CompositeMass, ConvergenceSheet, CoredIsothermal, ExternalShear,
                           Multipole, PointMass, PowerLaw, SersicMass, TruncatedSIS, MassModel, ScaledDeflector)
 
 RNG = np.random.default_rng(1)

@@ -13,9 +13,9 @@ from astropy.cosmology import Planck18
 from scipy import integrate
 
 from simlens.cosmology import ARCSEC_PER_RADIAN, einstein_radius_sis, nfw_lens_parameters
-from simlens.lens_equation import find_images
-from simlens.mass import NFW, SIE, SIS, ConvergenceSheet, CoredIsothermal, ExternalShear, Multipole, PointMass, PowerLaw
-from simlens.multiplane import MultiPlaneLens
+from simlens.lensing.lens_equation import find_images
+from simlens.lensing.mass import NFW, SIE, SIS, ConvergenceSheet, CoredIsothermal, ExternalShear, Multipole, PointMass, PowerLaw
+from simlens.lensing.multiplane import MultiPlaneLens
 
 POINTS = [(0.7, 0.3), (-0.4, 1.1), (1.6, -0.9), (0.05, -0.6)]
 
@@ -243,7 +243,7 @@ def test_multiplane_rejects_misordered_planes():
 def test_sersic_mass_deflection_equals_enclosed_mass(n):
     # Circular Sersic: alpha(r) = M(<r) / (pi r) in convergence units, with M(<r) from the regularised
     # incomplete gamma function (Graham & Driver 2005, eq. 2); to 1e-8.
-    from simlens.mass import SersicMass
+    from simlens.lensing.mass import SersicMass
 
     stars = SersicMass(kappa_e=0.6, half_light_radius=0.8, sersic_index=n)
     r = np.array([0.01, 0.2, 0.8, 3.0, 10.0])
@@ -251,8 +251,8 @@ def test_sersic_mass_deflection_equals_enclosed_mass(n):
 
 
 def test_sersic_mass_follows_the_light():
-    from simlens.light import Sersic
-    from simlens.mass import SersicMass
+    from simlens.imaging.light import Sersic
+    from simlens.lensing.mass import SersicMass
 
     light = Sersic(flux=5e4, half_light_radius=0.7, sersic_index=4.0, q=0.6, angle=35.0, center=(0.1, 0.0))
     stars = SersicMass.from_light(light, mass_to_light=2.0, sigma_cr_counts=3e4)
@@ -263,7 +263,7 @@ def test_sersic_mass_follows_the_light():
 def test_truncated_sis_has_finite_mass():
     # Pseudo-Jaffe: total mass pi b a (convergence units), so far away it deflects like a point mass
     # of Einstein radius sqrt(b a) (Keeton 2001, sect. 3.3); near the centre like the SIS.
-    from simlens.mass import TruncatedSIS
+    from simlens.lensing.mass import TruncatedSIS
 
     sub = TruncatedSIS(einstein_radius=0.1, truncation_radius=0.5)
     far = float(sub.deflection(200.0, 0.0)[0])
@@ -277,9 +277,9 @@ def test_truncated_sis_has_finite_mass():
 def test_tabulated_sersic_deflection_matches_the_quadrature(n, q):
     # The interpolation table (used for large ray arrays) against the homoeoidal quadrature itself
     # (Keeton 2001 integrals), from the centre to beyond the table's reach (100 R_e).
-    from simlens.mass import SersicMass
-    from simlens.mass.base import rotate_back, rotate_into_frame
-    from simlens.mass.sersic_mass import TABLE_ABOVE
+    from simlens.lensing.mass import SersicMass
+    from simlens.lensing.mass.base import rotate_back, rotate_into_frame
+    from simlens.lensing.mass.sersic_mass import TABLE_ABOVE
 
     mass = SersicMass(kappa_e=0.3, half_light_radius=1.2, sersic_index=n, q=q, angle=25.0, center=(0.1, -0.05))
     rng = np.random.default_rng(7)

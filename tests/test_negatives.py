@@ -10,11 +10,11 @@ from astropy.table import Table
 from scipy import integrate, stats
 
 import simlens
-from simlens.light import GaussianRing, SpiralArms
-from simlens.negatives import NEGATIVE_CLASSES
-from simlens.population import PopulationSampler
+from simlens.imaging.light import GaussianRing, SpiralArms
+from simlens.populations.negatives import NEGATIVE_CLASSES
+from simlens.truth.sampler import PopulationSampler
 from simlens.recipe import parse_recipe
-from simlens.scoring import score_run
+from simlens.scoring.cutouts import score_run
 
 from .conftest import PHYSICAL_RECIPE
 
@@ -24,7 +24,7 @@ def with_negatives(text: str, count: int) -> str:
 
 
 def test_every_negative_class_is_labelled_and_singly_imaged(tmp_path):
-    # The label's definition (simlens.scoring.lens_labels): multiple imaging plus the cuts; for a
+    # The label's definition (simlens.scoring.cutouts.lens_labels): multiple imaging plus the cuts; for a
     # negative nothing is deflected, so the image finder (triangle mapping, SEF sect. 11.2) sees at
     # most one image of the source centre.
     recipe = parse_recipe(with_negatives("[negatives]\nfraction = 1.0\n", 24).replace("shard_size = 3", "shard_size = 8"))

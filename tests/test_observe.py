@@ -8,12 +8,12 @@ import numpy as np
 import pytest
 from astropy.stats import sigma_clipped_stats
 
-from simlens.light import PointSource, Sersic
-from simlens.mass import SIS
-from simlens.observe import effective_psf_image, observe_scene, padding_for
-from simlens.raytrace import ComponentImages, PixelGrid, render_scene
-from simlens.render import observation_rays
-from simlens.survey import BandConditions
+from simlens.imaging.light import PointSource, Sersic
+from simlens.lensing.mass import SIS
+from simlens.imaging.observe import effective_psf_image, observe_scene, padding_for
+from simlens.imaging.rays import ComponentImages, PixelGrid, render_scene
+from simlens.imaging.render import observation_rays
+from simlens.truth.conditions import BandConditions
 
 
 def band(**changes) -> BandConditions:
@@ -73,7 +73,7 @@ def test_effective_psf_matches_galsim_convolved_with_the_pixel(profile, fwhm, be
     # convolution); within 0.2 % of the peak, unit sum, centred on the central pixel.
     import galsim
 
-    from simlens.observe import psf_profile
+    from simlens.imaging.observe import psf_profile
 
     conditions = band(psf_profile=profile, psf_fwhm=fwhm, psf_beta=beta)
     psf = effective_psf_image(conditions)
@@ -124,7 +124,7 @@ def test_circular_convolution_equals_linear_convolution_inside_the_cutout():
     # GalSim stage must agree on every pixel of the cutout, i.e. inside the padding.
     from scipy.signal import fftconvolve
 
-    from simlens.observe import _FFTConvolver, psf_kernel
+    from simlens.imaging.observe import _FFTConvolver, psf_kernel
 
     conditions = band(psf_fwhm=0.9)
     grid = PixelGrid(size=24, pixel_scale=0.2, supersampling=3, padding=padding_for(0.9, 0.2))
@@ -154,7 +154,7 @@ def test_unlensed_scene_matches_galsim_drawing_it_directly(profile):
         return galsim.Sersic(n=p.sersic_index, half_light_radius=p.half_light_radius, flux=p.flux).shear(
             q=p.q, beta=p.angle * galsim.degrees).shift(*p.center)
 
-    from simlens.observe import psf_profile
+    from simlens.imaging.observe import psf_profile
 
     big = galsim.GSParams(maximum_fft_size=16384)
     reference = galsim.Convolve(gs(lens) + gs(source), psf_profile(conditions), gsparams=big).drawImage(

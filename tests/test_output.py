@@ -15,8 +15,8 @@ from astropy.wcs.utils import proj_plane_pixel_scales
 
 import simlens
 from simlens.output import cutout_wcs
-from simlens.population import offset_on_sky
-from simlens.raytrace import PixelGrid
+from simlens.truth.sampler import offset_on_sky
+from simlens.imaging.rays import PixelGrid
 
 
 @pytest.fixture(scope="module")

@@ -12,13 +12,13 @@ from astropy import constants, units as u
 from astropy.cosmology import FlatLambdaCDM
 from scipy import integrate
 
-from simlens.caustics import find_caustics, inside_polygon
-from simlens.lens_equation import find_images, time_delays
-from simlens.mass import SIE, CoredIsothermal, ExternalShear, Multipole, PowerLaw
-from simlens.population import PopulationSampler
+from simlens.lensing.caustics import find_caustics, inside_polygon
+from simlens.lensing.lens_equation import find_images, time_delays
+from simlens.lensing.mass import SIE, CoredIsothermal, ExternalShear, Multipole, PowerLaw
+from simlens.truth.sampler import PopulationSampler
 from simlens.recipe import parse_recipe
-from simlens.distances import DistanceTable
-from simlens.velocity_function import VELOCITY_FUNCTIONS
+from simlens.cosmology_table import DistanceTable
+from simlens.populations.velocity_function import VELOCITY_FUNCTIONS
 
 WINDOWS = [(4.0, 0.03), (3.0, 0.01), (0.2, 0.004), (0.02, 0.0004), (0.002, 0.00004)]
 
@@ -80,7 +80,7 @@ def test_multiply_imaged_region_matches_the_image_finder(name):
 
 @pytest.mark.parametrize("name", ["sie_shear", "sie_flat", "sie_multipoles"])
 def test_closed_form_and_scanned_caustics_agree(name):
-    # Two routes to the tangential caustic of an isothermal lens (simlens.caustics): areas within
+    # Two routes to the tangential caustic of an isothermal lens (simlens.lensing.caustics): areas within
     # the 64-gon discretisation of the scan.
     mass = MODELS[name]
     closed, scanned = find_caustics(mass, 1.0), find_caustics(mass, 1.0, closed_form=False)

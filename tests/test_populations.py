@@ -11,12 +11,12 @@ import pytest
 from astropy.cosmology import FlatLambdaCDM, LambdaCDM, Planck18
 from scipy import integrate, stats
 
-from simlens.distances import DistanceTable
-from simlens.photometry import KCorrection, Template, ab_magnitude_offset, load_filter
-from simlens.population import PopulationSampler
+from simlens.cosmology_table import DistanceTable
+from simlens.populations.photometry import KCorrection, Template, ab_magnitude_offset, load_filter
+from simlens.truth.sampler import PopulationSampler
 from simlens.recipe import parse_recipe
-from simlens.scaling_relations import FaberJackson, FundamentalPlane, NumberCounts, RedshiftGivenMagnitude, SizeLuminosity
-from simlens.velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulation
+from simlens.populations.scaling_relations import FaberJackson, FundamentalPlane, NumberCounts, RedshiftGivenMagnitude, SizeLuminosity
+from simlens.populations.velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulation
 
 from .conftest import PHYSICAL_RECIPE
 

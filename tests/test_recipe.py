@@ -8,7 +8,7 @@ import pytest
 from simlens.cli import main
 from simlens.errors import RecipeError
 from simlens.recipe import parse_recipe
-from simlens.sampling import Choice, Fixed, Grid, LogUniform, TruncatedNormal, Uniform
+from simlens.recipe.distributions import Choice, Fixed, Grid, LogUniform, TruncatedNormal, Uniform
 
 from .conftest import PHYSICAL_RECIPE, SMALL_RECIPE
 

@@ -18,7 +18,7 @@ from astropy.table import Table
 
 import simlens
 from simlens.errors import RecipeError, SimlensError
-from simlens.loader import iter_batches, load_run
+from simlens.runs.loader import iter_batches, load_run
 from simlens.output.checksums import sha256_of
 from simlens.recipe import parse_recipe
 
@@ -96,7 +96,7 @@ def test_outputs_are_identical_whatever_the_engine(reference_run, tmp_path, engi
 
 def test_full_disk_keeps_finished_shards_and_resume_finishes_identically(reference_run, tmp_path, monkeypatch):
     recipe, _, reference = reference_run
-    import simlens.shard as shard_module
+    import simlens.runs.shards as shard_module
 
     real = shard_module.write_shard
     calls = {"n": 0}

@@ -14,7 +14,7 @@ import simlens
 from simlens.cli import main
 from simlens.errors import SimlensError
 from simlens.recipe import parse_recipe
-from simlens.scoring import CONFIDENCE, completeness_by, lens_labels, roc_area, roc_curve, score_run
+from simlens.scoring.cutouts import CONFIDENCE, completeness_by, lens_labels, roc_area, roc_curve, score_run
 
 from .conftest import PHYSICAL_RECIPE
 

@@ -11,8 +11,8 @@ from astropy import constants, units as u
 from astropy.table import Table
 
 import simlens
-from simlens.mass import ScaledDeflector
-from simlens.population import PopulationSampler
+from simlens.lensing.mass import ScaledDeflector
+from simlens.truth.sampler import PopulationSampler
 from simlens.recipe import parse_recipe
 
 from .conftest import SMALL_RECIPE

@@ -14,10 +14,10 @@ from astropy.table import Table
 import simlens
 from simlens.cli import main
 from simlens.errors import SimlensError
-from simlens.photometry import ab_magnitude_offset, Template, load_filter
-from simlens.population import PopulationSampler
+from simlens.populations.photometry import ab_magnitude_offset, Template, load_filter
+from simlens.truth.sampler import PopulationSampler
 from simlens.recipe import parse_recipe
-from simlens.render import render_system
+from simlens.imaging.render import render_system
 
 from .conftest import PHYSICAL_RECIPE
 

@@ -9,15 +9,15 @@ import pytest
 from astropy.cosmology import Planck18
 from scipy import integrate
 
-from simlens.composite_lens import critical_density_arcsec2, stars_and_halo
+from simlens.lensing.stars_and_halo import critical_density_arcsec2, stars_and_halo
 from simlens.cosmology import ARCSEC_PER_RADIAN, critical_surface_density
-from simlens.distances import DistanceTable
+from simlens.cosmology_table import DistanceTable
 from simlens.errors import RecipeError
-from simlens.lens_equation import find_images
-from simlens.mass import NFW, SersicMass
-from simlens.population import PopulationSampler
+from simlens.lensing.lens_equation import find_images
+from simlens.lensing.mass import NFW, SersicMass
+from simlens.truth.sampler import PopulationSampler
 from simlens.recipe import parse_recipe
-from simlens.render import render_system
+from simlens.imaging.render import render_system
 
 from .conftest import PHYSICAL_RECIPE
 

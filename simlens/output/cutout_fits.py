@@ -30,7 +30,7 @@ import numpy as np
 from astropy.io import fits
 from astropy.wcs import WCS
 
-from ..render import RenderedSystem
+from ..imaging.render import RenderedSystem
 from .atomic import atomic_path
 
 __all__ = ["cutout_wcs", "band_keywords", "write_cutout", "read_cutout"]

@@ -88,7 +88,7 @@ import astropy.units as u
 import numpy as np
 from astropy.table import Table
 
-from ..render import RenderedSystem
+from ..imaging.render import RenderedSystem
 
 __all__ = ["truth_row", "truth_table", "subhalo_rows", "subhalo_table", "image_rows", "image_table",
            "line_of_sight_rows", "line_of_sight_table", "TRUTH_UNITS"]

@@ -1,0 +1,265 @@
+"""Checks of a recipe that involve several keys, one function a section; run by parse_recipe."""
+
+from __future__ import annotations
+
+import difflib
+import re
+from pathlib import Path
+from typing import Mapping
+
+from ..errors import RecipeError
+from .distributions import Grid
+from .schema import MassSettings, Recipe
+from .values import shown
+
+__all__ = ["check_recipe"]
+
+_SAFE_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,99}$")
+
+
+def check_recipe(recipe: Recipe) -> None:
+    """Every check across keys, section by section; the first failure raises a RecipeError."""
+    _check_name(recipe)
+    _check_survey(recipe)
+    _check_colours(recipe)
+    needs_filters = _check_filters(recipe)
+    if recipe.field is not None:
+        _check_field(recipe, needs_filters)
+    _check_negatives(recipe)
+    _check_selection(recipe)
+    _check_mass(recipe)
+    _check_line_of_sight_and_subhalos(recipe)
+    _check_redshifts(recipe)
+    _check_position(recipe)
+    _check_cosmology(recipe)
+
+
+def _require_band(origin: str, path: str, value: str | None, names) -> None:
+    """A key naming a band must name one of the survey's."""
+    if value is not None and value not in names:
+        raise RecipeError(origin, path, f"{shown(value)} is not a band", ", ".join(repr(n) for n in names))
+
+
+def _require_filters(recipe: Recipe, why: str) -> None:
+    """Every band needs a filter curve for ``why`` (template or black-body colours)."""
+    missing = [b.name for b in recipe.survey.bands if b.filter is None]
+    if missing:
+        raise RecipeError(recipe.origin, f"survey.bands.{missing[0]}.filter", "is missing",
+                          f"a filter curve for {why}, e.g. filter = 'LSST_" + missing[0][:1] + "'")
+
+
+def _check_name(recipe: Recipe) -> None:
+    if not _SAFE_NAME.match(recipe.name):
+        # The name becomes the default run folder outputs/<name>: it must not reach outside it.
+        raise RecipeError(recipe.origin, "name", f"{shown(recipe.name)} cannot name a run folder",
+                          "letters, digits, '_', '-' and '.', starting with a letter or digit, no '/'")
+
+
+def _check_survey(recipe: Recipe) -> None:
+    survey = recipe.survey
+    if not survey.band_names:
+        raise RecipeError(recipe.origin, "survey.bands", "is missing", "at least one [survey.bands.NAME] table")
+    _require_band(recipe.origin, "survey.reference_band", survey.reference_band, survey.band_names)
+
+
+def _check_colours(recipe: Recipe) -> None:
+    """Either a physical model or explicit values (with a colour per non-reference band)."""
+    origin, lens, source = recipe.origin, recipe.lens, recipe.source
+    names, ref = recipe.survey.band_names, recipe.reference_band
+    others = [n for n in names if n != ref]
+    _check_either(origin, "lens", lens.population is not None, "population",
+                  {"redshift": lens.redshift, "velocity_dispersion": lens.velocity_dispersion})
+    _check_either(origin, "lens.light", lens.light.scaling is not None, "scaling",
+                  {"magnitude": lens.light.magnitude, "half_light_radius": lens.light.half_light_radius},
+                  colors=lens.light.colors)
+    _check_either(origin, "source", source.counts is not None, "counts",
+                  {"redshift": source.redshift, "magnitude": source.magnitude,
+                   "half_light_radius": source.half_light_radius}, colors=source.colors)
+    if source.counts is not None and source.clumps.colors:
+        raise RecipeError(origin, "source.clumps.colors", "is set together with source.counts",
+                          "source.clumps.template (colours come from templates with source.counts)")
+    if source.counts is None and source.clumps.template is not None:
+        raise RecipeError(origin, "source.clumps.template", "needs source.counts (template colours)",
+                          "source.clumps.colors, or a [source.counts] table")
+    if source.counts is not None:
+        _require_band(origin, "source.counts.band", source.counts.band, names)
+    color_sets = [("lens.light.colors", lens.light.colors, lens.light.scaling is None),
+                  ("source.colors", source.colors, source.counts is None),
+                  ("source.clumps.colors", source.clumps.colors, False)]
+    if source.second is not None:
+        color_sets.append(("source.second.colors", source.second.colors, False))
+    for path, colors, required in color_sets:
+        for band in colors:
+            if band not in others:
+                why = "is the reference band (its colour is 0 by definition)" if band == ref else "is not a band"
+                raise RecipeError(origin, f"{path}.{band[:80]}", why,
+                                  "the bands " + ", ".join(repr(n) for n in others) if others else "no colours")
+        if required or colors:
+            missing = [n for n in others if n not in colors]
+            if missing:
+                raise RecipeError(origin, path, f"has no colour for band {missing[0]!r}",
+                                  f"m_band - m_{ref} for each of " + ", ".join(repr(n) for n in others))
+
+
+def _check_filters(recipe: Recipe) -> list:
+    """Filter curves load; the models that need them have them.  Returns the keys needing them."""
+    origin, lens, source = recipe.origin, recipe.lens, recipe.source
+    needs_filters = [what for what, on in (("lens.light.scaling", lens.light.scaling is not None),
+                                           ("source.counts", source.counts is not None),
+                                           ("source.quasar", source.quasar is not None)) if on]
+    if needs_filters:
+        _require_filters(recipe, f"the template colours that {needs_filters[0]} asks for")
+    base = str(Path(origin).parent) if origin != "<recipe>" else "."
+    for band in recipe.survey.bands:
+        if band.filter is not None:
+            _check_filter(origin, f"survey.bands.{band.name}.filter", band.filter, base)
+    for path, settings in (("lens.light.scaling", lens.light.scaling), ("source.counts", source.counts)):
+        if settings is not None:
+            _check_filter(origin, f"{path}.rest_filter", settings.rest_filter, base)
+    return needs_filters
+
+
+def _check_negatives(recipe: Recipe) -> None:
+    neg = recipe.negatives
+    if neg.fraction > 0 and sum(neg.weights().values()) <= 0:
+        raise RecipeError(recipe.origin, "negatives", f"fraction = {neg.fraction:g} but every class weight is 0",
+                          "a positive weight for at least one class")
+
+
+def _check_selection(recipe: Recipe) -> None:
+    _require_band(recipe.origin, "selection.arc_snr_band", recipe.selection.arc_snr_band, recipe.survey.band_names)
+
+
+def _check_mass(recipe: Recipe) -> None:
+    origin = recipe.origin
+    mass, defaults = recipe.lens.mass, MassSettings()
+    for key, model in (("slope", "power_law"), ("core_radius", "cored_isothermal"),
+                       ("halo_ellipticity", "stars_and_halo")):
+        if mass.model != model and getattr(mass, key) != getattr(defaults, key):
+            raise RecipeError(origin, f"lens.mass.{key}", f"applies to model = '{model}' only, "
+                              f"not to model = '{mass.model}'", f"remove it, or set model = '{model}'")
+    for key in ("halo_mass", "concentration"):
+        if mass.model != "stars_and_halo" and getattr(mass, key) is not None:
+            raise RecipeError(origin, f"lens.mass.{key}", "applies to model = 'stars_and_halo' only",
+                              "remove it, or set model = 'stars_and_halo'")
+    if mass.model == "stars_and_halo":
+        if mass.halo_mass is None:
+            raise RecipeError(origin, "lens.mass.halo_mass", "is missing for model = 'stars_and_halo'",
+                              "an NFW M200 in M_sun, e.g. { log_uniform = [1e12, 1e13] }")
+        scaling = recipe.lens.light.scaling
+        if scaling is None or scaling.mass_to_light is None:
+            raise RecipeError(origin, "lens.light.scaling.mass_to_light",
+                              "is needed for model = 'stars_and_halo' (the stars' mass follows the light)",
+                              "a [lens.light.scaling] table with mass_to_light")
+
+
+def _check_line_of_sight_and_subhalos(recipe: Recipe) -> None:
+    origin = recipe.origin
+    if isinstance(recipe.lens.line_of_sight.velocity_dispersion, Grid):
+        raise RecipeError(origin, "lens.line_of_sight.velocity_dispersion",
+                          "is drawn for each line-of-sight galaxy, so a grid does not fit",
+                          "a number or a distribution")
+    subs = recipe.lens.subhalos
+    if not subs.mass_min < subs.mass_max:
+        raise RecipeError(origin, "lens.subhalos.mass_max", f"{subs.mass_max:g} is not above mass_min {subs.mass_min:g}",
+                          "mass_min < mass_max")
+    if subs.annulus.support[1] >= subs.annulus_outer.support[0]:
+        raise RecipeError(origin, "lens.subhalos.annulus_outer", "can be inside the inner radius (annulus)",
+                          "annulus_outer above annulus for every draw")
+
+
+def _check_redshifts(recipe: Recipe) -> None:
+    origin, lens, source = recipe.origin, recipe.lens, recipe.source
+    z_lens = lens.population.redshift_range if lens.population is not None else lens.redshift.support
+    z_source = source.counts.redshift_range if source.counts is not None else source.redshift.support
+    if source.position.mode is None and z_source[0] <= z_lens[1]:
+        raise RecipeError(origin, "source.counts.redshift_range" if source.counts is not None else "source.redshift",
+                          f"can be {z_source[0]:g}, not behind lenses at redshift up to {z_lens[1]:g} "
+                          f"({'lens.population.redshift_range' if lens.population is not None else 'lens.redshift'})",
+                          "source redshifts all above the largest lens redshift, or a placement mode "
+                          "(source.position.mode = 'lens' redraws pairs, 'sky' keeps foreground sources)")
+    if z_source[1] <= z_lens[0]:
+        raise RecipeError(origin, "source", f"no source can lie behind a lens: sources reach z = {z_source[1]:g}, "
+                          f"lenses start at z = {z_lens[0]:g}", "overlapping redshift ranges")
+
+
+def _check_position(recipe: Recipe) -> None:
+    origin, pos = recipe.origin, recipe.source.position
+    explicit = pos.radius_in_einstein_radii is not None or pos.x is not None or pos.y is not None
+    if pos.mode is not None and explicit:
+        raise RecipeError(origin, "source.position", f"gives mode = {pos.mode!r} and explicit positions",
+                          "either mode, or radius_in_einstein_radii, or x and y")
+    if pos.radius_in_einstein_radii is not None and (pos.x is not None or pos.y is not None):
+        raise RecipeError(origin, "source.position", "gives both radius_in_einstein_radii and x/y",
+                          "either radius_in_einstein_radii, or x and y")
+    if (pos.x is None) != (pos.y is None):
+        raise RecipeError(origin, "source.position", "gives only one of x and y", "both x and y")
+    if pos.mode == "sky" and pos.density is None and recipe.source.counts is None:
+        raise RecipeError(origin, "source.position.density", "is missing for mode = 'sky'",
+                          "a source density (arcmin^-2), or a [source.counts] table")
+    if pos.mode != "sky" and pos.density is not None:
+        raise RecipeError(origin, "source.position.density", "applies to mode = 'sky' only",
+                          "remove it, or set mode = 'sky'")
+
+
+def _check_cosmology(recipe: Recipe) -> None:
+    origin, cosmo = recipe.origin, recipe.cosmology
+    if cosmo.name is not None:
+        from ..cosmology import available_names
+
+        if any(v is not None for v in (cosmo.H0, cosmo.Om0, cosmo.Ode0)):
+            raise RecipeError(origin, "cosmology", "gives both a name and parameters",
+                              "either name = 'Planck18' or H0, Om0 (and optionally Ode0)")
+        if cosmo.name not in available_names():
+            hint = difflib.get_close_matches(cosmo.name, available_names(), n=1, cutoff=0.4)
+            raise RecipeError(origin, "cosmology.name", f"unknown cosmology {shown(cosmo.name)}"
+                              + (f"; did you mean {hint[0]!r}?" if hint else ""),
+                              ", ".join(available_names()))
+    elif cosmo.H0 is None or cosmo.Om0 is None:
+        raise RecipeError(origin, "cosmology", "needs a name or both H0 and Om0",
+                          "name = 'Planck18', or H0 = 70, Om0 = 0.3")
+
+
+def _check_field(recipe: Recipe, needs_filters: list) -> None:
+    origin, f = recipe.origin, recipe.field
+    if f.lens_stamp_size > f.size:
+        raise RecipeError(origin, "field.lens_stamp_size", f"{f.lens_stamp_size} is larger than the field ({f.size})",
+                          "a stamp smaller than field.size")
+    cells = f.cells_per_side() ** 2
+    if f.lenses > cells:
+        raise RecipeError(origin, "field.lenses", f"{f.lenses} lenses do not fit: the field holds {cells} "
+                          f"non-overlapping stamps of {f.lens_stamp_size} pixels",
+                          f"at most {cells}, a larger field.size or a smaller field.lens_stamp_size")
+    if f.lens_stamp_size < recipe.survey.cutout_size:
+        raise RecipeError(origin, "field.lens_stamp_size", f"{f.lens_stamp_size} is smaller than the cutout "
+                          f"({recipe.survey.cutout_size})", "at least survey.cutout_size")
+    _require_band(origin, "field.galaxies.band", f.galaxies.band, recipe.survey.band_names)
+    if f.galaxies.density > 0:
+        _require_filters(recipe, "the background galaxies' template colours (or field.galaxies.density = 0)")
+    if f.stars.density > 0:
+        _require_filters(recipe, "the stars' black-body colours (or field.stars.density = 0)")
+
+
+def _check_either(origin: str, where: str, table_given: bool, table_name: str, keys: Mapping,
+                  colors: Mapping | None = None) -> None:
+    """Either the sub-table ``table_name`` (a physical model) or all the explicit ``keys``."""
+    given = [k for k, v in keys.items() if v is not None] + (["colors"] if colors else [])
+    if table_given and given:
+        raise RecipeError(origin, f"{where}.{given[0]}", f"is set together with [{where}.{table_name}]",
+                          f"either [{where}.{table_name}] or explicit " + ", ".join(keys))
+    if not table_given:
+        missing = [k for k, v in keys.items() if v is None]
+        if missing:
+            raise RecipeError(origin, f"{where}.{missing[0]}", "is missing",
+                              f"a value or distribution, or a [{where}.{table_name}] table")
+
+
+def _check_filter(origin: str, path: str, spec: str, base: str) -> None:
+    from ..populations.photometry import load_filter
+
+    try:
+        load_filter(spec, base)
+    except (OSError, ValueError) as exc:
+        raise RecipeError(origin, path, str(exc), "a GalSim filter name or a two-column text file") from None
+
+

@@ -1,0 +1,257 @@
+"""Recipe parameter distributions: the small frozen objects a numeric recipe key becomes.
+
+Each draws from a ``numpy.random.Generator`` or maps uniform variates (``from_uniform`` on arrays:
+every distribution here is drawn by its inverse CDF, so a system's parameters cost one vector of
+uniforms) and knows its *support* (the closed range of values it can produce), which the recipe
+validator compares with the range a parameter accepts *before* any work is done.
+
+Grids: parameters given as ``{ grid = [...] }`` span a Cartesian product of cells (in the order the
+recipe schema lists the parameters). System ``i`` takes cell ``i mod n_cells``
+(:func:`simlens.truth.streams.grid_cell`); a count of ``k * n_cells`` gives ``k`` realisations of
+every cell.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Union
+
+import numpy as np
+from scipy import special, stats
+
+__all__ = [
+    "Fixed",
+    "Uniform",
+    "LogUniform",
+    "TruncatedNormal",
+    "Choice",
+    "Grid",
+    "Parameter",
+]
+
+
+@dataclass(frozen=True)
+class Fixed:
+    """A parameter that always takes ``value``."""
+
+    value: float
+
+    def draw(self, rng: np.random.Generator) -> float:
+        return self.value
+
+    def from_uniform(self, u: float) -> float:
+        return self.value
+
+    def from_uniforms(self, u: np.ndarray) -> np.ndarray:
+        """``from_uniform`` of every entry of ``u`` (vectorised; used by simlens.block_sampling)."""
+        return np.full(np.shape(u), float(self.value))
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (self.value, self.value)
+
+    def describe(self) -> str:
+        return f"{self.value:g}"
+
+
+@dataclass(frozen=True)
+class Uniform:
+    """Uniform on ``[low, high]``."""
+
+    low: float
+    high: float
+
+    def __post_init__(self):
+        if not self.high > self.low:
+            raise ValueError(f"uniform needs low < high, got [{self.low}, {self.high}]")
+
+    def draw(self, rng: np.random.Generator) -> float:
+        return self.from_uniform(rng.uniform())
+
+    def from_uniform(self, u: float) -> float:
+        return self.low + u * (self.high - self.low)
+
+    def from_uniforms(self, u: np.ndarray) -> np.ndarray:
+        return self.low + np.asarray(u, dtype=float) * (self.high - self.low)
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (self.low, self.high)
+
+    def describe(self) -> str:
+        return f"uniform [{self.low:g}, {self.high:g}]"
+
+
+@dataclass(frozen=True)
+class LogUniform:
+    """Uniform in ``log(value)`` on ``[low, high]``, with ``0 < low < high``."""
+
+    low: float
+    high: float
+
+    def __post_init__(self):
+        if not (self.low > 0 and self.high > self.low):
+            raise ValueError(f"log_uniform needs 0 < low < high, got [{self.low}, {self.high}]")
+
+    def draw(self, rng: np.random.Generator) -> float:
+        return self.from_uniform(rng.uniform())
+
+    def from_uniform(self, u: float) -> float:
+        lo = math.log(self.low)
+        return math.exp(lo + u * (math.log(self.high) - lo))
+
+    def from_uniforms(self, u: np.ndarray) -> np.ndarray:
+        lo = math.log(self.low)
+        t = lo + np.asarray(u, dtype=float) * (math.log(self.high) - lo)
+        # math.exp, not np.exp: the same values as from_uniform to the last bit
+        return np.fromiter((math.exp(v) for v in t.ravel()), float, t.size).reshape(t.shape)
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (self.low, self.high)
+
+    def describe(self) -> str:
+        return f"log-uniform [{self.low:g}, {self.high:g}]"
+
+
+@dataclass(frozen=True)
+class TruncatedNormal:
+    """A normal distribution (``mean``, ``sigma``) truncated to ``[low, high]``.
+
+    ``low``/``high`` may be infinite; the support is then unbounded on that side.
+    Drawn by inverting the truncated CDF with scipy.special's ndtr/ndtri (the same values as
+    scipy.stats.truncnorm.ppf, at a hundredth of the cost), one uniform per draw; a range above the
+    mean is inverted on the mirrored side, where the CDF keeps its precision.
+    """
+
+    mean: float
+    sigma: float
+    low: float = -math.inf
+    high: float = math.inf
+
+    def __post_init__(self):
+        if not self.sigma > 0:
+            raise ValueError(f"normal needs sigma > 0, got {self.sigma}")
+        if not self.high > self.low:
+            raise ValueError(f"normal needs a range with low < high, got [{self.low}, {self.high}]")
+        a, b = (self.low - self.mean) / self.sigma, (self.high - self.mean) / self.sigma
+        if stats.norm.cdf(b) - stats.norm.cdf(a) < 1e-12:
+            raise ValueError(
+                f"normal({self.mean}, {self.sigma}) has no probability in [{self.low}, {self.high}]"
+            )
+
+    def draw(self, rng: np.random.Generator) -> float:
+        return self.from_uniform(rng.uniform())
+
+    def from_uniform(self, u: float) -> float:
+        a, b = (self.low - self.mean) / self.sigma, (self.high - self.mean) / self.sigma
+        if a > 0:  # mirror: -x is a normal truncated to [-b, -a]
+            lo, hi = special.ndtr(-b), special.ndtr(-a)
+            x = -special.ndtri(hi - u * (hi - lo))
+        else:
+            lo, hi = special.ndtr(a), special.ndtr(b)
+            x = special.ndtri(lo + u * (hi - lo))
+        return float(min(max(self.mean + self.sigma * x, self.low), self.high))
+
+    def from_uniforms(self, u: np.ndarray) -> np.ndarray:
+        u = np.asarray(u, dtype=float)
+        a, b = (self.low - self.mean) / self.sigma, (self.high - self.mean) / self.sigma
+        if a > 0:
+            lo, hi = special.ndtr(-b), special.ndtr(-a)
+            x = -special.ndtri(hi - u * (hi - lo))
+        else:
+            lo, hi = special.ndtr(a), special.ndtr(b)
+            x = special.ndtri(lo + u * (hi - lo))
+        return np.minimum(np.maximum(self.mean + self.sigma * x, self.low), self.high)
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (self.low, self.high)
+
+    def describe(self) -> str:
+        return f"normal({self.mean:g}, {self.sigma:g}) within [{self.low:g}, {self.high:g}]"
+
+
+@dataclass(frozen=True)
+class Choice:
+    """One of ``values``, with optional ``weights`` (normalised here)."""
+
+    values: tuple[float, ...]
+    weights: tuple[float, ...] | None = None
+
+    def __post_init__(self):
+        if len(self.values) == 0:
+            raise ValueError("choice needs at least one value")
+        if self.weights is not None:
+            if len(self.weights) != len(self.values):
+                raise ValueError(
+                    f"choice has {len(self.values)} values but {len(self.weights)} weights"
+                )
+            if any(w < 0 for w in self.weights) or sum(self.weights) <= 0:
+                raise ValueError("choice weights must be >= 0 with a positive sum")
+
+    def draw(self, rng: np.random.Generator) -> float:
+        return self.from_uniform(rng.uniform())
+
+    def from_uniform(self, u: float) -> float:
+        """The value whose cumulative weight first exceeds ``u`` (inverse CDF)."""
+        n = len(self.values)
+        weights = self.weights if self.weights is not None else (1.0,) * n
+        target = u * float(sum(weights))
+        cumulative = 0.0
+        for value, w in zip(self.values, weights):
+            cumulative += w
+            if target < cumulative and w > 0:
+                return value
+        return next(v for v, w in zip(reversed(self.values), reversed(weights)) if w > 0)
+
+    def from_uniforms(self, u: np.ndarray) -> np.ndarray:
+        n = len(self.values)
+        weights = self.weights if self.weights is not None else (1.0,) * n
+        target = np.asarray(u, dtype=float) * float(sum(weights))
+        cumulative = np.cumsum(np.asarray(weights, dtype=float))  # running sums, as from_uniform adds them
+        usable = np.asarray(weights) > 0
+        hit = (target[..., None] < cumulative) & usable
+        last = max(j for j in range(n) if usable[j])
+        index = np.where(hit.any(axis=-1), np.argmax(hit, axis=-1), last)
+        return np.asarray(self.values, dtype=float)[index]
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (min(self.values), max(self.values))
+
+    def describe(self) -> str:
+        return "choice of " + ", ".join(f"{v:g}" for v in self.values)
+
+
+@dataclass(frozen=True)
+class Grid:
+    """Systematic values: the system's grid cell picks one (see the module docstring)."""
+
+    values: tuple[float, ...]
+
+    def __post_init__(self):
+        if len(self.values) == 0:
+            raise ValueError("grid needs at least one value")
+
+    def draw(self, rng: np.random.Generator) -> float:  # pragma: no cover - guarded
+        raise TypeError("grid parameters take their value from the system's grid cell")
+
+    def from_uniform(self, u: float) -> float:  # pragma: no cover - guarded
+        raise TypeError("grid parameters take their value from the system's grid cell")
+
+    def at(self, index: int) -> float:
+        return self.values[index]
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (min(self.values), max(self.values))
+
+    def describe(self) -> str:
+        return "grid of " + ", ".join(f"{v:g}" for v in self.values)
+
+
+Parameter = Union[Fixed, Uniform, LogUniform, TruncatedNormal, Choice, Grid]
+
+

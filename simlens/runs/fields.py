@@ -1,0 +1,273 @@
+"""Field images: whole survey images with lenses at known places among unlensed galaxies and stars.
+
+A recipe with a ``[field]`` table makes fields instead of cutout shards, for finders that scan whole
+images.  The run's ``count`` systems are spread ``field.lenses`` to a field, in id order (field k
+holds systems ``k * lenses ...``); each field is one unit of work, resumed and verified like a shard.
+For one field:
+
+1. *Conditions.*  One set of seeing, sky and depth per field: the band conditions drawn for the
+   field's first system, which every lens of the field then takes
+   (``PopulationSampler(recipe, conditions=...)``); the field centre is that system's sky position.
+2. *Lenses.*  The field is cut into cells of ``lens_stamp_size`` pixels; each lens gets its own
+   cell (drawn without replacement) and a whole-pixel place inside it, so no two stamps overlap.
+   Each system is selected and rendered as in a cutout run, on a stamp of ``lens_stamp_size``
+   pixels (lens light beyond the stamp is dropped), and its noiseless lens light and lensed source
+   are added to the field.  The lens centre is the stamp centre: 0-based pixel
+   ``(x0 + (s - 1) / 2, y0 + (s - 1) / 2)``.
+3. *Background.*  Galaxies and stars from number counts (:mod:`simlens.background`), drawn by
+   GalSim (profile convolved with the band's PSF and the pixel) at their sub-pixel positions.  They
+   are not lensed; galaxies are kept away from the lenses (``lens_clearance``).
+4. *Noise.*  ``galsim.CCDNoise`` over the whole field (sky, Poisson of all the light, read noise),
+   sky-subtracted, as in the cutouts.
+
+Files, per field ``fields/field_<k>.fits``:
+
+==================  ==============================================================================
+HDU (EXTNAME)       content
+==================  ==============================================================================
+PRIMARY             no data; FIELDID, RUNNAME, centre RA/DEC, NLENSES, NGALAXY, NSTAR, BANDS
+``B``               observed field in band B (ADU, sky-subtracted), celestial TAN WCS
+``B_SOURCE``        the lensed sources alone, noiseless (what the lenses add beyond their galaxies)
+``B_PSF``           the band's effective PSF (PSF convolved with the pixel), unit sum
+TRUTH               one row per lens: the truth columns of a cutout run plus field_id, x_pixel,
+                    y_pixel (0-based pixel of the lens centre) and ra, dec (its sky position)
+OBJECTS             the background galaxies and stars (:class:`simlens.background.BackgroundObjects`)
+IMAGE_TRUTH ...     images, subhalos and line-of-sight galaxies of the lenses, keyed by system_id
+==================  ==============================================================================
+
+and ``fields/field_<k>.reg``: the lenses as circles (radius max(2 theta_E, 2 arcsec), labelled with
+the system id and theta_E) in sky coordinates, in the plain-text region format that common FITS
+viewers overlay.  The run folder's ``truth`` and ``field_objects`` catalogues gather every field.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import time
+from pathlib import Path
+
+import galsim
+import numpy as np
+from astropy.io import fits
+from astropy.table import Table
+
+from ..populations.background import BackgroundModel, BackgroundObjects
+from ..cosmology_table import DistanceTable
+from ..imaging.observe import effective_psf_image, psf_profile
+from ..output.atomic import atomic_path
+from ..output.checksums import sha256_of
+from ..output.cutout_fits import band_keywords, cutout_wcs
+from ..output.truth import (image_rows, image_table, line_of_sight_rows, line_of_sight_table, subhalo_rows,
+                           subhalo_table, truth_row, truth_table)
+from ..truth.sampler import PopulationSampler
+from ..recipe import Recipe
+from ..truth.streams import field_streams
+from ..truth.selection import merge_attrition, select_and_render
+from .shards import ShardResult, ShardSpec, shard_path
+
+__all__ = ["render_field", "place_lenses", "region_path", "region_text", "objects_table", "describe_fields",
+           "expected_background", "FIELD_STREAMS"]
+
+FIELD_STREAMS = ("layout", "background", "noise")
+REGION_MIN_RADIUS = 2.0  # arcsec
+# GalSim sizes a stamp so that about folding_threshold of the flux falls outside it (default 5e-3).
+# A bright star would then end in a visible square edge, so the threshold is lowered until the lost
+# flux is at most about one pixel's noise sigma (powers of ten, so GalSim's profile caches hold).
+# GalSim refuses FFTs above 8192 by default; big bright galaxies may need more.
+FOLDING_THRESHOLDS = tuple(galsim.GSParams(maximum_fft_size=16384, folding_threshold=t)
+                           for t in (5e-3, 1e-3, 1e-4, 1e-5, 1e-6))
+
+
+def gsparams_for(flux: float, noise_sigma: float) -> galsim.GSParams:
+    """The largest folding threshold that loses no more than ``noise_sigma`` of ``flux``."""
+    for gsparams in FOLDING_THRESHOLDS:
+        if gsparams.folding_threshold * flux <= noise_sigma:
+            return gsparams
+    return FOLDING_THRESHOLDS[-1]
+
+
+def region_path(recipe: Recipe, index: int) -> str:
+    return shard_path(recipe, index)[:-len(".fits")] + ".reg"
+
+
+def place_lenses(size: int, stamp: int, n: int, rng) -> list[tuple[int, int]]:
+    """Lower-left pixels ``(x0, y0)`` of ``n`` stamps of side ``stamp`` in a ``size`` field: distinct
+    cells of a grid of ``size // stamp`` cells a side, a uniform whole-pixel place in each."""
+    per_side = size // stamp
+    cell = size // per_side
+    chosen = rng.choice(per_side * per_side, size=n, replace=False)
+    origins = []
+    for index in chosen:
+        cy, cx = divmod(int(index), per_side)
+        origins.append((cx * cell + int(rng.integers(0, cell - stamp + 1)),
+                        cy * cell + int(rng.integers(0, cell - stamp + 1))))
+    return origins
+
+
+def _draw_objects(image: galsim.Image, objects: BackgroundObjects, band) -> None:
+    """Add the background objects to ``image`` (GalSim; ADU; 0-based object positions)."""
+    psfs = {id(g): psf_profile(band).withGSParams(g) for g in FOLDING_THRESHOLDS}
+    sigma = band.background_sigma
+    for k in range(len(objects)):
+        flux = band.counts_from_magnitude(float(objects.magnitudes[band.name][k]))
+        gsparams = gsparams_for(flux, sigma)
+        psf = psfs[id(gsparams)]
+        if objects.kind[k] == "star":
+            profile = psf.withFlux(flux)
+        else:
+            galaxy = galsim.Sersic(n=float(objects.sersic_index[k]), half_light_radius=float(objects.half_light_radius[k]),
+                                   flux=flux, gsparams=gsparams)
+            galaxy = galaxy.shear(q=float(objects.q[k]), beta=float(objects.angle[k]) * galsim.degrees)
+            profile = galsim.Convolve(galaxy, psf, gsparams=gsparams)
+        # GalSim pixels are 1-based: the 0-based pixel centre x sits at x + 1
+        stamp = profile.drawImage(scale=band.pixel_scale, center=galsim.PositionD(objects.x[k] + 1.0, objects.y[k] + 1.0))
+        overlap = stamp.bounds & image.bounds
+        if overlap.isDefined():
+            image[overlap] += stamp[overlap]
+
+
+def region_text(rows: list[dict], title: str) -> str:
+    """The lenses of one field as sky circles in the plain-text region format (fk5, degrees)."""
+    lines = ["# Region file format: DS9 version 4.1", f"# {title}",
+             "# circles: lens systems, radius max(2 theta_E, 2 arcsec); text: system id and theta_E",
+             'global color=green width=2 font="helvetica 10 normal"', "fk5"]
+    for row in rows:
+        radius = max(2.0 * row["einstein_radius"], REGION_MIN_RADIUS)
+        lines.append(f'circle({row["ra"]:.8f},{row["dec"]:+.8f},{radius:.2f}") '
+                     f'# text={{{row["system_id"]} thetaE={row["einstein_radius"]:.2f}"}}')
+    return "\n".join(lines) + "\n"
+
+
+OBJECT_UNITS = {"ra": "deg", "dec": "deg", "half_light_radius": "arcsec", "angle": "deg", "temperature": "K"}
+
+
+def objects_table(rows: list[dict], bands: tuple) -> Table:
+    names = (["field_id", "object_id", "kind", "x_pixel", "y_pixel", "ra", "dec"] + [f"mag_{b}" for b in bands]
+             + ["redshift", "half_light_radius", "sersic_index", "q", "angle", "temperature"])
+    if rows:
+        table = Table(rows=rows, names=names)
+    else:
+        table = Table(names=names, dtype=[np.int64, np.int64, "U6"] + [float] * (len(names) - 3))
+    for name, unit in OBJECT_UNITS.items():
+        table[name].unit = unit
+    for b in bands:
+        table[f"mag_{b}"].unit = "mag"
+    return table
+
+
+def render_field(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> ShardResult:
+    """Render field ``spec.index`` (systems ``spec.first_system ...``) and write its files."""
+    galsim.set_omp_threads(1)
+    run_folder = Path(run_folder)
+    settings, survey = recipe.field, recipe.survey
+    size, stamp, scale = settings.size, settings.lens_stamp_size, survey.pixel_scale
+    timings = {"sampling": 0.0, "ray_tracing": 0.0, "image_finding": 0.0, "adaptive_refinement": 0.0,
+               "scene": 0.0, "galsim_stage": 0.0, "background": 0.0, "noise": 0.0, "writing": 0.0}
+    t0 = time.perf_counter()
+    # the stamp size changes no draw, so one sampler gives the field's conditions and then its lenses
+    sampler = PopulationSampler(dataclasses.replace(recipe, survey=dataclasses.replace(survey, cutout_size=stamp)))
+    first = sampler.draw(spec.first_system)
+    conditions = first.bands
+    sampler.conditions = conditions
+    wcs = cutout_wcs(first.ra, first.dec, scale, size)
+    streams = field_streams(recipe.seed, spec.index, FIELD_STREAMS)
+    origins = place_lenses(size, stamp, spec.n_systems, streams["layout"])
+    timings["sampling"] += time.perf_counter() - t0
+
+    file = shard_path(recipe, spec.index)
+    lenses, rows, subhalos, images, los = [], [], [], [], []
+    attrition: dict = {}
+    for k, (x0, y0) in enumerate(origins):
+        t1 = time.perf_counter()
+        rendered, selected = select_and_render(sampler, spec.first_system + k)
+        merge_attrition(attrition, selected["rejections"])
+        for key, value in rendered.timings.items():
+            timings[key] += value
+        timings["sampling"] += time.perf_counter() - t1 - sum(rendered.timings.values())
+        x, y = x0 + 0.5 * (stamp - 1), y0 + 0.5 * (stamp - 1)
+        ra, dec = (float(v) for v in wcs.wcs_pix2world(x, y, 0))
+        rendered = dataclasses.replace(rendered, system=dataclasses.replace(rendered.system, ra=ra, dec=dec))
+        lenses.append((x0, y0, rendered))
+        row = truth_row(rendered, file, shard=file, shard_index=k, flags=selected["flags"],
+                        cut_names=recipe.selection.cut_names)
+        rows.append({"field_id": spec.index, "x_pixel": x, "y_pixel": y, **row})
+        subhalos += subhalo_rows(rendered)
+        images += image_rows(rendered)
+        los += line_of_sight_rows(rendered)
+
+    t2 = time.perf_counter()
+    background = BackgroundModel(recipe, sampler.distances)
+    objects = background.draw(streams["background"], [(r["x_pixel"], r["y_pixel"], r["einstein_radius"]) for r in rows])
+    noise_seeds = streams["noise"].integers(1, 2**31 - 1, size=len(conditions))
+    primary = fits.PrimaryHDU()
+    h = primary.header
+    h["FIELDID"] = (spec.index, "field index within the run")
+    h["RUNNAME"] = (recipe.name[:68], "simlens run")
+    h["RA"] = (first.ra, "[deg] field centre right ascension")
+    h["DEC"] = (first.dec, "[deg] field centre declination")
+    h["FIRSTID"] = (spec.first_system, "system id of the first lens")
+    h["NLENSES"] = (spec.n_systems, "lens systems in this field (TRUTH rows)")
+    h["NGALAXY"] = (int(np.count_nonzero(objects.kind == "galaxy")), "background galaxies (OBJECTS rows)")
+    h["NSTAR"] = (int(np.count_nonzero(objects.kind == "star")), "stars (OBJECTS rows)")
+    h["BANDS"] = (",".join(survey.band_names), "bands in HDU order")
+    hdus = [primary]
+    timings["background"] += time.perf_counter() - t2
+    for b, band in enumerate(conditions):
+        t3 = time.perf_counter()
+        scene = np.zeros((size, size))
+        sources = np.zeros((size, size))
+        for x0, y0, rendered in lenses:
+            observed = rendered.bands[b]
+            window = (slice(y0, y0 + stamp), slice(x0, x0 + stamp))
+            scene[window] += observed.lens_light + observed.lensed_source
+            sources[window] += observed.lensed_source
+        image = galsim.Image(scene, scale=scale)
+        _draw_objects(image, objects, band)
+        timings["background"] += time.perf_counter() - t3
+        t4 = time.perf_counter()
+        np.clip(image.array, 0.0, None, out=image.array)  # FFT ringing of order 1e-16 of a peak
+        image.addNoise(galsim.CCDNoise(galsim.BaseDeviate(int(noise_seeds[b])), sky_level=band.sky_level,
+                                       gain=band.gain, read_noise=band.read_noise))
+        timings["noise"] += time.perf_counter() - t4
+        header = wcs.to_header()
+        for data, name, content in ((image.array, band.name, "observed field"),
+                                    (sources, f"{band.name}_SOURCE", "noiseless lensed sources")):
+            hdu = fits.ImageHDU(data=data.astype(np.float32), header=header.copy(), name=name)
+            band_keywords(hdu.header, band, content)
+            hdus.append(hdu)
+        psf = fits.ImageHDU(data=effective_psf_image(band).astype(np.float32), name=f"{band.name}_PSF")
+        band_keywords(psf.header, band, "psf")
+        hdus.append(psf)
+
+    t5 = time.perf_counter()
+    truth = truth_table(rows)
+    hdus += [fits.BinTableHDU(truth, name="TRUTH"),
+             fits.BinTableHDU(objects_table(objects.rows(spec.index, wcs), survey.band_names), name="OBJECTS"),
+             fits.BinTableHDU(image_table(images), name="IMAGE_TRUTH"),
+             fits.BinTableHDU(subhalo_table(subhalos), name="SUBHALOS"),
+             fits.BinTableHDU(line_of_sight_table(los), name="LINE_OF_SIGHT")]
+    with atomic_path(run_folder / file) as tmp:
+        fits.HDUList(hdus).writeto(tmp)
+    region = region_path(recipe, spec.index)
+    with atomic_path(run_folder / region) as tmp:
+        tmp.write_text(region_text(rows, f"simlens run {recipe.name}, field {spec.index}: {len(rows)} lenses"),
+                       encoding="utf-8")
+    checksums = {file: sha256_of(run_folder / file), region: sha256_of(run_folder / region)}
+    timings["writing"] += time.perf_counter() - t5
+    return ShardResult(spec=spec, files=checksums, timings=timings, selection=attrition)
+
+
+def expected_background(recipe: Recipe) -> tuple[float, float]:
+    """Mean numbers of background galaxies and stars per field (for ``simlens check``)."""
+    model = BackgroundModel(recipe, DistanceTable(recipe.cosmology.build()))
+    return model.expected_galaxies(), model.expected_stars()
+
+
+def describe_fields(recipe: Recipe) -> str:
+    f = recipe.field
+    n_fields = -(-recipe.count // f.lenses)
+    galaxies, stars = expected_background(recipe)
+    side = f.size * recipe.survey.pixel_scale / 60.0
+    return (f"{n_fields} field(s) of {f.size}x{f.size} pixels ({side:.1f}' a side), {f.lenses} lenses each on "
+            f"{f.lens_stamp_size}-pixel stamps; per field about {galaxies:.0f} background galaxies and {stars:.0f} stars")
+
