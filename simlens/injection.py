@@ -153,7 +153,7 @@ def select_lens_galaxies(image: SurveyImage, recipe: Recipe, band: str, psf_fwhm
         ra, dec = (float(v) for v in image.wcs.celestial.pixel_to_world_values(x, y))
         z = sampler.draw(index).z_lens
         magnitude = image.zero_point - 2.5 * math.log10(float(source.segment_flux))
-        absolute = magnitude - float(sampler.distances.distance_modulus(z)) - (k_table(z) if k_table else 0.0)
+        absolute = magnitude - float(sampler.distances.distmod(z)) - (k_table(z) if k_table else 0.0)
         sigma = fj.reference_sigma * 10 ** (-(absolute - fj.magnitude_at_reference) / (2.5 * fj.slope))
         rows.append({"ra": ra, "dec": dec, "x_pixel": x, "y_pixel": y, "z_lens": z,
                      "velocity_dispersion": float(np.clip(sigma, 50.0, 500.0)),

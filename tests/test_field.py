@@ -20,7 +20,7 @@ from astropy.wcs import WCS
 from scipy import stats
 
 from simlens.populations.background import BackgroundModel
-from simlens.cosmology_table import DistanceTable
+from simlens.cosmology import DistanceTable
 from simlens.errors import RecipeError, SimlensError
 from simlens.runs.pipeline import run
 from simlens.recipe import parse_recipe

@@ -17,7 +17,7 @@ from simlens.lensing.lens_equation import find_images, time_delays
 from simlens.lensing.mass import SIE, CoredIsothermal, ExternalShear, Multipole, PowerLaw
 from simlens.truth.sampler import PopulationSampler
 from simlens.recipe import parse_recipe
-from simlens.cosmology_table import DistanceTable
+from simlens.cosmology import DistanceTable
 from simlens.populations.velocity_function import VELOCITY_FUNCTIONS
 
 WINDOWS = [(4.0, 0.03), (3.0, 0.01), (0.2, 0.004), (0.02, 0.0004), (0.002, 0.00004)]

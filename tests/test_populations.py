@@ -11,7 +11,7 @@ import pytest
 from astropy.cosmology import FlatLambdaCDM, LambdaCDM, Planck18
 from scipy import integrate, stats
 
-from simlens.cosmology_table import DistanceTable
+from simlens.cosmology import DistanceTable
 from simlens.populations.photometry import KCorrection, Template, ab_magnitude_offset, load_filter
 from simlens.truth.sampler import PopulationSampler
 from simlens.recipe import parse_recipe
@@ -29,9 +29,9 @@ def test_distance_table_matches_astropy(cosmo):
     table = DistanceTable(cosmo)
     z = np.linspace(0.02, 6.0, 200)
     z1 = 0.4 * z
-    np.testing.assert_allclose(table.angular_diameter(z), cosmo.angular_diameter_distance(z).value, rtol=2e-6)
-    np.testing.assert_allclose(table.between(z1, z), cosmo.angular_diameter_distance(z1, z).value, rtol=2e-6)
-    np.testing.assert_allclose(table.luminosity(z), cosmo.luminosity_distance(z).value, rtol=2e-6)
+    np.testing.assert_allclose(table.angular_diameter_distance(z), cosmo.angular_diameter_distance(z).value, rtol=2e-6)
+    np.testing.assert_allclose(table.angular_diameter_distance_z1z2(z1, z), cosmo.angular_diameter_distance(z1, z).value, rtol=2e-6)
+    np.testing.assert_allclose(table.luminosity_distance(z), cosmo.luminosity_distance(z).value, rtol=2e-6)
     np.testing.assert_allclose(table.differential_comoving_volume(z),
                                cosmo.differential_comoving_volume(z).value, rtol=2e-6)
 

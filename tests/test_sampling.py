@@ -106,6 +106,6 @@ def test_subhalo_population(small_recipe_text):
     d_l = Planck18.angular_diameter_distance(system.z_lens).value
     for h in system.subhalos[:5]:
         total = math.pi * h.einstein_radius * h.truncation_radius * sigma_cr * (d_l / ARCSEC_PER_RADIAN) ** 2
-        # the sampler's interpolated distances (simlens.cosmology_table) agree with astropy to 2e-6
+        # the sampler's interpolated distances (simlens.cosmology) agree with astropy to 2e-6
         assert total == pytest.approx(h.mass, rel=1e-5)
     assert sum(type(c).__name__ == "TruncatedSIS" for c in system.mass_model().components) == 40

@@ -11,7 +11,7 @@ from scipy import integrate
 
 from simlens.lensing.stars_and_halo import critical_density_arcsec2, stars_and_halo
 from simlens.cosmology import ARCSEC_PER_RADIAN, critical_surface_density
-from simlens.cosmology_table import DistanceTable
+from simlens.cosmology import DistanceTable
 from simlens.errors import RecipeError
 from simlens.lensing.lens_equation import find_images
 from simlens.lensing.mass import NFW, SersicMass

@@ -19,22 +19,21 @@ from astropy import constants, units as u
 from scipy import optimize
 
 from ..cosmology import nfw_lens_parameters
-from ..cosmology_table import DistanceTable
+from ..cosmology import ARCSEC_PER_RADIAN, DistanceTable
 from ..imaging.light import sersic_b
 from .mass import NFW, SersicMass
 
 __all__ = ["StarsAndHalo", "stars_and_halo", "critical_density_arcsec2"]
 
-ARCSEC_PER_RADIAN = 180.0 * 3600.0 / math.pi
 # c^2 / (4 pi G) in M_sun per Mpc
 _C2_4PIG = float((constants.c**2 / (4 * math.pi * constants.G)).to_value(u.M_sun / u.Mpc))
 
 
 def critical_density_arcsec2(distances: DistanceTable, z_lens: float, z_source: float) -> float:
     """Sigma_cr = c^2 D_s / (4 pi G D_l D_ls) in M_sun per arcsec^2 of the lens plane."""
-    d_l = float(distances.angular_diameter(z_lens))
-    d_s = float(distances.angular_diameter(z_source))
-    d_ls = float(distances.between(z_lens, z_source))
+    d_l = float(distances.angular_diameter_distance(z_lens))
+    d_s = float(distances.angular_diameter_distance(z_source))
+    d_ls = float(distances.angular_diameter_distance_z1z2(z_lens, z_source))
     return _C2_4PIG * d_s / (d_l * d_ls) * (d_l / ARCSEC_PER_RADIAN) ** 2
 
 

@@ -33,7 +33,7 @@ from pathlib import Path
 import numpy as np
 
 from ..cosmology import ARCSEC_PER_RADIAN
-from ..cosmology_table import DistanceTable
+from ..cosmology import DistanceTable
 from .photometry import Template, ab_magnitude_offset, kcorrection, load_filter
 from ..recipe import Recipe
 from .scaling_relations import NumberCounts, RedshiftGivenMagnitude, SizeLuminosity
@@ -159,7 +159,7 @@ class BackgroundModel:
         mags, absolute = {}, np.empty(n)
         if n:
             k_anchor = np.where(early, k_early[self.counts_band], k_late[self.counts_band])
-            absolute = m - self.distances.distance_modulus(z) - k_anchor
+            absolute = m - self.distances.distmod(z) - k_anchor
             for b in self.bands:
                 mags[b] = m + np.where(early, k_early[b], k_late[b]) - k_anchor
         else:
@@ -168,7 +168,7 @@ class BackgroundModel:
                          self.late_sizes.mean_log_radius(absolute, z)) if n else np.empty(0)
         scatter = np.where(early, self.early_sizes.scatter_ln, self.late_sizes.scatter_ln(absolute)) if n else np.empty(0)
         r_kpc = 10.0**log_r * np.exp(scatter * rng.standard_normal(size=n))
-        r_arcsec = r_kpc / (self.distances.angular_diameter(z) * 1e3) * ARCSEC_PER_RADIAN if n else np.empty(0)
+        r_arcsec = r_kpc / (self.distances.angular_diameter_distance(z) * 1e3) * ARCSEC_PER_RADIAN if n else np.empty(0)
         r_arcsec = np.minimum(r_arcsec, g.max_half_light_radius)
         q = np.where(early, rng.uniform(0.5, 1.0, size=n), rng.uniform(0.2, 1.0, size=n))
         angle = rng.uniform(0.0, 180.0, size=n)

@@ -13,14 +13,13 @@ from typing import Mapping
 
 import numpy as np
 
-from ..cosmology_table import DistanceTable
+from ..cosmology import ARCSEC_PER_RADIAN, DistanceTable
 from .photometry import kcorrection
 from .scaling_relations import (SUN_ABSOLUTE_MAGNITUDE_R, FaberJackson, FundamentalPlane, NumberCounts,
                                 RedshiftGivenMagnitude, SizeLuminosity)
 
 __all__ = ["LensLight", "LensLightModel", "SourcePhotometry", "SourceModel", "PointSourceColours"]
 
-ARCSEC_PER_RADIAN = 180.0 * 3600.0 / math.pi
 MIN_LIGHT_AXIS_RATIO = 0.2
 
 
@@ -96,13 +95,13 @@ class LensLightModel:
         fj, plane = self.faber_jackson, self.plane
         absolute = fj.mean_magnitude(sigma) + fj.scatter * normals[:, 0]
         r_kpc = 10 ** (plane.mean_log_radius(sigma, absolute) + plane.scatter * normals[:, 1])
-        modulus = self.distances.distance_modulus(z)
+        modulus = self.distances.distmod(z)
         k = self.k.at_many(z)
         q = np.clip(np.asarray(mass_q, dtype=float) + s.q_scatter * normals[:, 2], MIN_LIGHT_AXIS_RATIO, 1.0)
         angle = np.asarray(mass_angle, dtype=float) + s.angle_scatter * normals[:, 3]
         luminosity = 10 ** (-0.4 * (absolute - SUN_ABSOLUTE_MAGNITUDE_R))
         stellar = luminosity * s.mass_to_light if s.mass_to_light is not None else np.full(z.shape, math.nan)
-        radius = _arcsec(r_kpc, self.distances.angular_diameter(z))
+        radius = _arcsec(r_kpc, self.distances.angular_diameter_distance(z))
         mags = absolute + modulus + k  # (bands, n)
         return [LensLight(absolute_magnitude=float(absolute[j]), luminosity=float(luminosity[j]),
                           stellar_mass=float(stellar[j]), magnitudes=dict(zip(self.k.bands, mags[:, j].tolist())),
@@ -168,12 +167,12 @@ class SourceModel:
         k_disk, k_clump = self.k_disk.at_many(z), self.k_clump.at_many(z)
         anchor = self.k_disk.bands.index(self.anchor_band)
         k_anchor, clump_anchor = k_disk[anchor], k_clump[anchor]
-        absolute = m - self.distances.distance_modulus(z) - k_anchor
+        absolute = m - self.distances.distmod(z) - k_anchor
         log_r = self.sizes.mean_log_radius(absolute, z)
         r_kpc = 10 ** log_r
         if self.normals:
             r_kpc = r_kpc * np.exp(self.sizes.scatter_ln(absolute) * normals[:, 0])
-        radius = _arcsec(r_kpc, self.distances.angular_diameter(z))
+        radius = _arcsec(r_kpc, self.distances.angular_diameter_distance(z))
         disk, clump = k_disk - k_anchor, k_clump - clump_anchor
         bands = self.k_disk.bands
         return [SourcePhotometry(redshift=float(z[j]), anchor_magnitude=float(m[j]),

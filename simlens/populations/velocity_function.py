@@ -24,7 +24,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special
 
-from ..cosmology_table import DistanceTable
+from ..cosmology import DistanceTable
 
 __all__ = ["VelocityFunction", "VELOCITY_FUNCTIONS", "DeflectorPopulation"]
 

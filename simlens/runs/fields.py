@@ -52,7 +52,7 @@ from astropy.io import fits
 from astropy.table import Table
 
 from ..populations.background import BackgroundModel, BackgroundObjects
-from ..cosmology_table import DistanceTable
+from ..cosmology import DistanceTable
 from ..imaging.observe import effective_psf_image, psf_profile
 from ..output.atomic import atomic_path
 from ..output.checksums import sha256_of

@@ -25,7 +25,7 @@ import numpy as np
 
 from ..lensing.caustics import _UNIT_CIRCLE, CUT_ANGLES, OUTER_RADIUS_IN_EINSTEIN_RADII, find_caustics, polygon_area
 from ..cosmology import ARCSEC_PER_RADIAN
-from ..cosmology_table import C_KM_S
+from ..cosmology import C_KM_S
 from ..lensing.mass.isothermal import CENTRAL_FLOOR
 from ..recipe.distributions import Fixed
 from .streams import SYSTEM_STREAMS, grid_cell, system_streams
@@ -174,7 +174,7 @@ class _Geometry:
             active, values = active[keep], {p: a[keep] for p, a in values.items()}
             sigma, z_lens, z_source, anchor = sigma[keep], z_lens[keep], z_source[keep], anchor[keep]
             behind = z_source > z_lens
-            ratio = np.where(behind, s.distances.ratio(np.minimum(z_lens, z_source), z_source), 0.0)
+            ratio = np.where(behind, s.distances.distance_ratio(np.minimum(z_lens, z_source), z_source), 0.0)
             theta_e = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * ratio * ARCSEC_PER_RADIAN
             checks = [dict() for _ in active]
             passed = np.ones(active.size, dtype=bool)
@@ -449,7 +449,7 @@ class _Queue:
             behind = weighted = kept = ones
         else:
             behind = z_s > z_l
-            ratio = np.where(behind, s.distances.ratio(np.minimum(z_l, z_s), z_s), 0.0)
+            ratio = np.where(behind, s.distances.distance_ratio(np.minimum(z_l, z_s), z_s), 0.0)
             weighted = behind & ((u[:, c] <= ratio**2) if s.deflectors is not None else True)
             if s.deflectors is not None:  # sigma only where a pair can still be kept, as _GeometryQueue
                 sigma = np.full((rows.size, n), math.nan)

@@ -21,7 +21,7 @@ from pathlib import Path
 from ..lensing.caustics import CausticSet, find_caustics
 from ..lensing.stars_and_halo import stars_and_halo
 from ..cosmology import critical_surface_density, ARCSEC_PER_RADIAN
-from ..cosmology_table import C_KM_S, DistanceTable
+from ..cosmology import C_KM_S, DistanceTable
 from ..errors import SimlensError
 from ..populations.galaxies import LensLightModel, PointSourceColours, SourceModel
 from ..imaging.light import CompositeLight, LightProfile, Sersic
@@ -367,7 +367,7 @@ class _GeometryQueue:
         else:
             u = rng.uniform(size=n)
             behind = z_s > z_l
-            ratio = np.where(behind, sampler.distances.ratio(np.minimum(z_l, z_s), z_s), 0.0)
+            ratio = np.where(behind, sampler.distances.distance_ratio(np.minimum(z_l, z_s), z_s), 0.0)
             weighted = behind & ((u <= ratio**2) if sampler.deflectors is not None else True)
             if sampler.deflectors is not None:  # sigma only where a pair can still be kept (the costly part)
                 sigma = np.full(n, math.nan)
@@ -512,7 +512,7 @@ class PopulationSampler:
         radii = np.sqrt(r_in**2 + rng.uniform(size=n) * (r_out**2 - r_in**2))
         phi = rng.uniform(0.0, 2.0 * math.pi, size=n)
         sigma_cr = critical_surface_density(self.cosmology, z_lens, z_source).value  # M_sun / Mpc^2
-        d_l = float(self.distances.angular_diameter(z_lens))  # Mpc
+        d_l = float(self.distances.angular_diameter_distance(z_lens))  # Mpc
         sigma_cr_arcsec2 = sigma_cr * (d_l / ARCSEC_PER_RADIAN) ** 2  # M_sun / arcsec^2
         return tuple(_subhalo(float(m), float(r * math.cos(p)), float(r * math.sin(p)), theta_e, sigma_cr_arcsec2)
                      for m, r, p in zip(masses, radii, phi))
@@ -524,16 +524,16 @@ class PopulationSampler:
         settings = self.recipe.lens.line_of_sight
         if n == 0 or settings.redshift_min >= z_source:
             return ()
-        d_lo, d_hi = (float(self.distances.comoving(z)) for z in (settings.redshift_min, z_source))
+        d_lo, d_hi = (float(self.distances.comoving_distance(z)) for z in (settings.redshift_min, z_source))
         galaxies = []
         for _ in range(n):
             d = (d_lo**3 + rng.uniform() * (d_hi**3 - d_lo**3)) ** (1.0 / 3.0)
-            z = float(self.distances.redshift_at_comoving(d))
+            z = float(self.distances.redshift_at_comoving_distance(d))
             sigma = float(settings.velocity_dispersion.from_uniform(rng.uniform()))
             x, y = _uniform_in_disc(settings.radius, rng)
             if not (z < z_source and z != z_lens):
                 continue
-            theta = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * float(self.distances.ratio(z, z_source)) * ARCSEC_PER_RADIAN
+            theta = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * float(self.distances.distance_ratio(z, z_source)) * ARCSEC_PER_RADIAN
             galaxies.append(LineOfSightGalaxy(z=z, velocity_dispersion=sigma, x=x, y=y, einstein_radius=theta))
         return tuple(galaxies)
 
@@ -593,7 +593,7 @@ class PopulationSampler:
                 return None, _merge_counts(queue.nonzero_rejections(), tries)
             sigma, z_lens, z_source, anchor_magnitude = geometry
             behind = z_source > z_lens
-            ratio = float(self.distances.ratio(z_lens, z_source)) if behind else 0.0
+            ratio = float(self.distances.distance_ratio(z_lens, z_source)) if behind else 0.0
             theta_e = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * ratio * ARCSEC_PER_RADIAN
             mass_q, mass_angle = v["lens.mass.q"], v["lens.mass.angle"]
             model = recipe.lens.mass.model
@@ -726,9 +726,9 @@ class PopulationSampler:
         settings2 = source_settings.second
         if settings2 is not None and behind and v["source.second.redshift"] > z_source and theta_e > 0:
             z2 = v["source.second.redshift"]
-            factor = float(self.distances.ratio(z_lens, z2)) / ratio
+            factor = float(self.distances.distance_ratio(z_lens, z2)) / ratio
             sigma_d = v["source.second.deflector_velocity_dispersion"]
-            theta_d = 4.0 * math.pi * (sigma_d / C_KM_S) ** 2 * float(self.distances.ratio(z_source, z2)) * ARCSEC_PER_RADIAN
+            theta_d = 4.0 * math.pi * (sigma_d / C_KM_S) ** 2 * float(self.distances.distance_ratio(z_source, z2)) * ARCSEC_PER_RADIAN
             x2, y2 = _uniform_in_disc(v["source.second.radius_in_einstein_radii"] * theta_e * factor, streams["physics"])
             colours = ({b: 0.0 if b == ref else v[f"source.second.colors.{b}"] for b in band_names}
                        if settings2.colors else {b: disk_colors[b] - disk_colors[ref] for b in band_names})
