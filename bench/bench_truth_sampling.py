@@ -10,9 +10,10 @@ and bulk geometry pairs included) and the seconds for 100,000.  The modes, side 
 * sky   -- sky mode (one source per 1/n of area; caustics for every system, for its flags);
 * fixed -- the source placed uniformly inside one Einstein radius (no placement mode).
 
-Each mode is drawn two ways, side by side in one run: ``draw_many`` (the vectorised route of
-simlens.truth.block_sampling, all --n systems) and ``draw`` one system at a time (the first --scalar-n
-systems, default 10,000); the ratio of their rates is printed.  Both routes give the same systems.
+Each mode is drawn two ways, side by side in one run: ``draw_many`` of all --n systems at once (the
+candidates of many systems on arrays) and ``draw`` one system at a time (the first --scalar-n
+systems, default 10,000; the same code with one row); the ratio of their rates is printed.  Both
+give the same systems.
 
 Goal: 100,000 systems well under a minute on one core.
 Run: python bench/bench_truth_sampling.py [--n 100000] [--scalar-n 10000]

@@ -34,7 +34,8 @@ from .version import __version__
 
 from .errors import RecipeError, SimlensError
 from .runs.pipeline import run
-from .truth.sampler import PopulationSampler, System
+from .truth.record import System
+from .truth.sampler import PopulationSampler
 from .recipe import Recipe, load_recipe, parse_recipe
 from .imaging.render import RenderedSystem, render_system
 from .runs.loader import iter_batches

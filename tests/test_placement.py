@@ -186,7 +186,7 @@ def test_sky_mode_strong_lens_fraction_is_the_optical_depth():
         """))
     sampler = PopulationSampler(recipe)
     lensed = 0
-    for s in sampler.draw_many(range(recipe.count)):  # the vectorised route (tests/test_block_sampling.py)
+    for s in sampler.draw_many(range(recipe.count)):
         assert not s.region_widened
         lensed += s.multiply_imaged
     f = lensed / recipe.count

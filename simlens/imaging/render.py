@@ -17,15 +17,21 @@ import numpy as np
 from ..lensing.lens_equation import ImageSet, find_images, time_delays
 from .light import PointSource
 from .observe import ObservedBand, convolution_sampling, observe_scene, padding_for
-from ..truth.sampler import System
+from ..truth.record import System
 from .rays import ComponentImages, PixelGrid, render_scene, trace_rays
 from ..recipe import SurveySettings
 
-__all__ = ["RenderedSystem", "render_system", "pixel_grid_for"]
+__all__ = ["RenderedSystem", "SystemRendering", "render_system", "pixel_grid_for"]
 
 
 @dataclass(frozen=True)
 class RenderedSystem:
+    """A system's observed images and the truth measured on them: what the truth catalogue and
+    the FITS writers take.  ``bands`` holds one :class:`~simlens.imaging.observe.ObservedBand` per
+    band (the noisy image, the noiseless lens light and lensed source, the PSF and the arc S/N);
+    ``images`` the images of the source centre (positions, signed magnifications), with
+    ``time_delays`` in days after the first."""
+
     system: System
     grid: PixelGrid
     bands: tuple  # of ObservedBand, in survey order
@@ -84,63 +90,101 @@ def image_search_windows(einstein_radius: float, q: float, source_offset: float,
 
 
 def render_system(system: System, survey: SurveySettings, reference_band: str) -> RenderedSystem:
-    timings = {}
-    t0 = time.perf_counter()
-    grid = pixel_grid_for(system, survey)
-    mass = system.mass_model()
-    rays, sampling = observation_rays(mass, grid, max(b.psf_fwhm for b in system.bands))
-    t1 = time.perf_counter()
-    timings["ray_tracing"] = t1 - t0
+    """The observed images of ``system`` in every band of ``survey``, with the truth that needs
+    images (the extended-source magnification and the second source's, in ``reference_band``; the
+    images of the source centre and their time delays).  A pure function of its arguments: the
+    noise of each band comes from the system's own noise seeds."""
+    return SystemRendering(system, survey, reference_band).render()
 
-    # Images of the source centre first: a point source (quasar) is drawn at them.
-    windows = image_search_windows(system.einstein_radius, system.mass_q,
-                                   math.hypot(system.source_x, system.source_y), grid)
-    images = find_images(mass, system.source_x, system.source_y, windows)
-    if system.line_of_sight:  # multi-plane: no single Fermat potential (not computed)
-        delays = np.full(len(images), math.nan)
-    elif math.isfinite(system.days_per_arcsec2):
-        delays = time_delays(mass, images, system.source_x, system.source_y, system.days_per_arcsec2)
-    else:
-        delays = np.zeros(len(images))
-    t_images = time.perf_counter()
-    timings["image_finding"] = t_images - t1
 
-    observed, magnification = [], math.nan
-    # Shapes are achromatic: evaluate each once for all bands, on the PSF stage's grid.
-    components = ComponentImages(rays, sampling=sampling, adaptive=survey.adaptive_supersampling)
-    components.prepare_lensed(system.source_light(reference_band))  # refine where the whole source needs it
-    second = None
-    if system.second_source is not None:  # its own ray map, through its own deflectors
-        rays2, sampling2 = observation_rays(system.second_source_mass(), grid, max(b.psf_fwhm for b in system.bands))
-        second = ComponentImages(rays2, sampling=sampling2, adaptive=survey.adaptive_supersampling)
-        second.prepare_lensed(system.second_source_light(reference_band))
-    second_magnification = math.nan
-    timings["adaptive_refinement"] = time.perf_counter() - t_images
-    t_scene = t_observe = 0.0
-    for conditions, seed in zip(system.bands, system.noise_seeds):
+class SystemRendering:
+    """One system rendered band by band: the rays are traced and the source's shape refined once
+    (on construction), the images of the source centre found once when first needed; :meth:`render`
+    then observes the bands asked for, each once.  Cuts on images can so be judged on the bands they need before the
+    others are rendered (:mod:`simlens.runs.rendering`)."""
+
+    def __init__(self, system: System, survey: SurveySettings, reference_band: str):
+        self.system, self.survey, self.reference_band = system, survey, reference_band
+        self.timings = dict.fromkeys(("ray_tracing", "image_finding", "adaptive_refinement", "scene",
+                                      "galsim_stage"), 0.0)
+        t0 = time.perf_counter()
+        self.grid = pixel_grid_for(system, survey)
+        self.mass = system.mass_model()
+        fwhm_max = max(b.psf_fwhm for b in system.bands)
+        self.rays, sampling = observation_rays(self.mass, self.grid, fwhm_max)
+        t1 = time.perf_counter()
+        self.timings["ray_tracing"] = t1 - t0
+
+        self._images = None
+        self.delays = None
+        t2 = time.perf_counter()
+
+        # Shapes are achromatic: evaluate each once for all bands, on the PSF stage's grid.
+        self.components = ComponentImages(self.rays, sampling=sampling, adaptive=survey.adaptive_supersampling)
+        self.components.prepare_lensed(system.source_light(reference_band))  # refine where the whole source needs it
+        self.second = None
+        if system.second_source is not None:  # its own ray map, through its own deflectors
+            rays2, sampling2 = observation_rays(system.second_source_mass(), self.grid, fwhm_max)
+            self.second = ComponentImages(rays2, sampling=sampling2, adaptive=survey.adaptive_supersampling)
+            self.second.prepare_lensed(system.second_source_light(reference_band))
+        self.timings["adaptive_refinement"] = time.perf_counter() - t2
+        self.observed: dict[str, ObservedBand] = {}
+        self.magnification = self.second_magnification = math.nan
+
+    @property
+    def images(self) -> ImageSet:
+        """The images of the source centre within the cutout and their time delays (found on first use)."""
+        if self._images is None:
+            t0 = time.perf_counter()
+            system = self.system
+            windows = image_search_windows(system.einstein_radius, system.mass_q,
+                                           math.hypot(system.source_x, system.source_y), self.grid)
+            self._images = find_images(self.mass, system.source_x, system.source_y, windows)
+            if system.line_of_sight:  # multi-plane: no single Fermat potential (not computed)
+                self.delays = np.full(len(self._images), math.nan)
+            elif math.isfinite(system.days_per_arcsec2):
+                self.delays = time_delays(self.mass, self._images, system.source_x, system.source_y,
+                                          system.days_per_arcsec2)
+            else:
+                self.delays = np.zeros(len(self._images))
+            self.timings["image_finding"] += time.perf_counter() - t0
+        return self._images
+
+    def _observe(self, conditions, seed: int) -> ObservedBand:
+        system, name = self.system, conditions.name
         ta = time.perf_counter()
         points = ()
         if system.quasar_magnitudes is not None:
-            flux = system.quasar_flux(conditions.name)
+            flux = system.quasar_flux(name)
             points = tuple(PointSource(flux=flux * abs(float(mu)), center=(float(x), float(y)))
-                           for x, y, mu in zip(images.x, images.y, images.magnification))
-        scene = render_scene(conditions.name, rays, system.lens_light(conditions.name),
-                             system.source_light(conditions.name), components, lensed_points=points)
-        if conditions.name == reference_band:
-            magnification = scene.magnification  # of the first source alone
-        if second is not None:
-            light2 = system.second_source_light(conditions.name)
-            lensed2 = second.render(light2, lensed=True)
-            if conditions.name == reference_band and light2.flux > 0:
-                second_magnification = float(lensed2.sum()) / light2.flux
+                           for x, y, mu in zip(self.images.x, self.images.y, self.images.magnification))
+        scene = render_scene(name, self.rays, system.lens_light(name), system.source_light(name), self.components,
+                             lensed_points=points)
+        if name == self.reference_band:
+            self.magnification = scene.magnification  # of the first source alone
+        if self.second is not None:
+            light2 = system.second_source_light(name)
+            lensed2 = self.second.render(light2, lensed=True)
+            if name == self.reference_band and light2.flux > 0:
+                self.second_magnification = float(lensed2.sum()) / light2.flux
             scene = dataclasses.replace(scene, lensed_source=scene.lensed_source + lensed2)
         tb = time.perf_counter()
-        observed.append(observe_scene(scene, conditions, seed))
-        tc = time.perf_counter()
-        t_scene += tb - ta
-        t_observe += tc - tb
-    timings["scene"] = t_scene
-    timings["galsim_stage"] = t_observe
-    return RenderedSystem(system=system, grid=grid, bands=tuple(observed), magnification=magnification,
-                          images=images, second_magnification=second_magnification, time_delays=delays,
-                          timings=timings)
+        observed = observe_scene(scene, conditions, seed)
+        self.timings["scene"] += tb - ta
+        self.timings["galsim_stage"] += time.perf_counter() - tb
+        return observed
+
+    def render(self, band_names=None, images: bool = True) -> RenderedSystem:
+        """The system with the bands ``band_names`` (default: all) observed, besides any observed
+        before; the bands of the result are those observed so far, in survey order.  ``images =
+        False`` leaves the images of the source centre unfound where no band needs them (the
+        result's ``images`` and ``time_delays`` are then None)."""
+        wanted = set(band_names) if band_names is not None else {b.name for b in self.system.bands}
+        for conditions, seed in zip(self.system.bands, self.system.noise_seeds):
+            if conditions.name in wanted and conditions.name not in self.observed:
+                self.observed[conditions.name] = self._observe(conditions, seed)
+        bands = tuple(self.observed[b.name] for b in self.system.bands if b.name in self.observed)
+        found = self.images if images else self._images
+        return RenderedSystem(system=self.system, grid=self.grid, bands=bands, magnification=self.magnification,
+                              images=found, second_magnification=self.second_magnification,
+                              time_delays=self.delays, timings=dict(self.timings))

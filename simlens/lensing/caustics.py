@@ -29,7 +29,7 @@ import numpy as np
 
 from .mass import MassModel
 
-__all__ = ["CausticSet", "find_caustics", "inside_polygon", "polygon_area"]
+__all__ = ["CausticSet", "find_caustics", "isothermal_caustics", "inside_polygon", "polygon_area"]
 
 N_ANGLES = 64  # rays for the critical curves
 CUT_ANGLES = 256  # points on the cut (deflections only; the SIS cut area is then within 1e-4 of pi theta_E^2)
@@ -81,29 +81,31 @@ class CausticSet:
         return next((c for c in self.caustics if c.kind == kind), None)
 
 
-def polygon_area(x, y) -> float:
-    """Shoelace area of a closed polygon (absolute value)."""
+def polygon_area(x, y):
+    """Shoelace area of closed polygons whose vertices run along the last axis (absolute value; a
+    float for one polygon, an array for rows of them).  Repeated vertices add nothing, so polygons
+    of different lengths can share an array, padded with their last vertex."""
     x, y = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
-    if x.size < 3:
-        return 0.0
-    cross = np.dot(x[:-1], y[1:]) - np.dot(y[:-1], x[1:]) + x[-1] * y[0] - y[-1] * x[0]
-    return 0.5 * abs(float(cross))
+    if x.shape[-1] < 3:
+        return 0.0 if x.ndim == 1 else np.zeros(x.shape[:-1])
+    cross = np.sum(x * np.roll(y, -1, axis=-1) - np.roll(x, -1, axis=-1) * y, axis=-1)
+    area = 0.5 * np.abs(cross)
+    return float(area) if x.ndim == 1 else area
 
 
 def inside_polygon(px, py, vx, vy) -> np.ndarray:
-    """Even-odd (ray casting) test of points ``(px, py)`` against the polygon ``(vx, vy)``."""
-    px, py = np.asarray(px, float), np.asarray(py, float)
-    shape = px.shape
-    px, py = px.reshape(-1, 1), py.reshape(-1, 1)
-    vx, vy = np.asarray(vx, dtype=float), np.asarray(vy, dtype=float)
-    x0, y0 = vx[None, :], vy[None, :]
-    x1 = np.concatenate([vx[1:], vx[:1]])[None, :]
-    y1 = np.concatenate([vy[1:], vy[:1]])[None, :]
+    """Even-odd (ray casting) test of points ``(px, py)`` against polygons ``(vx, vy)``.
+
+    The vertices run along the last axis of ``vx, vy``; the points broadcast against the polygons'
+    leading axes: points of any shape against one polygon, or one point per row against that row's
+    polygon (``px`` of shape ``(rows,)``, ``vx`` of shape ``(rows, n_vertices)``)."""
+    px, py = np.asarray(px, float)[..., None], np.asarray(py, float)[..., None]
+    x0, y0 = np.asarray(vx, dtype=float), np.asarray(vy, dtype=float)
+    x1, y1 = np.roll(x0, -1, axis=-1), np.roll(y0, -1, axis=-1)
     crosses = (y0 > py) != (y1 > py)
     dy = np.where(y1 == y0, 1.0, y1 - y0)  # edges with y1 == y0 never cross
     x_at = x0 + (py - y0) * (x1 - x0) / dy
-    hits = crosses & (px < x_at)
-    return (np.count_nonzero(hits, axis=1) % 2 == 1).reshape(shape)
+    return np.count_nonzero(crosses & (px < x_at), axis=-1) % 2 == 1
 
 
 def _det(mass: MassModel, x, y) -> np.ndarray:
@@ -129,10 +131,47 @@ _UNIT_CIRCLE = (np.cos(np.linspace(0.0, 2.0 * np.pi, CUT_ANGLES, endpoint=False)
                 np.sin(np.linspace(0.0, 2.0 * np.pi, CUT_ANGLES, endpoint=False)))
 
 
+def isothermal_caustics(deflection, hessian, uniform_hessian, uniform_deflection, center, einstein_radius):
+    """The closed-form tangential critical curve, its caustic and the cut of isothermal lenses in
+    uniform fields, one lens a row.
+
+    ``deflection = (ax, ay)`` and ``hessian = (h11, h12, h22)``: the isothermal parts on the unit
+    circle around ``center`` at the CUT_ANGLES angles of ``_UNIT_CIRCLE``, shape (rows, CUT_ANGLES)
+    (their deflection does not change along a ray and their Hessian scales as 1/r);
+    ``uniform_hessian = (u11, u12, u22)`` and ``uniform_deflection = (ux, uy)`` at the centre: the
+    uniform parts (their deflection is linear), shape (rows,); ``center`` and ``einstein_radius``
+    broadcast against (rows,).  Returns ``(ok, critical, caustic, cut, has_cut)``: ok (rows,) where
+    the route applies, the curves as (x, y) pairs of shape (rows, CUT_ANGLES), and which rows have
+    a cut that matters (one reaching beyond 1 % of theta_E)."""
+    (ax, ay), (h11, h12, h22) = deflection, hessian
+    u11, u12, u22 = (np.asarray(u, dtype=float)[:, None] for u in uniform_hessian)
+    ux0, uy0 = (np.asarray(u, dtype=float)[:, None] for u in uniform_deflection)
+    cx, cy = (np.broadcast_to(np.asarray(c, dtype=float), u11.shape[:1])[:, None] for c in center)
+    theta = np.asarray(einstein_radius, dtype=float)
+    cos, sin = _UNIT_CIRCLE
+    m11, m12, m22 = 1.0 - u11, -u12, 1.0 - u22
+    det_m = m11 * m22 - m12 * m12
+    # det A(r) = det_m - b_coef / r + c2 / r^2, with c2 = det H1 (zero up to round-off)
+    b_coef = m11 * h22 + m22 * h11 - 2.0 * m12 * h12
+    c2 = h11 * h22 - h12 * h12
+    disc = b_coef * b_coef - 4.0 * c2 * det_m
+    ok = (det_m[:, 0] > 0) & ~np.any(disc < 0, axis=1) & ~np.any(b_coef <= 0, axis=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r = (b_coef + np.sqrt(np.where(disc < 0, 0.0, disc))) / (2.0 * det_m)
+    finite = np.isfinite(r)
+    ok &= np.all(finite, axis=1) & (np.max(np.where(finite, r, np.inf), axis=1) < OUTER_RADIUS_IN_EINSTEIN_RADII * theta)
+    xc, yc = cx + r * cos, cy + r * sin
+    # beta = theta - alpha_iso(direction) - alpha_uniform(theta); at theta -> centre: the cut
+    dx, dy = xc - cx, yc - cy
+    bx = xc - ax - (ux0 + u11 * dx + u12 * dy)
+    by = yc - ay - (uy0 + u12 * dx + u22 * dy)
+    cut_x, cut_y = cx - ax - ux0, cy - ay - uy0
+    has_cut = np.min(np.hypot(cut_x - cx, cut_y - cy), axis=1) > 0.01 * theta
+    return ok, (xc, yc), (bx, by), (cut_x, cut_y), has_cut
+
+
 def _closed_form(split, center, einstein_radius: float):
-    """The tangential critical curve, its caustic and the cut of an isothermal lens in a uniform
-    field, all from the isothermal parts evaluated once on the unit circle (their deflection does
-    not change along a ray and their Hessian scales as 1/r); None if the route does not apply."""
+    """:func:`isothermal_caustics` for one lens made of model objects; None if it does not apply."""
     homogeneous, uniform = split
     cx, cy = center
     cos, sin = _UNIT_CIRCLE
@@ -141,35 +180,18 @@ def _closed_form(split, center, einstein_radius: float):
     for part in homogeneous:
         ax, ay, a, b, c = part.deflection_and_hessian(ux, uy)
         ax_h, ay_h, h11, h12, h22 = ax_h + ax, ay_h + ay, h11 + a, h12 + b, h22 + c
-    u11 = u12 = u22 = 0.0
+    u = np.zeros(5)
     for part in uniform:
-        _, _, a, b, c = part.deflection_and_hessian(np.array([cx]), np.array([cy]))
-        u11, u12, u22 = u11 + float(a[0]), u12 + float(b[0]), u22 + float(c[0])
-    m11, m12, m22 = 1.0 - u11, -u12, 1.0 - u22
-    det_m = m11 * m22 - m12 * m12
-    # det A(r) = det_m - b_coef / r + c2 / r^2, with c2 = det H1 (zero up to round-off)
-    b_coef = m11 * h22 + m22 * h11 - 2.0 * m12 * h12
-    c2 = h11 * h22 - h12 * h12
-    disc = b_coef * b_coef - 4.0 * c2 * det_m
-    if det_m <= 0 or np.any(disc < 0) or np.any(b_coef <= 0):
+        u += [float(v[0]) for v in part.deflection_and_hessian(np.array([cx]), np.array([cy]))]
+    ok, curve, caustic, cut, has_cut = isothermal_caustics(
+        (np.atleast_2d(ax_h), np.atleast_2d(ay_h)), tuple(np.atleast_2d(h) for h in (h11, h12, h22)),
+        u[2:, None], u[:2, None], center, einstein_radius)
+    if not ok[0]:
         return None
-    r = (b_coef + np.sqrt(disc)) / (2.0 * det_m)
-    if not (np.all(np.isfinite(r)) and r.max() < OUTER_RADIUS_IN_EINSTEIN_RADII * einstein_radius):
-        return None
-    xc, yc = cx + r * cos, cy + r * sin
-    # beta = theta - alpha_iso(direction) - alpha_uniform(theta); at theta -> centre: the cut
-    bx, by = xc - ax_h, yc - ay_h
-    cut_x, cut_y = cx - ax_h, cy - ay_h
-    for part in uniform:
-        dx, dy = part.deflection(xc, yc)
-        bx, by = bx - dx, by - dy
-        dx0, dy0 = part.deflection(np.array([cx]), np.array([cy]))
-        cut_x, cut_y = cut_x - float(dx0[0]), cut_y - float(dy0[0])
-    curves = [Curve("tangential", xc, yc)]
-    caustics = [Curve("tangential", bx, by)]
-    if np.min(np.hypot(cut_x - cx, cut_y - cy)) > 0.01 * einstein_radius:
-        caustics.append(Curve("cut", cut_x, cut_y))
-    return CausticSet(critical_curves=tuple(curves), caustics=tuple(caustics))
+    caustics = [Curve("tangential", caustic[0][0], caustic[1][0])]
+    if has_cut[0]:
+        caustics.append(Curve("cut", cut[0][0], cut[1][0]))
+    return CausticSet(critical_curves=(Curve("tangential", curve[0][0], curve[1][0]),), caustics=tuple(caustics))
 
 
 def find_caustics(mass: MassModel, einstein_radius: float, center=(0.0, 0.0),

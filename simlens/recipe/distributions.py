@@ -1,8 +1,8 @@
 """Recipe parameter distributions: the small frozen objects a numeric recipe key becomes.
 
-Each draws from a ``numpy.random.Generator`` or maps uniform variates (``from_uniform`` on arrays:
-every distribution here is drawn by its inverse CDF, so a system's parameters cost one vector of
-uniforms) and knows its *support* (the closed range of values it can produce), which the recipe
+Each draws from a ``numpy.random.Generator`` or maps uniform variates (``from_uniform``, on a number
+or an array of any shape: every distribution here is drawn by its inverse CDF, so a system's
+parameters cost one vector of uniforms) and knows its *support* (the closed range of values it can produce), which the recipe
 validator compares with the range a parameter accepts *before* any work is done.
 
 Grids: parameters given as ``{ grid = [...] }`` span a Cartesian product of cells (in the order the
@@ -40,11 +40,7 @@ class Fixed:
     def draw(self, rng: np.random.Generator) -> float:
         return self.value
 
-    def from_uniform(self, u: float) -> float:
-        return self.value
-
-    def from_uniforms(self, u: np.ndarray) -> np.ndarray:
-        """``from_uniform`` of every entry of ``u`` (vectorised; used by simlens.block_sampling)."""
+    def from_uniform(self, u):
         return np.full(np.shape(u), float(self.value))
 
     @property
@@ -67,12 +63,9 @@ class Uniform:
             raise ValueError(f"uniform needs low < high, got [{self.low}, {self.high}]")
 
     def draw(self, rng: np.random.Generator) -> float:
-        return self.from_uniform(rng.uniform())
+        return float(self.from_uniform(rng.uniform()))
 
-    def from_uniform(self, u: float) -> float:
-        return self.low + u * (self.high - self.low)
-
-    def from_uniforms(self, u: np.ndarray) -> np.ndarray:
+    def from_uniform(self, u):
         return self.low + np.asarray(u, dtype=float) * (self.high - self.low)
 
     @property
@@ -95,17 +88,11 @@ class LogUniform:
             raise ValueError(f"log_uniform needs 0 < low < high, got [{self.low}, {self.high}]")
 
     def draw(self, rng: np.random.Generator) -> float:
-        return self.from_uniform(rng.uniform())
+        return float(self.from_uniform(rng.uniform()))
 
-    def from_uniform(self, u: float) -> float:
+    def from_uniform(self, u):
         lo = math.log(self.low)
-        return math.exp(lo + u * (math.log(self.high) - lo))
-
-    def from_uniforms(self, u: np.ndarray) -> np.ndarray:
-        lo = math.log(self.low)
-        t = lo + np.asarray(u, dtype=float) * (math.log(self.high) - lo)
-        # math.exp, not np.exp: the same values as from_uniform to the last bit
-        return np.fromiter((math.exp(v) for v in t.ravel()), float, t.size).reshape(t.shape)
+        return np.exp(lo + np.asarray(u, dtype=float) * (math.log(self.high) - lo))
 
     @property
     def support(self) -> tuple[float, float]:
@@ -142,22 +129,12 @@ class TruncatedNormal:
             )
 
     def draw(self, rng: np.random.Generator) -> float:
-        return self.from_uniform(rng.uniform())
+        return float(self.from_uniform(rng.uniform()))
 
-    def from_uniform(self, u: float) -> float:
-        a, b = (self.low - self.mean) / self.sigma, (self.high - self.mean) / self.sigma
-        if a > 0:  # mirror: -x is a normal truncated to [-b, -a]
-            lo, hi = special.ndtr(-b), special.ndtr(-a)
-            x = -special.ndtri(hi - u * (hi - lo))
-        else:
-            lo, hi = special.ndtr(a), special.ndtr(b)
-            x = special.ndtri(lo + u * (hi - lo))
-        return float(min(max(self.mean + self.sigma * x, self.low), self.high))
-
-    def from_uniforms(self, u: np.ndarray) -> np.ndarray:
+    def from_uniform(self, u):
         u = np.asarray(u, dtype=float)
         a, b = (self.low - self.mean) / self.sigma, (self.high - self.mean) / self.sigma
-        if a > 0:
+        if a > 0:  # mirror: -x is a normal truncated to [-b, -a]
             lo, hi = special.ndtr(-b), special.ndtr(-a)
             x = -special.ndtri(hi - u * (hi - lo))
         else:
@@ -192,25 +169,14 @@ class Choice:
                 raise ValueError("choice weights must be >= 0 with a positive sum")
 
     def draw(self, rng: np.random.Generator) -> float:
-        return self.from_uniform(rng.uniform())
+        return float(self.from_uniform(rng.uniform()))
 
-    def from_uniform(self, u: float) -> float:
+    def from_uniform(self, u):
         """The value whose cumulative weight first exceeds ``u`` (inverse CDF)."""
         n = len(self.values)
         weights = self.weights if self.weights is not None else (1.0,) * n
-        target = u * float(sum(weights))
-        cumulative = 0.0
-        for value, w in zip(self.values, weights):
-            cumulative += w
-            if target < cumulative and w > 0:
-                return value
-        return next(v for v, w in zip(reversed(self.values), reversed(weights)) if w > 0)
-
-    def from_uniforms(self, u: np.ndarray) -> np.ndarray:
-        n = len(self.values)
-        weights = self.weights if self.weights is not None else (1.0,) * n
         target = np.asarray(u, dtype=float) * float(sum(weights))
-        cumulative = np.cumsum(np.asarray(weights, dtype=float))  # running sums, as from_uniform adds them
+        cumulative = np.cumsum(np.asarray(weights, dtype=float))
         usable = np.asarray(weights) > 0
         hit = (target[..., None] < cumulative) & usable
         last = max(j for j in range(n) if usable[j])
@@ -238,7 +204,7 @@ class Grid:
     def draw(self, rng: np.random.Generator) -> float:  # pragma: no cover - guarded
         raise TypeError("grid parameters take their value from the system's grid cell")
 
-    def from_uniform(self, u: float) -> float:  # pragma: no cover - guarded
+    def from_uniform(self, u):  # pragma: no cover - guarded
         raise TypeError("grid parameters take their value from the system's grid cell")
 
     def at(self, index: int) -> float:

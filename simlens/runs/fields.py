@@ -62,7 +62,8 @@ from ..output.truth import (image_rows, image_table, line_of_sight_rows, line_of
 from ..truth.sampler import PopulationSampler
 from ..recipe import Recipe
 from ..truth.streams import field_streams
-from ..truth.selection import merge_attrition, select_and_render
+from ..truth.selection import merge_attrition
+from .rendering import STAGES, rendered_systems
 from .shards import ShardResult, ShardSpec, shard_path
 
 __all__ = ["render_field", "place_lenses", "region_path", "region_text", "objects_table", "describe_fields",
@@ -161,8 +162,7 @@ def render_field(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
     run_folder = Path(run_folder)
     settings, survey = recipe.field, recipe.survey
     size, stamp, scale = settings.size, settings.lens_stamp_size, survey.pixel_scale
-    timings = {"sampling": 0.0, "ray_tracing": 0.0, "image_finding": 0.0, "adaptive_refinement": 0.0,
-               "scene": 0.0, "galsim_stage": 0.0, "background": 0.0, "noise": 0.0, "writing": 0.0}
+    timings = dict.fromkeys(STAGES + ("background", "noise", "writing"), 0.0)
     t0 = time.perf_counter()
     # the stamp size changes no draw, so one sampler gives the field's conditions and then its lenses
     sampler = PopulationSampler(dataclasses.replace(recipe, survey=dataclasses.replace(survey, cutout_size=stamp)))
@@ -177,18 +177,14 @@ def render_field(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
     file = shard_path(recipe, spec.index)
     lenses, rows, subhalos, images, los = [], [], [], [], []
     attrition: dict = {}
-    for k, (x0, y0) in enumerate(origins):
-        t1 = time.perf_counter()
-        rendered, selected = select_and_render(sampler, spec.first_system + k)
-        merge_attrition(attrition, selected["rejections"])
-        for key, value in rendered.timings.items():
-            timings[key] += value
-        timings["sampling"] += time.perf_counter() - t1 - sum(rendered.timings.values())
+    ids = range(spec.first_system, spec.first_system + spec.n_systems)
+    for k, ((x0, y0), rendered) in enumerate(zip(origins, rendered_systems(sampler, ids, timings))):
+        merge_attrition(attrition, rendered.system.rejections)
         x, y = x0 + 0.5 * (stamp - 1), y0 + 0.5 * (stamp - 1)
         ra, dec = (float(v) for v in wcs.wcs_pix2world(x, y, 0))
         rendered = dataclasses.replace(rendered, system=dataclasses.replace(rendered.system, ra=ra, dec=dec))
         lenses.append((x0, y0, rendered))
-        row = truth_row(rendered, file, shard=file, shard_index=k, flags=selected["flags"],
+        row = truth_row(rendered, file, shard=file, shard_index=k, flags=rendered.system.selection_flags,
                         cut_names=recipe.selection.cut_names)
         rows.append({"field_id": spec.index, "x_pixel": x, "y_pixel": y, **row})
         subhalos += subhalo_rows(rendered)

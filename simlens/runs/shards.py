@@ -23,7 +23,8 @@ from ..output.truth import (image_rows, image_table, line_of_sight_rows, line_of
                            subhalo_table, truth_row, truth_table)
 from ..truth.sampler import PopulationSampler
 from ..recipe import Recipe
-from ..truth.selection import merge_attrition, select_and_render
+from ..truth.selection import merge_attrition
+from .rendering import STAGES, rendered_systems
 
 __all__ = ["ShardSpec", "ShardResult", "shard_plan", "part_size", "render_shard", "shard_path", "cutout_path"]
 
@@ -90,16 +91,11 @@ def render_shard(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
     rows, subhalos, images, los, files = [], [], [], [], {}
     attrition: dict = {}
     shard_file = shard_path(recipe, spec.index)
-    timings = {"sampling": 0.0, "ray_tracing": 0.0, "image_finding": 0.0, "adaptive_refinement": 0.0,
-               "scene": 0.0, "galsim_stage": 0.0, "writing": 0.0}
-    for k in range(spec.n_systems):
-        system_id = spec.first_system + k
-        t0 = time.perf_counter()
-        rendered, selected = select_and_render(sampler, system_id)
-        merge_attrition(attrition, selected["rejections"])
-        for key, value in rendered.timings.items():
-            timings[key] += value
-        timings["sampling"] += time.perf_counter() - t0 - sum(rendered.timings.values())
+    timings = dict.fromkeys(STAGES + ("writing",), 0.0)
+    ids = range(spec.first_system, spec.first_system + spec.n_systems)
+    for k, rendered in enumerate(rendered_systems(sampler, ids, timings)):
+        system_id = rendered.system.system_id
+        merge_attrition(attrition, rendered.system.rejections)
         t1 = time.perf_counter()
         for b, observed in enumerate(rendered.bands):
             cubes["IMAGES"][k, b] = observed.image
@@ -115,8 +111,8 @@ def render_shard(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
             relative = cutout_path(recipe, system_id)
             write_cutout(rendered, run_folder / relative, run_name=recipe.name)
             files[relative] = None
-        rows.append(truth_row(rendered, relative, shard=shard_file, shard_index=k, flags=selected["flags"],
-                              cut_names=recipe.selection.cut_names))
+        rows.append(truth_row(rendered, relative, shard=shard_file, shard_index=k,
+                              flags=rendered.system.selection_flags, cut_names=recipe.selection.cut_names))
         subhalos += subhalo_rows(rendered)
         images += image_rows(rendered)
         los += line_of_sight_rows(rendered)

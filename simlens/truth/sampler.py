@@ -1,433 +1,72 @@
-"""Drawing systems: one :class:`System` per ``system_id`` from a recipe.
+"""Drawing systems: one :class:`~simlens.truth.record.System` per ``system_id`` from a recipe.
 
-A System holds plain numbers only -- the truth of one lens, its source, and the observing
-conditions in every band -- and builds the model objects (mass, lens light, source light) the
-renderer needs.  Drawing is deterministic in ``(recipe.seed, system_id)`` (see
-:mod:`simlens.sampling`): ``PopulationSampler(recipe).draw(i)`` gives the same system whichever
-process asks and whatever it drew before.
+Drawing is deterministic in ``(recipe.seed, system_id)``: every system draws from its own streams
+(:mod:`simlens.truth.streams`), always with the same calls in the same order, so
+``PopulationSampler(recipe).draw(i)`` gives the same system whichever process asks, whatever it
+drew before and however many systems it draws at once.
+
+There is one implementation, array-first: :meth:`PopulationSampler.draw_many` takes the pending
+candidates of many systems together, and the arithmetic between their draws runs on arrays (the
+parameters, the deflector and source batches, distance ratios and Einstein radii, the closed-form
+caustics of SIE + shear lenses, the placement tries and the selection cuts).  What has no array
+form -- subhalos, line-of-sight galaxies, the stars-and-halo model, caustics found by the scan --
+is a per-row step inside the same loop.  ``draw(i)`` is ``draw_many([i])[0]``.
+
+A system is drawn as a sequence of *candidates* (``candidate = 0, 1, ...``, each from its own
+streams).  The first candidate that passes every enforced cut is kept; cuts on images
+(magnification, image count, arc S/N) are judged by the ``image_cuts`` callable of
+:meth:`~PopulationSampler.draw_many`, within the same count of ``selection.max_candidates``.
 """
 
 from __future__ import annotations
 
 import dataclasses
 import math
-from dataclasses import dataclass
-from typing import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable, Mapping, Sequence
 
 import numpy as np
 
-from pathlib import Path
-
-from ..lensing.caustics import CausticSet, find_caustics
-from ..lensing.stars_and_halo import stars_and_halo
-from ..cosmology import critical_surface_density, ARCSEC_PER_RADIAN
-from ..cosmology import C_KM_S, DistanceTable
+from ..cosmology import DistanceTable, sis_einstein_radius
 from ..errors import SimlensError
+from ..lensing.caustics import CUT_ANGLES, _UNIT_CIRCLE, find_caustics, inside_polygon, isothermal_caustics, polygon_area
+from ..lensing.mass.base import isothermal_hessian, rotate_back
+from ..lensing.mass.isothermal import sie_convergence_in_frame, sie_deflection_in_frame
+from ..lensing.mass.sheets import shear_components
+from ..lensing.stars_and_halo import critical_density_arcsec2, stars_and_halo
 from ..populations.galaxies import LensLightModel, PointSourceColours, SourceModel
-from ..imaging.light import CompositeLight, LightProfile, Sersic
 from ..populations.negatives import lookalike_light
-from ..lensing.mass import (NFW, SIE, SIS, ConvergenceSheet, CoredIsothermal, ExternalShear, MassModel, Multipole, PowerLaw,
-                   SersicMass, TruncatedSIS)
+from ..populations.velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulation
 from ..recipe import Recipe
 from ..recipe.distributions import Fixed, Grid
-from .streams import SYSTEM_STREAMS, grid_cell, system_streams
 from .conditions import BandConditions
-from ..populations.velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulation
+from .record import (Clump, LineOfSightGalaxy, SecondSource, Subhalo, System, build_deflector, multi_plane)
+from .streams import SYSTEM_STREAMS, grid_cell, system_streams
 
-__all__ = ["System", "Clump", "Subhalo", "LineOfSightGalaxy", "SecondSource", "PopulationSampler", "SelectionExhausted", "offset_on_sky"]
-
-CLUMP_SERSIC_INDEX = 0.5  # Gaussian clumps
-
-
-@dataclass(frozen=True)
-class Clump:
-    """A compact knot of the source: offset from the source centre (arcsec, source plane), size,
-    and magnitude per band."""
-
-    x: float
-    y: float
-    half_light_radius: float
-    magnitudes: Mapping[str, float]
-
-
-@dataclass(frozen=True)
-class Subhalo:
-    """A truncated-SIS subhalo: position (arcsec, image plane), mass (M_sun), Einstein radius b and
-    truncation radius a (arcsec)."""
-
-    x: float
-    y: float
-    mass: float
-    einstein_radius: float
-    truncation_radius: float
-
-
-@dataclass(frozen=True)
-class LineOfSightGalaxy:
-    """An SIS deflector in its own lens plane: redshift, velocity dispersion (km/s), position
-    (arcsec, in its plane) and Einstein radius for the system's source (arcsec)."""
-
-    z: float
-    velocity_dispersion: float
-    x: float
-    y: float
-    einstein_radius: float
-
-
-@dataclass(frozen=True)
-class SecondSource:
-    """A source galaxy in a second, farther source plane: Sersic light (magnitudes per band), its
-    centre (arcsec, in its own plane), the factor that rescales the main lens's deflection to its
-    redshift, and the Einstein radius of the first source as an SIS deflector (0: none)."""
-
-    z: float
-    magnitudes: Mapping[str, float]
-    half_light_radius: float
-    sersic_index: float
-    q: float
-    angle: float
-    x: float
-    y: float
-    deflection_factor: float
-    deflector_einstein_radius: float
-
-
-@dataclass(frozen=True)
-class System:
-    """The truth of one lens system (plain values; all angles in degrees CCW from +x, positions in
-    arcsec relative to the cutout centre, where the lens sits)."""
-
-    system_id: int
-    grid_cell: tuple
-    ra: float
-    dec: float
-    z_lens: float
-    z_source: float
-    velocity_dispersion: float
-    einstein_radius: float
-    mass_q: float
-    mass_angle: float
-    mass_model_name: str
-    mass_slope: float
-    mass_core_radius: float
-    multipoles: tuple  # of (order, strength, angle relative to the mass major axis)
-    subhalos: tuple  # of Subhalo
-    shear_gamma: float
-    shear_angle: float
-    lens_magnitudes: Mapping[str, float]
-    lens_half_light_radius: float
-    lens_sersic_index: float
-    lens_q: float
-    lens_angle: float
-    source_disk_magnitudes: Mapping[str, float]
-    source_half_light_radius: float
-    source_sersic_index: float
-    source_q: float
-    source_angle: float
-    source_x: float
-    source_y: float
-    clumps: tuple
-    bands: tuple  # of BandConditions, in survey order
-    noise_seeds: tuple  # one int per band, for GalSim's noise
-    # -- physics and placement truth (defaults: not modelled) --
-    lens_absolute_magnitude: float = math.nan  # rest frame, AB (scaling relations only)
-    lens_luminosity: float = math.nan  # L_sun, rest filter
-    lens_stellar_mass: float = math.nan  # M_sun
-    source_absolute_magnitude: float = math.nan
-    quasar_magnitudes: Mapping[str, float] | None = None  # point source at the source centre
-    host: bool = True  # whether the source galaxy (disk, clumps) is drawn
-    placement: str = "fixed"  # fixed, lens or sky
-    region_radius: float = math.nan  # arcsec: source centres fall uniformly in this disc
-    region_widened: bool = False  # the caustics reached beyond the nominal region
-    multiply_imaged: bool = False  # source centre inside a caustic or the cut
-    tangential_caustic_area: float = 0.0  # arcsec^2
-    inner_caustic_area: float = 0.0  # radial caustic or cut, arcsec^2
-    days_per_arcsec2: float = math.nan  # time delay per unit Fermat potential
-    candidate: int = 0  # which draw of this system passed the selection (0: the first)
-    rejections: Mapping[str, int] = dataclasses.field(default_factory=dict)  # earlier candidates, by cut
-    selection_flags: Mapping[str, bool] = dataclasses.field(default_factory=dict)  # cut -> passed
-    # -- stars_and_halo mass model (simlens.composite_lens); the stars take the lens light's shape --
-    stellar_kappa_e: float = 0.0
-    halo_mass: float = math.nan  # M200, M_sun
-    halo_concentration: float = math.nan
-    halo_kappa_s: float = 0.0
-    halo_scale_radius: float = math.nan  # arcsec
-    halo_ellipticity: float = 0.0
-    second_source: SecondSource | None = None
-    # -- line of sight (multi-plane) --
-    line_of_sight: tuple = ()  # of LineOfSightGalaxy
-    cosmology: object = None  # the run's astropy cosmology, for the multi-plane distances
-    # -- negatives (simlens.negatives) --
-    system_class: str = "lens"  # lens, missed_caustics, source_in_front, or a negative class
-    lensing: bool = True  # False: nothing is deflected (negatives)
-    source_present: bool = True  # False: no background source (look-alikes)
-    extra_light: tuple = ()  # lens-plane look-alike light: (unit-flux profile, {band: mag}) pairs
-
-    # -- models -------------------------------------------------------------------------------
-    def mass_model(self) -> MassModel:
-        """The deflector: the main profile (its Einstein radius is that of the SIS with the drawn
-        velocity dispersion), multipoles, external shear.  A source in front of the lens (sky mode)
-        is not deflected at all."""
-        composite = self._composite()
-        main = build_deflector(self.mass_model_name, self.einstein_radius, self.mass_q, self.mass_angle,
-                               self.mass_slope, self.mass_core_radius, self.subhalos, self.multipoles,
-                               self.shear_gamma, self.shear_angle, composite=composite, lensing=self.lensing)
-        if not self.line_of_sight or not self.lensing:
-            return main
-        return multi_plane(main, self.z_lens, self.line_of_sight, self.z_source, self.cosmology)
-
-    def _composite(self) -> dict | None:
-        if self.mass_model_name != "stars_and_halo" or self.stellar_kappa_e <= 0:
-            return None
-        return dict(stellar_kappa_e=self.stellar_kappa_e, stellar_r_e=self.lens_half_light_radius,
-                    stellar_n=self.lens_sersic_index, stellar_q=self.lens_q, stellar_angle=self.lens_angle,
-                    halo_kappa_s=self.halo_kappa_s, halo_scale_radius=self.halo_scale_radius,
-                    halo_ellipticity=self.halo_ellipticity)
-
-    def band(self, name: str) -> BandConditions:
-        for b in self.bands:
-            if b.name == name:
-                return b
-        raise KeyError(f"system {self.system_id} has no band {name!r}")
-
-    def lens_light(self, band: str) -> LightProfile:
-        """The lens galaxy (Sersic), with any look-alike features of a negative, in counts."""
-        conditions = self.band(band)
-        galaxy = Sersic(flux=conditions.counts_from_magnitude(self.lens_magnitudes[band]),
-                        half_light_radius=self.lens_half_light_radius,
-                        sersic_index=self.lens_sersic_index, q=self.lens_q, angle=self.lens_angle)
-        if not self.extra_light:
-            return galaxy
-        return CompositeLight((galaxy,) + tuple(shape.with_flux(conditions.counts_from_magnitude(mags[band]))
-                                                for shape, mags in self.extra_light))
-
-    def second_source_mass(self) -> MassModel:
-        """The deflectors for the second source plane: the main lens (and any line-of-sight
-        galaxies) rescaled to its redshift, and the first source as an SIS in its plane."""
-        from ..lensing.mass import ScaledDeflector
-
-        second = self.second_source
-        main = ScaledDeflector(build_deflector(self.mass_model_name, self.einstein_radius, self.mass_q,
-                                               self.mass_angle, self.mass_slope, self.mass_core_radius,
-                                               self.subhalos, self.multipoles, self.shear_gamma, self.shear_angle,
-                                               composite=self._composite(), lensing=self.lensing),
-                               second.deflection_factor)
-        planes = [(self.z_lens, main)]
-        for g in self.line_of_sight:
-            planes.append((g.z, SIS(einstein_radius=g.einstein_radius * g_factor(self, g), center=(g.x, g.y))))
-        if second.deflector_einstein_radius > 0:
-            planes.append((self.z_source, SIS(einstein_radius=second.deflector_einstein_radius,
-                                              center=(self.source_x, self.source_y))))
-        if len(planes) == 1:
-            return main
-        from ..lensing.multiplane import MultiPlaneLens
-
-        planes.sort(key=lambda p: p[0])
-        return MultiPlaneLens(planes=tuple(m for _, m in planes), redshifts=tuple(z for z, _ in planes),
-                              z_source=second.z, cosmology=self.cosmology)
-
-    def second_source_light(self, band: str) -> LightProfile:
-        second = self.second_source
-        return Sersic(flux=self.band(band).counts_from_magnitude(second.magnitudes[band]),
-                      half_light_radius=second.half_light_radius, sersic_index=second.sersic_index,
-                      q=second.q, angle=second.angle, center=(second.x, second.y))
-
-    @property
-    def region_area(self) -> float:
-        return math.pi * self.region_radius**2
-
-    def quasar_flux(self, band: str) -> float:
-        """Counts of the unlensed point source in ``band`` (0 without one)."""
-        if self.quasar_magnitudes is None or not self.source_present:
-            return 0.0
-        return self.band(band).counts_from_magnitude(self.quasar_magnitudes[band])
-
-    def source_light(self, band: str) -> LightProfile:
-        """The unlensed source galaxy in the source plane (disk plus clumps), in counts.  A point
-        source is not part of it: its images are found and placed by the renderer."""
-        conditions = self.band(band)
-        if not self.host or not self.source_present:
-            return Sersic(flux=0.0, half_light_radius=self.source_half_light_radius,
-                          center=(self.source_x, self.source_y))
-        disk = Sersic(flux=conditions.counts_from_magnitude(self.source_disk_magnitudes[band]),
-                      half_light_radius=self.source_half_light_radius, sersic_index=self.source_sersic_index,
-                      q=self.source_q, angle=self.source_angle, center=(self.source_x, self.source_y))
-        if not self.clumps:
-            return disk
-        knots = tuple(
-            Sersic(flux=conditions.counts_from_magnitude(c.magnitudes[band]), half_light_radius=c.half_light_radius,
-                   sersic_index=CLUMP_SERSIC_INDEX, center=(self.source_x + c.x, self.source_y + c.y))
-            for c in self.clumps)
-        return CompositeLight((disk,) + knots)
-
-    def source_magnitude(self, band: str) -> float:
-        """Total unlensed magnitude of the source galaxy (disk plus clumps) in ``band`` (nan when a
-        look-alike negative has no source)."""
-        if not self.source_present:
-            return math.nan
-        flux = 10 ** (-0.4 * self.source_disk_magnitudes[band])
-        flux += sum(10 ** (-0.4 * c.magnitudes[band]) for c in self.clumps)
-        return -2.5 * math.log10(flux)
-
-
-def build_deflector(model: str, einstein_radius: float, q: float, angle: float, slope: float,
-                    core_radius: float, subhalos: tuple, multipoles: tuple, shear_gamma: float,
-                    shear_angle: float, composite: dict | None = None, lensing: bool = True) -> MassModel:
-    """The mass model of a system from its truth values (see :meth:`System.mass_model`).  For
-    ``stars_and_halo``, ``composite`` holds the stellar Sersic and NFW parameters."""
-    theta_e = einstein_radius
-    if not lensing or (theta_e <= 0 and composite is None):
-        return ConvergenceSheet(kappa=0.0)
-    if model == "stars_and_halo":
-        c = composite
-        lens = (SersicMass(kappa_e=c["stellar_kappa_e"], half_light_radius=c["stellar_r_e"],
-                           sersic_index=c["stellar_n"], q=c["stellar_q"], angle=c["stellar_angle"])
-                + NFW(kappa_s=c["halo_kappa_s"], scale_radius=c["halo_scale_radius"],
-                      ellipticity=c["halo_ellipticity"], angle=angle))
-    elif model == "power_law":
-        lens = PowerLaw(einstein_radius=theta_e, slope=slope, q=q, angle=angle)
-    elif model == "cored_isothermal":
-        lens = CoredIsothermal(einstein_radius=theta_e, core_radius=core_radius, q=q, angle=angle)
-    else:
-        lens = SIE(einstein_radius=theta_e, q=q, angle=angle)
-    for sub in subhalos:
-        lens = lens + TruncatedSIS(einstein_radius=sub.einstein_radius, truncation_radius=sub.truncation_radius,
-                                   center=(sub.x, sub.y))
-    for order, strength, relative_angle in (multipoles if theta_e > 0 else ()):
-        lens = lens + Multipole(order=order, strength=strength, einstein_radius=theta_e, angle=angle + relative_angle)
-    if shear_gamma > 0:
-        lens = lens + ExternalShear(gamma=shear_gamma, angle=shear_angle)
-    return lens
-
-
-def g_factor(system: "System", galaxy: "LineOfSightGalaxy") -> float:
-    """Rescaling of a line-of-sight galaxy's deflection from the first source to the second."""
-    from ..cosmology import distance_ratio
-
-    cosmo = system.cosmology
-    return distance_ratio(cosmo, galaxy.z, system.second_source.z) / distance_ratio(cosmo, galaxy.z, system.z_source)
-
-
-def multi_plane(main: MassModel, z_lens: float, line_of_sight: tuple, z_source: float, cosmology) -> MassModel:
-    """The main deflector and the line-of-sight SIS galaxies as a multi-plane lens (planes in
-    redshift order; every plane's model normalised for the source, as simlens.multiplane expects)."""
-    from ..lensing.multiplane import MultiPlaneLens
-
-    planes = [(z_lens, main)] + [(g.z, SIS(einstein_radius=g.einstein_radius, center=(g.x, g.y)))
-                                 for g in line_of_sight]
-    planes.sort(key=lambda p: p[0])
-    return MultiPlaneLens(planes=tuple(m for _, m in planes), redshifts=tuple(z for z, _ in planes),
-                          z_source=z_source, cosmology=cosmology)
-
-
-def offset_on_sky(ra0: float, dec0: float, position_angle: float, separation: float) -> tuple[float, float]:
-    """The point at ``separation`` (deg) from (ra0, dec0) towards ``position_angle`` (deg east of
-    north), on the sphere (spherical trigonometry; astropy's SkyCoord.directional_offset_by is the
-    reference in the tests)."""
-    d0, pa, s = math.radians(dec0), math.radians(position_angle), math.radians(separation)
-    sin_dec = math.sin(d0) * math.cos(s) + math.cos(d0) * math.sin(s) * math.cos(pa)
-    dec = math.asin(max(-1.0, min(1.0, sin_dec)))
-    dra = math.atan2(math.sin(pa) * math.sin(s) * math.cos(d0), math.cos(s) - math.sin(d0) * sin_dec)
-    return (ra0 + math.degrees(dra)) % 360.0, math.degrees(dec)
-
-
-class _GeometryQueue:
-    """The (sigma, z_lens, z_source, source anchor magnitude) pairs of one candidate, drawn in
-    batches and rejected in bulk where it is cheap.  In lens mode a source must lie behind its lens
-    and a pair is kept with probability (D_ls/D_s)^2, the distance part of the cross-section weight
-    (sigma^4 is exact in the deflector draw); the Einstein-radius cut is applied here too.  Other
-    modes take every pair.  ``rejections`` counts the skipped pairs by cut."""
-
-    def __init__(self, sampler: "PopulationSampler", rng):
-        self.sampler, self.rng = sampler, rng
-        self.lens_mode = sampler.mode == "lens"
-        self.bulk = sampler.deflectors is not None or sampler.source_model is not None
-        self.rejections = {"source_in_front": 0, "cross_section": 0, "einstein_radius": 0}
-        self._batch = None
-        self._cursor = 0
-
-    def _new_batch(self, v: dict) -> None:
-        sampler, rng = self.sampler, self.rng
-        n = sampler.GEOMETRY_BATCH if (self.bulk and self.lens_mode) else 1
-        if sampler.deflectors is not None:
-            z_l = sampler.deflectors.draw_redshift(rng.uniform(size=n))
-            u_sigma = rng.uniform(size=n)
-        else:
-            z_l = np.full(n, v["lens.redshift"])
-            sigma = np.full(n, v["lens.velocity_dispersion"])
-        if sampler.source_model is not None:
-            m, z_s = sampler.source_model.draw_magnitudes_and_redshifts(rng, n)
-        else:
-            m, z_s = np.full(n, math.nan), np.full(n, v["source.redshift"])
-        if not self.lens_mode:
-            if sampler.deflectors is not None:
-                sigma = sampler.deflectors.draw_sigma(u_sigma, z_l)
-            ones = np.ones(n, dtype=bool)
-            self._batch = (sigma, z_l, z_s, m, ones, ones, ones)
-        else:
-            u = rng.uniform(size=n)
-            behind = z_s > z_l
-            ratio = np.where(behind, sampler.distances.distance_ratio(np.minimum(z_l, z_s), z_s), 0.0)
-            weighted = behind & ((u <= ratio**2) if sampler.deflectors is not None else True)
-            if sampler.deflectors is not None:  # sigma only where a pair can still be kept (the costly part)
-                sigma = np.full(n, math.nan)
-                sigma[weighted] = sampler.deflectors.draw_sigma(u_sigma[weighted], z_l[weighted])
-            kept = weighted
-            selection = sampler.recipe.selection
-            if (selection.einstein_radius is not None and selection.enforce
-                    and sampler.recipe.lens.mass.model != "stars_and_halo"):  # its theta_E is solved later
-                theta = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * ratio * ARCSEC_PER_RADIAN
-                kept = weighted & (theta >= selection.einstein_radius[0]) & (theta <= selection.einstein_radius[1])
-            self._batch = (sigma, z_l, z_s, m, behind, weighted, kept)
-        self._cursor = 0
-
-    def _count(self, stop: int) -> None:
-        _, _, _, _, behind, weighted, kept = self._batch
-        a = self._cursor
-        self.rejections["source_in_front"] += int(np.count_nonzero(~behind[a:stop]))
-        self.rejections["cross_section"] += int(np.count_nonzero(behind[a:stop] & ~weighted[a:stop]))
-        self.rejections["einstein_radius"] += int(np.count_nonzero(weighted[a:stop] & ~kept[a:stop]))
-
-    def next(self, v: dict):
-        """The next kept pair as floats, or None when GEOMETRY_BATCHES batches held none."""
-        for _ in range(self.sampler.GEOMETRY_BATCHES if self.bulk else 1):
-            if self._batch is None or self._cursor >= self._batch[0].size:
-                self._new_batch(v)
-            kept = self._batch[6]
-            remaining = np.flatnonzero(kept[self._cursor:])
-            if remaining.size:
-                k = self._cursor + int(remaining[0])
-                self._count(k)
-                self._cursor = k + 1
-                sigma, z_l, z_s, m = (float(a[k]) for a in self._batch[:4])
-                return sigma, z_l, z_s, m
-            self._count(kept.size)
-            self._batch = None
-            if not self.bulk:
-                break
-        return None
-
-    def nonzero_rejections(self) -> dict:
-        return {k: n for k, n in self.rejections.items() if n}
+__all__ = ["PopulationSampler", "SelectionExhausted", "System", "offset_on_sky"]
 
 
 class SelectionExhausted(SimlensError):
     """No candidate of a system passed the selection within ``selection.max_candidates``."""
 
 
+ImageCuts = Callable[[System], Mapping[str, bool]]
+
+
 class PopulationSampler:
     """Draws :class:`System` objects from a recipe.
 
     >>> sampler = PopulationSampler(recipe)
-    >>> system = sampler.draw(7)      # identical every time, in any process
-
-    A system is drawn as a sequence of *candidates* (``candidate = 0, 1, ...``, each from its own
-    random streams); the first that passes the cuts that need no images -- the geometry of the
-    placement mode, ``selection.einstein_radius``, ``resolvable`` and ``multiply_imaged`` -- is
-    returned, with the number of earlier candidates each cut rejected in ``System.rejections``.
-    Cuts on images (magnification, image count, arc S/N) are applied by the renderer's caller,
-    which asks for the next candidate with ``draw(system_id, first_candidate=k)``.
+    >>> system = sampler.draw(7)                 # identical every time, in any process
+    >>> systems = sampler.draw_many(range(1000))  # the same systems as draw(i), drawn together
     """
+
+    BLOCK_SIZE = 4096  # systems drawn together (the caustics of a block are arrays)
+    GEOMETRY_BATCH = 64  # (deflector, source) pairs drawn at once in lens mode
+    GEOMETRY_BATCHES = 64  # batches per candidate before it counts as rejected
+    TRIES_PER_CANDIDATE = 64  # deflectors tried (sharing the candidate's streams) before rejection
+    LENS_MODE_PLACEMENT_TRIES = 1000  # source places tried behind an explicit-distribution deflector
 
     def __init__(self, recipe: Recipe, conditions: tuple | None = None):
         """``conditions``: BandConditions (survey order) that every system takes instead of its
@@ -437,7 +76,6 @@ class PopulationSampler:
         self.cosmology = recipe.cosmology.build()
         self.distances = DistanceTable(self.cosmology)
         self._parameters = list(recipe.parameters())
-        self._grid_paths = [path for path, p in self._parameters if isinstance(p, Grid)]
         # one uniform per parameter (fixed ones included, so adding a distribution to one parameter
         # leaves the others' draws unchanged)
         self._fixed_values = {path: float(p.value) for path, p in self._parameters if isinstance(p, Fixed)}
@@ -458,7 +96,7 @@ class PopulationSampler:
         if lens.population is not None:
             pop = lens.population
             # Lens mode draws the population of *lenses*: galaxies weighted by their cross-section,
-            # sigma^4 exactly (here) and (D_ls/D_s)^2 by rejection (see _draw_candidate).
+            # sigma^4 exactly (here) and (D_ls/D_s)^2 by rejection (see _PairQueue).
             self.deflectors = DeflectorPopulation(
                 VELOCITY_FUNCTIONS[pop.velocity_function], self.distances, pop.redshift_range,
                 pop.velocity_dispersion_range, pop.density_evolution, pop.sigma_evolution,
@@ -485,25 +123,107 @@ class PopulationSampler:
             return density
         return self.source_model.sky_density if self.source_model is not None else math.nan
 
-    def draw_parameters(self, system_id: int, streams) -> tuple[dict, tuple]:
-        """Every recipe parameter's value for this system, keyed by key path."""
-        cell = grid_cell(system_id, self._grid_shape)
-        cell_of = dict(zip(self._grid_paths, cell))
-        uniforms = streams["parameters"].uniform(size=len(self._parameters)).tolist()
-        values = dict(self._fixed_values)
-        for index, path, param in self._random_parameters:
-            values[path] = float(param.from_uniform(uniforms[index]))
-        for path, param in self._grid_parameters:
-            values[path] = float(param.at(cell_of[path]))
-        return values, cell
+    # -- the public entry points ---------------------------------------------------------------
+    def draw(self, system_id: int) -> System:
+        """System ``system_id``: ``draw_many([system_id])[0]``."""
+        return self.draw_many([system_id])[0]
 
-    def _draw_subhalos(self, v: dict, theta_e: float, z_lens: float, z_source: float, streams) -> tuple:
+    def draw_many(self, system_ids: Sequence[int], image_cuts: ImageCuts | None = None) -> list[System]:
+        """The systems ``system_ids`` (in that order; repeated ids give the same system).
+
+        ``image_cuts(system) -> {cut name: passed}`` judges the cuts that need images (the caller
+        renders): with ``selection.enforce`` a lens that fails one is replaced by its next
+        candidate; otherwise, and for negatives, the results only become ``selection_flags``.
+        Raises :class:`SelectionExhausted` when a system has used ``selection.max_candidates``
+        candidates in all, image-cut redraws included."""
+        ids = [int(i) for i in system_ids]
+        if any(i < 0 for i in ids):
+            raise ValueError(f"system_id must be >= 0, got {min(ids)}")
+        unique = list(dict.fromkeys(ids))
+        done: dict[int, System] = {}
+        for start in range(0, len(unique), self.BLOCK_SIZE):
+            done.update(self._draw_block(unique[start:start + self.BLOCK_SIZE], image_cuts))
+        return [done[i] for i in ids]
+
+    # -- the candidate loop ----------------------------------------------------------------------
+    def _draw_block(self, ids: list[int], image_cuts: ImageCuts | None) -> dict[int, System]:
+        limit = self.recipe.selection.max_candidates
+        candidate = dict.fromkeys(ids, 0)
+        rejections: dict[int, dict] = {i: {} for i in ids}
+        done: dict[int, System] = {}
+        pending = ids
+        while pending:
+            streams = [system_streams(self.recipe.seed, i, SYSTEM_STREAMS, candidate[i]) for i in pending]
+            outcomes = self._candidates(pending, [candidate[i] for i in pending], streams)
+            still = []
+            for i, (system, counts) in zip(pending, outcomes):
+                if system is not None and image_cuts is not None:
+                    system, failed = self._judge_images(system, image_cuts)
+                    if failed is not None:
+                        counts = _merge_counts(counts, {failed: 1})
+                _add_counts(rejections[i], counts)
+                if system is not None:
+                    object.__setattr__(system, "rejections", rejections[i])  # the record is still private here
+                    done[i] = system
+                    continue
+                candidate[i] += 1
+                if candidate[i] >= limit:
+                    raise SelectionExhausted(_exhausted_message(i, limit, rejections[i]))
+                still.append(i)
+            pending = still
+        return done
+
+    def _judge_images(self, system: System, image_cuts: ImageCuts) -> tuple[System | None, str | None]:
+        results = dict(image_cuts(system))
+        failed = next((name for name, ok in results.items() if not ok), None)
+        # negatives are labelled non-lenses: the cuts flag them but never redraw them
+        if failed is not None and self.recipe.selection.enforce and system.system_class == "lens":
+            return None, failed
+        return dataclasses.replace(system, selection_flags={**system.selection_flags, **results}), None
+
+    def _candidates(self, ids: list[int], candidates: list[int], streams: list) -> list[tuple[System | None, dict]]:
+        """One candidate of each system: the System, or None and the rejections by cut."""
+        geometries = _GeometryPhase(self, ids, streams).run()
+        self._photometry_and_light(geometries, streams)
+        out = []
+        for i, c, s, (geometry, counts) in zip(ids, candidates, streams, geometries):
+            out.append(self._finish(i, c, s, geometry) if geometry is not None else (None, counts))
+        return out
+
+    def _photometry_and_light(self, geometries: list, streams: list) -> None:
+        """The first draws after the geometry, on arrays: the source's size and colours and the
+        lens light (each from its standard normals of the physics stream) and the time-delay scale."""
+        rows = [j for j, (g, _) in enumerate(geometries) if g is not None]
+        if not rows:
+            return
+        g = [geometries[j][0] for j in rows]
+        source, light = self.source_model, self.lens_light_model
+        n_source = source.normals if source is not None else 0
+        n_light = light.NORMALS if light is not None and g[0].light is None else 0
+        normals = np.stack([streams[j]["physics"].standard_normal(size=n_source + n_light) for j in rows])
+        z_lens, z_source = np.array([x.z_lens for x in g]), np.array([x.z_source for x in g])
+        if source is not None:
+            for x, p in zip(g, source.complete_many([x.anchor_magnitude for x in g], z_source, normals[:, :n_source])):
+                x.photometry = p
+        if n_light:
+            drawn = light.draw_many([x.sigma for x in g], z_lens, [x.v["lens.mass.q"] for x in g],
+                                    [x.v["lens.mass.angle"] for x in g], normals[:, n_source:])
+            for x, one in zip(g, drawn):
+                x.light = one
+        behind = np.array([x.behind for x in g])
+        days = np.full(len(g), math.nan)
+        if behind.any():
+            days[behind] = self.distances.fermat_to_days(z_lens[behind], z_source[behind])
+        for x, d in zip(g, days):
+            x.days_per_arcsec2 = float(d)
+
+    # -- per-row steps of the geometry phase ----------------------------------------------------
+    def _subhalos(self, v: dict, theta_e: float, z_lens: float, z_source: float, rng) -> tuple:
         """Masses from dN/dm ~ m^slope on [mass_min, mass_max] (inverse CDF), positions uniform in
         area in the annulus [annulus, annulus_outer] theta_E around the lens centre."""
         n = int(round(v["lens.subhalos.count"]))
         if n == 0 or theta_e <= 0:
             return ()
-        rng = streams["physics"]
         settings = self.recipe.lens.subhalos
         k = settings.mass_function_slope + 1.0
         lo, hi = settings.mass_min ** k, settings.mass_max ** k
@@ -511,13 +231,11 @@ class PopulationSampler:
         r_in, r_out = v["lens.subhalos.annulus"] * theta_e, v["lens.subhalos.annulus_outer"] * theta_e
         radii = np.sqrt(r_in**2 + rng.uniform(size=n) * (r_out**2 - r_in**2))
         phi = rng.uniform(0.0, 2.0 * math.pi, size=n)
-        sigma_cr = critical_surface_density(self.cosmology, z_lens, z_source).value  # M_sun / Mpc^2
-        d_l = float(self.distances.angular_diameter_distance(z_lens))  # Mpc
-        sigma_cr_arcsec2 = sigma_cr * (d_l / ARCSEC_PER_RADIAN) ** 2  # M_sun / arcsec^2
-        return tuple(_subhalo(float(m), float(r * math.cos(p)), float(r * math.sin(p)), theta_e, sigma_cr_arcsec2)
+        sigma_cr = critical_density_arcsec2(self.distances, z_lens, z_source)  # M_sun / arcsec^2
+        return tuple(_subhalo(float(m), float(r * math.cos(p)), float(r * math.sin(p)), theta_e, sigma_cr)
                      for m, r, p in zip(masses, radii, phi))
 
-    def _draw_line_of_sight(self, v: dict, z_lens: float, z_source: float, rng) -> tuple:
+    def _line_of_sight(self, v: dict, z_lens: float, z_source: float, rng) -> tuple:
         """SIS galaxies uniform in comoving volume between redshift_min and the source, uniform in
         a disc around the lens; sigma from the recipe's distribution, each its own draw."""
         n = int(round(v["lens.line_of_sight.count"]))
@@ -533,131 +251,22 @@ class PopulationSampler:
             x, y = _uniform_in_disc(settings.radius, rng)
             if not (z < z_source and z != z_lens):
                 continue
-            theta = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * float(self.distances.distance_ratio(z, z_source)) * ARCSEC_PER_RADIAN
+            theta = float(sis_einstein_radius(sigma, self.distances.distance_ratio(z, z_source)))
             galaxies.append(LineOfSightGalaxy(z=z, velocity_dispersion=sigma, x=x, y=y, einstein_radius=theta))
         return tuple(galaxies)
 
-    def draw_many(self, system_ids) -> list[System]:
-        """``[self.draw(i) for i in system_ids]``, several times faster: the geometry of all the
-        systems' candidates is computed on arrays (see :mod:`simlens.block_sampling`)."""
-        from .block_sampling import draw_many
+    def _stars_and_halo(self, v: dict, light, z_lens: float, z_source: float) -> tuple[float, dict]:
+        """theta_E and the truth of the stars-plus-halo deflector, whose stars follow the light."""
+        parts = stars_and_halo(light.luminosity, self.recipe.lens.light.scaling.mass_to_light,
+                               light.half_light_radius, v["lens.light.sersic_index"], v["lens.mass.halo_mass"],
+                               v.get("lens.mass.concentration"), z_lens, z_source, self.distances)
+        return parts.einstein_radius, dict(
+            stellar_kappa_e=parts.stellar_kappa_e, halo_mass=v["lens.mass.halo_mass"],
+            halo_concentration=parts.halo_concentration, halo_kappa_s=parts.halo_kappa_s,
+            halo_scale_radius=parts.halo_scale_radius, halo_ellipticity=v["lens.mass.halo_ellipticity"])
 
-        return draw_many(self, system_ids)
-
-    def draw(self, system_id: int, first_candidate: int = 0) -> System:
-        """The first candidate from ``first_candidate`` on that passes the cuts needing no images."""
-        if system_id < 0:
-            raise ValueError(f"system_id must be >= 0, got {system_id}")
-        selection = self.recipe.selection
-        rejections: dict[str, int] = {}
-        limit = selection.max_candidates
-        for candidate in range(first_candidate, first_candidate + limit):
-            system, failed = self._draw_candidate(system_id, candidate)
-            if isinstance(failed, str):
-                failed = {failed: 1}
-            for name, n in (failed or system.rejections).items():  # bulk geometry draws count too
-                rejections[name] = rejections.get(name, 0) + n
-            if system is not None:
-                object.__setattr__(system, "rejections", rejections)  # still private to this call
-                return system
-        raise SelectionExhausted(_exhausted_message(system_id, limit, rejections))
-
-    def _draw_candidate(self, system_id: int, candidate: int) -> tuple[System | None, str | None]:
-        streams = system_streams(self.recipe.seed, system_id, SYSTEM_STREAMS, candidate)
-        geometry, rejections = self._geometry(system_id, streams)
-        if geometry is None:
-            return None, rejections
-        return self._finish(system_id, candidate, streams, geometry)
-
-    # What the geometry phase hands to the rest of a candidate (see simlens.block_sampling, which
-    # computes the same for many systems at once).
-    GEOMETRY_FIELDS = ("v", "cell", "sigma", "z_lens", "z_source", "anchor_magnitude", "behind", "ratio", "theta_e",
-                       "mass_q", "mass_angle", "light", "composite_truth", "checks", "deflector", "line_of_sight",
-                       "placed", "geometry_rejections")
-
-    def _geometry(self, system_id: int, streams) -> tuple[dict | None, dict | None]:
-        """The deflector, the source redshift and the source's place: the tries of one candidate
-        (GEOMETRY_FIELDS), or None and the rejections by cut."""
-        recipe = self.recipe
-        selection = recipe.selection
-        queue = _GeometryQueue(self, streams["physics"])
-        tries: dict[str, int] = {}
-
-        # -- the deflector, the source redshift and the source's place behind the lens: tried
-        #    before the other draws, several times within the candidate's streams (in lens mode a
-        #    deflector whose caustics miss the source is replaced whole) --------------------------
-        for _ in range(self.TRIES_PER_CANDIDATE):
-            v, cell = self.draw_parameters(system_id, streams)
-            geometry = queue.next(v)
-            if geometry is None:
-                return None, _merge_counts(queue.nonzero_rejections(), tries)
-            sigma, z_lens, z_source, anchor_magnitude = geometry
-            behind = z_source > z_lens
-            ratio = float(self.distances.distance_ratio(z_lens, z_source)) if behind else 0.0
-            theta_e = 4.0 * math.pi * (sigma / C_KM_S) ** 2 * ratio * ARCSEC_PER_RADIAN
-            mass_q, mass_angle = v["lens.mass.q"], v["lens.mass.angle"]
-            model = recipe.lens.mass.model
-            composite, composite_truth, light = None, {}, None
-            if model == "stars_and_halo":
-                # the stars follow the light: draw it first; theta_E is then solved for
-                light = self.lens_light_model.draw(sigma, z_lens, mass_q, mass_angle, streams["physics"])
-                theta_e = 0.0
-                if behind:
-                    parts = stars_and_halo(light.luminosity, recipe.lens.light.scaling.mass_to_light,
-                                           light.half_light_radius, v["lens.light.sersic_index"],
-                                           v["lens.mass.halo_mass"], v.get("lens.mass.concentration"),
-                                           z_lens, z_source, self.distances)
-                    theta_e = parts.einstein_radius
-                    composite = dict(stellar_kappa_e=parts.stellar_kappa_e, stellar_r_e=light.half_light_radius,
-                                     stellar_n=v["lens.light.sersic_index"], stellar_q=light.q,
-                                     stellar_angle=light.angle, halo_kappa_s=parts.halo_kappa_s,
-                                     halo_scale_radius=parts.halo_scale_radius,
-                                     halo_ellipticity=v["lens.mass.halo_ellipticity"])
-                    composite_truth = dict(stellar_kappa_e=parts.stellar_kappa_e, halo_mass=v["lens.mass.halo_mass"],
-                                           halo_concentration=parts.halo_concentration,
-                                           halo_kappa_s=parts.halo_kappa_s, halo_scale_radius=parts.halo_scale_radius,
-                                           halo_ellipticity=v["lens.mass.halo_ellipticity"])
-            checks = {}
-            if selection.einstein_radius is not None:
-                lo, hi = selection.einstein_radius
-                checks["einstein_radius"] = lo <= theta_e <= hi
-                if selection.enforce and not checks["einstein_radius"]:
-                    tries["einstein_radius"] = tries.get("einstein_radius", 0) + 1
-                    continue
-            deflector = dict(
-                mass_model_name=model, mass_q=mass_q, mass_angle=mass_angle,
-                mass_slope=v["lens.mass.slope"] if model == "power_law" else 2.0,
-                mass_core_radius=v["lens.mass.core_radius"] if model == "cored_isothermal" else 0.0,
-                multipoles=tuple((m, v[f"lens.multipoles.m{m}_strength"], v[f"lens.multipoles.m{m}_angle"])
-                                 for m in (3, 4) if v[f"lens.multipoles.m{m}_strength"] != 0.0),
-                subhalos=self._draw_subhalos(v, theta_e, z_lens, z_source, streams),
-                shear_gamma=v["lens.shear.gamma"], shear_angle=v["lens.shear.angle"])
-            mass = build_deflector(deflector["mass_model_name"], theta_e, mass_q, mass_angle,
-                                   deflector["mass_slope"], deflector["mass_core_radius"], deflector["subhalos"],
-                                   deflector["multipoles"], deflector["shear_gamma"], deflector["shear_angle"],
-                                   composite=composite)
-            line_of_sight = self._draw_line_of_sight(v, z_lens, z_source, streams["physics"]) if behind else ()
-            if line_of_sight and theta_e > 0:
-                mass = multi_plane(mass, z_lens, line_of_sight, z_source, self.cosmology)
-            placed = self._place(mass, theta_e, v, streams["physics"])
-            if placed is None:
-                tries["placement"] = tries.get("placement", 0) + 1
-                continue
-            if selection.multiply_imaged:
-                checks["multiply_imaged"] = placed["multiply_imaged"]
-                if selection.enforce and not placed["multiply_imaged"]:
-                    tries["multiply_imaged"] = tries.get("multiply_imaged", 0) + 1
-                    continue
-            break
-        else:
-            return None, _merge_counts(queue.nonzero_rejections(), tries)
-        geometry_rejections = _merge_counts(queue.nonzero_rejections(), tries)
-        return dict(v=v, cell=cell, sigma=sigma, z_lens=z_lens, z_source=z_source, anchor_magnitude=anchor_magnitude,
-                    behind=behind, ratio=ratio, theta_e=theta_e, mass_q=mass_q, mass_angle=mass_angle, light=light,
-                    composite_truth=composite_truth, checks=checks, deflector=deflector, line_of_sight=line_of_sight,
-                    placed=placed, geometry_rejections=geometry_rejections), None
-
-    def _finish(self, system_id: int, candidate: int, streams, geometry: dict) -> tuple[System | None, dict | None]:
+    # -- the rest of a candidate -----------------------------------------------------------------
+    def _finish(self, system_id: int, candidate: int, streams, g: "_Geometry") -> tuple[System | None, dict]:
         """The rest of a candidate after its geometry: photometry, lens light, clumps, conditions,
         the resolvable cut, sky position, class."""
         recipe = self.recipe
@@ -665,21 +274,16 @@ class PopulationSampler:
         band_names = recipe.survey.band_names
         source_settings = recipe.source
         selection = recipe.selection
-        (v, cell, sigma, z_lens, z_source, anchor_magnitude, behind, ratio, theta_e, mass_q, mass_angle, light,
-         composite_truth, checks, deflector, line_of_sight, placed, geometry_rejections) = (
-            geometry[name] for name in self.GEOMETRY_FIELDS)
-        photometry = geometry.get("photometry")  # drawn already by simlens.block_sampling
-        if photometry is None and self.source_model is not None:
-            photometry = self.source_model.complete(anchor_magnitude, z_source, streams["physics"])
+        v, z_lens, z_source, theta_e = g.v, g.z_lens, g.z_source, g.theta_e
+        checks = dict(g.checks)
 
         # -- lens light ----------------------------------------------------------------------
         def magnitudes(base: float, prefix: str) -> dict:
             return {b: base + (0.0 if b == ref else v[f"{prefix}.{b}"]) for b in band_names}
 
-        lens_extra = dict(composite_truth)
-        if self.lens_light_model is not None:
-            if light is None:
-                light = self.lens_light_model.draw(sigma, z_lens, mass_q, mass_angle, streams["physics"])
+        lens_extra = dict(g.composite_truth)
+        if g.light is not None:
+            light = g.light
             lens_mags, lens_r_e, lens_q, lens_angle = light.magnitudes, light.half_light_radius, light.q, light.angle
             lens_extra.update(lens_absolute_magnitude=light.absolute_magnitude, lens_luminosity=light.luminosity,
                               lens_stellar_mass=light.stellar_mass)
@@ -688,6 +292,7 @@ class PopulationSampler:
             lens_r_e, lens_q, lens_angle = v["lens.light.half_light_radius"], v["lens.light.q"], v["lens.light.angle"]
 
         # -- source galaxy: the anchor magnitude is the total (disk + clumps) in the anchor band --
+        photometry = g.photometry
         if photometry is not None:
             anchor_mag, source_r_e = photometry.anchor_magnitude, photometry.half_light_radius
             disk_colors, clump_colors = photometry.disk_colors, photometry.clump_colors
@@ -721,14 +326,14 @@ class PopulationSampler:
                            **{name: v[key] for name, key in keys})
             for b, keys in self._band_keys)
 
-        # -- a second source plane ------------------------------------------------------------------
+        # -- a second source plane ------------------------------------------------------------
         second = None
         settings2 = source_settings.second
-        if settings2 is not None and behind and v["source.second.redshift"] > z_source and theta_e > 0:
+        if settings2 is not None and g.behind and v["source.second.redshift"] > z_source and theta_e > 0:
             z2 = v["source.second.redshift"]
-            factor = float(self.distances.distance_ratio(z_lens, z2)) / ratio
-            sigma_d = v["source.second.deflector_velocity_dispersion"]
-            theta_d = 4.0 * math.pi * (sigma_d / C_KM_S) ** 2 * float(self.distances.distance_ratio(z_source, z2)) * ARCSEC_PER_RADIAN
+            factor = float(self.distances.distance_ratio(z_lens, z2)) / g.ratio
+            theta_d = float(sis_einstein_radius(v["source.second.deflector_velocity_dispersion"],
+                                                self.distances.distance_ratio(z_source, z2)))
             x2, y2 = _uniform_in_disc(v["source.second.radius_in_einstein_radii"] * theta_e * factor, streams["physics"])
             colours = ({b: 0.0 if b == ref else v[f"source.second.colors.{b}"] for b in band_names}
                        if settings2.colors else {b: disk_colors[b] - disk_colors[ref] for b in band_names})
@@ -743,7 +348,7 @@ class PopulationSampler:
             fwhm = next(b.psf_fwhm for b in bands if b.name == ref)
             checks["resolvable"] = theta_e**2 > source_r_e**2 + (0.5 * fwhm) ** 2
             if selection.enforce and not checks["resolvable"]:
-                return None, _merge_counts(geometry_rejections, {"resolvable": 1})
+                return None, _merge_counts(g.rejections, {"resolvable": 1})
 
         # -- sky position and noise seeds (after the cuts, from their own streams) ---------------
         fp = recipe.footprint
@@ -752,16 +357,14 @@ class PopulationSampler:
         ra, dec = offset_on_sky(fp.ra, fp.dec, rng.uniform(0.0, 360.0), math.degrees(math.acos(cos_sep)))
         noise_seeds = tuple(int(s) for s in streams["observation"].integers(1, 2**31 - 1, size=len(bands)))
 
-        days_per_arcsec2 = geometry.get("days_per_arcsec2")  # computed already by simlens.block_sampling
-        if days_per_arcsec2 is None:
-            days_per_arcsec2 = self.distances.fermat_to_days(z_lens, z_source) if behind else math.nan
+        placed = g.placed
         system_class = ("lens" if placed["multiply_imaged"] else
                         "source_in_front" if z_source <= z_lens else "missed_caustics")
         system = System(
-            system_id=int(system_id), grid_cell=cell, system_class=system_class, ra=ra, dec=dec, z_lens=z_lens, z_source=z_source,
-            velocity_dispersion=sigma, einstein_radius=theta_e, **deflector,
-            line_of_sight=line_of_sight, second_source=second,
-            cosmology=self.cosmology if (line_of_sight or second is not None) else None,
+            system_id=int(system_id), grid_cell=g.cell, system_class=system_class, ra=ra, dec=dec, z_lens=z_lens,
+            z_source=z_source, velocity_dispersion=g.sigma, einstein_radius=theta_e, **g.deflector,
+            line_of_sight=g.line_of_sight, second_source=second,
+            cosmology=self.cosmology if (g.line_of_sight or second is not None) else None,
             lens_magnitudes=lens_mags, lens_half_light_radius=lens_r_e,
             lens_sersic_index=v["lens.light.sersic_index"], lens_q=lens_q, lens_angle=lens_angle,
             source_disk_magnitudes=disk_mags, source_half_light_radius=source_r_e,
@@ -770,88 +373,438 @@ class PopulationSampler:
             source_absolute_magnitude=photometry.absolute_magnitude if photometry is not None else math.nan,
             quasar_magnitudes=quasar_mags,
             host=source_settings.quasar.host if source_settings.quasar is not None else True,
-            days_per_arcsec2=days_per_arcsec2,
-            candidate=candidate, rejections=geometry_rejections, **lens_extra)
-        system = self._classify(system, streams)
-        return system, None
+            days_per_arcsec2=g.days_per_arcsec2, candidate=candidate, rejections=g.rejections, **lens_extra)
+        return self._classify(system, streams), g.rejections
 
     def _classify(self, system: System, streams) -> System:
         """A share ``negatives.fraction`` of the systems becomes a negative (see negatives.py); the
         others keep the class they were made with.  The negatives stream is made only when needed."""
         negatives = self.recipe.negatives
         rng = streams["negatives"] if negatives.fraction > 0 else None
-        if rng is not None and rng.uniform() < negatives.fraction:
-            weights = negatives.weights()
-            names = [n for n, w in weights.items() if w > 0]
-            p = np.array([weights[n] for n in names], dtype=float)
-            kind = names[int(rng.choice(len(names), p=p / p.sum()))]
-            scale = system.einstein_radius if system.einstein_radius > 0 else system.lens_half_light_radius
-            extra = lookalike_light(kind, rng, scale, system.lens_half_light_radius, system.lens_q, system.lens_angle,
-                                    dict(system.lens_magnitudes), {b: system.source_magnitude(b) for b in system.lens_magnitudes})
-            flags = dict(system.selection_flags)
-            if "multiply_imaged" in flags:
-                flags["multiply_imaged"] = False
-            changes = dict(system_class=kind, lensing=False, multiply_imaged=False, extra_light=extra,
-                           second_source=None,
-                           selection_flags=flags,
-                           source_present=kind == "unlensed_source", tangential_caustic_area=0.0,
-                           inner_caustic_area=0.0)
-            if kind == "unlensed_source":
-                x, y = _uniform_in_annulus(0.3 * scale, 2.5 * scale, rng)
-                changes.update(source_x=x, source_y=y)
-            return dataclasses.replace(system, **changes)
-        return system
+        if rng is None or rng.uniform() >= negatives.fraction:
+            return system
+        weights = negatives.weights()
+        names = [n for n, w in weights.items() if w > 0]
+        p = np.array([weights[n] for n in names], dtype=float)
+        kind = names[int(rng.choice(len(names), p=p / p.sum()))]
+        scale = system.einstein_radius if system.einstein_radius > 0 else system.lens_half_light_radius
+        extra = lookalike_light(kind, rng, scale, system.lens_half_light_radius, system.lens_q, system.lens_angle,
+                                dict(system.lens_magnitudes), {b: system.source_magnitude(b) for b in system.lens_magnitudes})
+        flags = dict(system.selection_flags)
+        if "multiply_imaged" in flags:
+            flags["multiply_imaged"] = False
+        changes = dict(system_class=kind, lensing=False, multiply_imaged=False, extra_light=extra, second_source=None,
+                       selection_flags=flags, source_present=kind == "unlensed_source", tangential_caustic_area=0.0,
+                       inner_caustic_area=0.0)
+        if kind == "unlensed_source":
+            x, y = _uniform_in_annulus(0.3 * scale, 2.5 * scale, rng)
+            changes.update(source_x=x, source_y=y)
+        return dataclasses.replace(system, **changes)
 
-    GEOMETRY_BATCH = 64
-    GEOMETRY_BATCHES = 64  # batches per candidate before it counts as rejected
-    TRIES_PER_CANDIDATE = 64  # deflectors tried (sharing the candidate's streams) before rejection
 
-    def _place(self, mass: MassModel, theta_e: float, v: dict, rng) -> dict | None:
-        """The source centre and placement truth by the placement mode (System fields); None when a
-        lens-mode candidate must be redrawn."""
+@dataclass
+class _Geometry:
+    """What the geometry phase of one candidate hands to the rest of it."""
+
+    v: dict  # every parameter's value, by key path
+    cell: tuple
+    sigma: float
+    z_lens: float
+    z_source: float
+    anchor_magnitude: float
+    behind: bool
+    ratio: float  # D_ls / D_s
+    theta_e: float
+    checks: dict  # cut -> passed, for the cuts judged so far
+    deflector: dict  # the System's mass fields
+    line_of_sight: tuple
+    placed: dict  # the System's placement fields
+    rejections: dict  # earlier tries of this candidate, by cut
+    light: object = None  # LensLight, when drawn (stars_and_halo draws it in the geometry phase)
+    composite_truth: dict = field(default_factory=dict)
+    photometry: object = None  # SourcePhotometry
+    days_per_arcsec2: float = math.nan
+
+
+class _GeometryPhase:
+    """The deflector, the source redshift and the source's place, tried several times within each
+    candidate's streams (in lens mode a deflector whose caustics miss the source is replaced
+    whole): every pending system a row of the arrays."""
+
+    def __init__(self, sampler: PopulationSampler, ids: list[int], streams: list):
+        self.sampler, self.recipe = sampler, sampler.recipe
+        self.ids, self.streams = ids, streams
+        self.physics = [s["physics"] for s in streams]
+        self.queue = _PairQueue(sampler, self.physics)
+        self.tries = [dict() for _ in ids]
+        self.result: list = [None] * len(ids)
+
+    def _parameters(self, rows: np.ndarray) -> dict:
+        """Every parameter's value for the systems ``rows`` (arrays), from one vector of uniforms each."""
+        s = self.sampler
+        u = np.stack([self.streams[k]["parameters"].uniform(size=len(s._parameters)) for k in rows])
+        values = {path: np.full(rows.size, value) for path, value in s._fixed_values.items()}
+        for index, path, param in s._random_parameters:
+            values[path] = param.from_uniform(u[:, index])
+        if s._grid_parameters:
+            cells = [grid_cell(self.ids[k], s._grid_shape) for k in rows]
+            for j, (path, param) in enumerate(s._grid_parameters):
+                values[path] = np.array([float(param.at(c[j])) for c in cells])
+        return values
+
+    def _reject(self, k: int, cut: str) -> None:
+        self.tries[k][cut] = self.tries[k].get(cut, 0) + 1
+
+    def _counts(self, k: int) -> dict:
+        return _merge_counts(self.queue.nonzero_rejections(k), self.tries[k])
+
+    def run(self) -> list[tuple[_Geometry | None, dict]]:
+        s, selection = self.sampler, self.recipe.selection
+        model = self.recipe.lens.mass.model
+        active = np.arange(len(self.ids))
+        for _ in range(s.TRIES_PER_CANDIDATE):
+            if active.size == 0:
+                break
+            values = self._parameters(active)
+            sigma, z_lens, z_source, anchor, found = self.queue.next(active, values)
+            for k in active[~found]:
+                self.result[k] = (None, self._counts(k))
+            active, values = active[found], {p: a[found] for p, a in values.items()}
+            sigma, z_lens, z_source, anchor = sigma[found], z_lens[found], z_source[found], anchor[found]
+            rows = [{path: float(a[j]) for path, a in values.items()} for j in range(active.size)]
+            behind = z_source > z_lens
+            ratio = np.where(behind, s.distances.distance_ratio(np.minimum(z_lens, z_source), z_source), 0.0)
+            theta_e = sis_einstein_radius(sigma, ratio)
+            lights = [None] * active.size
+            composite = [{} for _ in active]
+            if model == "stars_and_halo":  # the stars follow the light: draw it first, then solve for theta_E
+                normals = np.stack([self.physics[k].standard_normal(size=LensLightModel.NORMALS) for k in active])
+                lights = s.lens_light_model.draw_many(sigma, z_lens, values["lens.mass.q"], values["lens.mass.angle"],
+                                                      normals)
+                for j in range(active.size):
+                    theta_e[j] = 0.0
+                    if behind[j]:
+                        theta_e[j], composite[j] = s._stars_and_halo(rows[j], lights[j], z_lens[j], z_source[j])
+            checks = [dict() for _ in active]
+            passed = np.ones(active.size, dtype=bool)
+            if selection.einstein_radius is not None:
+                lo, hi = selection.einstein_radius
+                inside = (lo <= theta_e) & (theta_e <= hi)
+                for j in range(active.size):
+                    checks[j]["einstein_radius"] = bool(inside[j])
+                if selection.enforce:
+                    for k in active[~inside]:
+                        self._reject(k, "einstein_radius")
+                    passed &= inside
+            deflectors, line_of_sight = [None] * active.size, [()] * active.size
+            for j in np.flatnonzero(passed):  # per-row draws, in this order, from each row's physics stream
+                k, v = active[j], rows[j]
+                deflectors[j] = _deflector_fields(model, v, s._subhalos(v, theta_e[j], z_lens[j], z_source[j],
+                                                                        self.physics[k]))
+                if behind[j]:
+                    line_of_sight[j] = s._line_of_sight(v, z_lens[j], z_source[j], self.physics[k])
+            caustics = _Caustics.of(self.sampler, np.flatnonzero(passed), theta_e, deflectors, composite, lights,
+                                    line_of_sight, z_lens, z_source, rows)
+            placed = self._place(active, rows, theta_e, passed, caustics)
+            finished = np.zeros(active.size, dtype=bool)
+            for j, k in enumerate(active):
+                if not passed[j]:
+                    continue
+                if placed[j] is None:
+                    self._reject(k, "placement")
+                    continue
+                if selection.multiply_imaged:
+                    checks[j]["multiply_imaged"] = placed[j]["multiply_imaged"]
+                    if selection.enforce and not placed[j]["multiply_imaged"]:
+                        self._reject(k, "multiply_imaged")
+                        continue
+                self.result[k] = (_Geometry(
+                    v=rows[j], cell=grid_cell(self.ids[k], s._grid_shape), sigma=float(sigma[j]),
+                    z_lens=float(z_lens[j]), z_source=float(z_source[j]), anchor_magnitude=float(anchor[j]),
+                    behind=bool(behind[j]), ratio=float(ratio[j]), theta_e=float(theta_e[j]), checks=checks[j],
+                    deflector=deflectors[j], line_of_sight=line_of_sight[j], placed=placed[j],
+                    rejections=self._counts(k), light=lights[j], composite_truth=composite[j]), None)
+                finished[j] = True
+            active = active[~finished]
+        for k in active:  # every try used
+            self.result[k] = (None, self._counts(k))
+        return self.result
+
+    def _place(self, active: np.ndarray, rows: list[dict], theta_e: np.ndarray, passed: np.ndarray,
+               caustics: "_Caustics") -> list:
+        """The source centre and placement truth by the placement mode (System fields) of the rows
+        that passed; None where a lens-mode candidate must be redrawn."""
+        s = self.sampler
         pos = self.recipe.source.position
-        if self.mode == "fixed" and pos.x is not None:
-            x, y = v["source.position.x"], v["source.position.y"]
-            return self._with_caustics(mass, theta_e, x, y, math.hypot(x, y), False)
-        if self.mode == "fixed":
-            radius_factor = v.get("source.position.radius_in_einstein_radii", DEFAULT_RADIUS_IN_EINSTEIN_RADII)
-            radius = radius_factor * theta_e
-            x, y = _uniform_in_disc(radius, rng)
-            return self._with_caustics(mass, theta_e, x, y, radius, False)
-        caustics = find_caustics(mass, theta_e) if theta_e > 0 else None
-        reach = caustics.max_radius if caustics is not None else 0.0
-        if self.mode == "lens":
-            radius = pos.region_radius_in_einstein_radii * theta_e
+        mode = s.mode
+        out: list = [None] * active.size
+        todo = np.flatnonzero(passed)
+        if todo.size == 0:
+            return out
+        physics = [self.physics[k] for k in active]
+        if mode == "fixed":
+            if pos.x is not None:
+                x = np.array([rows[j]["source.position.x"] for j in todo])
+                y = np.array([rows[j]["source.position.y"] for j in todo])
+                radius = np.hypot(x, y)
+            else:
+                factor = np.array([rows[j].get("source.position.radius_in_einstein_radii",
+                                               DEFAULT_RADIUS_IN_EINSTEIN_RADII) for j in todo])
+                radius = factor * theta_e[todo]
+                x, y = np.array([_uniform_in_disc(float(r), physics[j]) for r, j in zip(radius, todo)]).reshape(-1, 2).T
+            multiple = caustics.multiply_imaged(todo, x, y)
+            for i, j in enumerate(todo):
+                out[j] = caustics.placed(j, x[i], y[i], radius[i], False, bool(multiple[i]), mode)
+            return out
+        reach = caustics.reach[todo]
+        if mode == "lens":
+            radius = pos.region_radius_in_einstein_radii * theta_e[todo]
         else:  # sky: one source per 1 / density of area (see DEVELOPERS.md, "placement modes")
-            radius = math.sqrt(3600.0 / (math.pi * self.source_density))
+            radius = np.full(todo.size, math.sqrt(3600.0 / (math.pi * s.source_density)))
         widened = reach > radius
-        radius = max(radius, 1.02 * reach)
+        radius = np.maximum(radius, 1.02 * reach)
         # Explicit lens distributions keep their deflector and re-place the source; a physical
         # population redraws the whole candidate, which weights lenses by their cross-section.
-        tries = 1 if (self.mode == "sky" or self.deflectors is not None) else LENS_MODE_PLACEMENT_TRIES
+        tries = 1 if (mode == "sky" or s.deflectors is not None) else s.LENS_MODE_PLACEMENT_TRIES
+        left = np.arange(todo.size)
         for _ in range(tries):
-            x, y = _uniform_in_disc(radius, rng)
-            multiple = bool(caustics.multiply_imaged(x, y)) if caustics is not None else False
-            if multiple or self.mode == "sky":
-                return self._with_caustics(mass, theta_e, x, y, radius, widened, caustics, multiple)
+            if left.size == 0:
+                break
+            x, y = np.array([_uniform_in_disc(float(radius[t]), physics[todo[t]]) for t in left]).reshape(-1, 2).T
+            multiple = caustics.multiply_imaged(todo[left], x, y)
+            accept = multiple | (mode == "sky")
+            for i in np.flatnonzero(accept):
+                t = left[i]
+                out[todo[t]] = caustics.placed(todo[t], x[i], y[i], radius[t], bool(widened[t]), bool(multiple[i]), mode)
+            left = left[~accept]
+        return out
+
+
+def _deflector_fields(model: str, v: dict, subhalos: tuple) -> dict:
+    """The System's mass fields of a candidate."""
+    return dict(mass_model_name=model, mass_q=v["lens.mass.q"], mass_angle=v["lens.mass.angle"],
+                mass_slope=v["lens.mass.slope"] if model == "power_law" else 2.0,
+                mass_core_radius=v["lens.mass.core_radius"] if model == "cored_isothermal" else 0.0,
+                multipoles=tuple((m, v[f"lens.multipoles.m{m}_strength"], v[f"lens.multipoles.m{m}_angle"])
+                                 for m in (3, 4) if v[f"lens.multipoles.m{m}_strength"] != 0.0),
+                subhalos=subhalos, shear_gamma=v["lens.shear.gamma"], shear_angle=v["lens.shear.angle"])
+
+
+class _Caustics:
+    """The caustics of many candidates' deflectors as padded polygons: ``x, y`` of shape
+    (rows, 2, CUT_ANGLES), the tangential caustic then the inner one (radial caustic or cut);
+    absent curves are all zeros (never inside, no area).  SIE + shear lenses take the closed form
+    on arrays (:func:`simlens.lensing.caustics.isothermal_caustics`); every other deflector, and any
+    row the closed form does not apply to, is built and scanned by ``find_caustics``."""
+
+    def __init__(self, n: int):
+        self.x = np.zeros((n, 2, CUT_ANGLES))
+        self.y = np.zeros((n, 2, CUT_ANGLES))
+
+    @classmethod
+    def of(cls, sampler, rows: np.ndarray, theta_e, deflectors, composite, lights, line_of_sight, z_lens, z_source,
+           values) -> "_Caustics":
+        table = cls(theta_e.size)
+        lensed = [j for j in rows if theta_e[j] > 0]
+        simple = [j for j in lensed if deflectors[j]["mass_model_name"] == "sie" and not deflectors[j]["subhalos"]
+                  and not deflectors[j]["multipoles"] and not line_of_sight[j]]
+        scan = sorted(set(lensed) - set(simple))
+        if simple:
+            scan += table._closed_form(np.array(simple), theta_e, deflectors)
+        for j in scan:
+            d = deflectors[j]
+            mass = build_deflector(d["mass_model_name"], theta_e[j], d["mass_q"], d["mass_angle"], d["mass_slope"],
+                                   d["mass_core_radius"], d["subhalos"], d["multipoles"], d["shear_gamma"],
+                                   d["shear_angle"], composite=_composite_model(composite[j], lights[j], values[j]))
+            if line_of_sight[j]:
+                mass = multi_plane(mass, z_lens[j], line_of_sight[j], z_source[j], sampler.cosmology)
+            found = find_caustics(mass, theta_e[j])
+            tangential = found.caustic("tangential")
+            inner = next((c for c in found.caustics if c.kind != "tangential"), None)
+            for slot, curve in enumerate((tangential, inner)):
+                if curve is not None and curve.x.size:
+                    table.x[j, slot] = np.pad(curve.x, (0, CUT_ANGLES - curve.x.size), mode="edge")
+                    table.y[j, slot] = np.pad(curve.y, (0, CUT_ANGLES - curve.y.size), mode="edge")
+        table.reach = np.max(np.hypot(table.x, table.y), axis=(1, 2))
+        table.areas = polygon_area(table.x, table.y)
+        table.has_inner = table.areas[:, 1] > 0
+        return table
+
+    CHUNK_ROWS = 128  # rows per block of the closed-form arithmetic: its temporaries then stay in cache
+
+    def _closed_form(self, rows: np.ndarray, theta_e, deflectors) -> list[int]:
+        """Fill the rows ``rows`` (SIE + shear) from the closed form; return those it does not apply to."""
+        left = []
+        cos, sin = _UNIT_CIRCLE
+        for start in range(0, rows.size, self.CHUNK_ROWS):
+            chunk = rows[start:start + self.CHUNK_ROWS]
+            d = [deflectors[j] for j in chunk]
+            b = theta_e[chunk]
+            q = np.array([x["mass_q"] for x in d])[:, None]
+            angle = np.radians([x["mass_angle"] for x in d])[:, None]
+            c, s = np.cos(angle), np.sin(angle)
+            xp, yp = c * cos + s * sin, -s * cos + c * sin  # the unit circle in each lens's frame
+            ax, ay = rotate_back(*sie_deflection_in_frame(b[:, None], q, xp, yp), c, s)
+            hessian = isothermal_hessian(sie_convergence_in_frame(b[:, None], q, xp, yp), cos, sin)
+            g1, g2 = shear_components(np.array([x["shear_gamma"] for x in d]), np.array([x["shear_angle"] for x in d]))
+            zero = np.zeros(chunk.size)
+            ok, _, caustic, cut, has_cut = isothermal_caustics((ax, ay), hessian, (g1, g2, -g1), (zero, zero),
+                                                               (0.0, 0.0), b)
+            self.x[chunk, 0], self.y[chunk, 0] = caustic
+            cut_x, cut_y = cut
+            self.x[chunk, 1] = np.where(has_cut[:, None], cut_x, 0.0)
+            self.y[chunk, 1] = np.where(has_cut[:, None], cut_y, 0.0)
+            bad = chunk[~ok]
+            self.x[bad], self.y[bad] = 0.0, 0.0
+            left += bad.tolist()
+        return left
+
+    def multiply_imaged(self, rows: np.ndarray, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+        """Whether the source-plane point ``(x[i], y[i])`` lies inside a caustic of row ``rows[i]``."""
+        x, y = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
+        inside = inside_polygon(x, y, self.x[rows, 0], self.y[rows, 0])
+        inner = self.has_inner[rows]
+        if inner.any():
+            with_inner = rows[inner]
+            inside[inner] |= inside_polygon(x[inner], y[inner], self.x[with_inner, 1], self.y[with_inner, 1])
+        return inside
+
+    def placed(self, j: int, x: float, y: float, radius: float, widened: bool, multiple: bool, mode: str) -> dict:
+        """The System's placement fields of row ``j``."""
+        return dict(source_x=float(x), source_y=float(y), placement=mode, region_radius=float(radius),
+                    region_widened=bool(widened), multiply_imaged=bool(multiple),
+                    tangential_caustic_area=float(self.areas[j, 0]), inner_caustic_area=float(self.areas[j, 1]))
+
+
+def _composite_model(truth: dict, light, v: dict) -> dict | None:
+    """The stars-and-halo parameters of :func:`build_deflector` (None for other models); the stars
+    take the lens light's shape."""
+    if not truth:
         return None
-
-    def _with_caustics(self, mass: MassModel, theta_e: float, x: float, y: float, radius: float, widened: bool,
-                       caustics: CausticSet | None = None, multiple: bool | None = None) -> dict:
-        if caustics is None and theta_e > 0:
-            caustics = find_caustics(mass, theta_e)
-        tangential = caustics.caustic("tangential") if caustics is not None else None
-        inner = next((c for c in caustics.caustics if c.kind != "tangential"), None) if caustics is not None else None
-        return dict(
-            source_x=float(x), source_y=float(y), placement=self.mode, region_radius=float(radius),
-            region_widened=bool(widened),
-            multiply_imaged=(multiple if multiple is not None else
-                             bool(caustics.multiply_imaged(x, y)) if caustics is not None else False),
-            tangential_caustic_area=tangential.area if tangential is not None else 0.0,
-            inner_caustic_area=inner.area if inner is not None else 0.0)
+    return dict(stellar_kappa_e=truth["stellar_kappa_e"], stellar_r_e=light.half_light_radius,
+                stellar_n=v["lens.light.sersic_index"], stellar_q=light.q,
+                stellar_angle=light.angle, halo_kappa_s=truth["halo_kappa_s"],
+                halo_scale_radius=truth["halo_scale_radius"], halo_ellipticity=truth["halo_ellipticity"])
 
 
-LENS_MODE_PLACEMENT_TRIES = 1000
+class _PairQueue:
+    """The (sigma, z_lens, z_source, source anchor magnitude) pairs of each row's candidate, drawn
+    in batches from the row's physics stream and rejected in bulk where it is cheap.  In lens mode a
+    source must lie behind its lens and a pair is kept with probability (D_ls/D_s)^2, the distance
+    part of the cross-section weight (sigma^4 is exact in the deflector draw); the Einstein-radius
+    cut is applied here too (except for stars_and_halo, whose theta_E is solved later).  Other modes
+    take every pair.  Rejected pairs are counted by cut."""
+
+    def __init__(self, sampler: PopulationSampler, rngs: list):
+        self.sampler, self.rngs = sampler, rngs
+        self.lens_mode = sampler.mode == "lens"
+        self.bulk = sampler.deflectors is not None or sampler.source_model is not None
+        self.size = sampler.GEOMETRY_BATCH if (self.bulk and self.lens_mode) else 1
+        n = len(rngs)
+        self.batch = {name: np.zeros((n, self.size)) for name in ("sigma", "z_lens", "z_source", "m")}
+        self.flags = {name: np.zeros((n, self.size), dtype=bool) for name in ("behind", "weighted", "kept")}
+        self.has_batch = np.zeros(n, dtype=bool)
+        self.cursor = np.zeros(n, dtype=np.int64)
+        self.counts = np.zeros((n, 3), dtype=np.int64)  # source_in_front, cross_section, einstein_radius
+
+    NAMES = ("source_in_front", "cross_section", "einstein_radius")
+
+    def nonzero_rejections(self, k: int) -> dict:
+        return {name: int(c) for name, c in zip(self.NAMES, self.counts[k]) if c}
+
+    def _new_batches(self, rows: np.ndarray, values: dict, picks: np.ndarray) -> None:
+        """Fresh batches for rows ``rows`` (``picks``: their places in ``values``)."""
+        s, n = self.sampler, self.size
+        calls = (2 if s.deflectors is not None else 0) + (2 if s.source_model is not None else 0) + self.lens_mode
+        u = (np.stack([self.rngs[k].uniform(size=calls * n) for k in rows]).reshape(rows.size, calls, n)
+             if calls else np.zeros((rows.size, 0, n)))
+        c = 0
+        if s.deflectors is not None:
+            z_l = s.deflectors.draw_redshift(u[:, 0])
+            c = 2
+        else:
+            z_l = np.repeat(values["lens.redshift"][picks][:, None], n, axis=1)
+            sigma = np.repeat(values["lens.velocity_dispersion"][picks][:, None], n, axis=1)
+        if s.source_model is not None:
+            settings = s.source_model.settings
+            m = s.source_model.counts.draw(*settings.magnitude_range, u[:, c])
+            z_s = s.source_model.redshifts.draw(m, *settings.redshift_range, u[:, c + 1])
+            c += 2
+        else:
+            m = np.full((rows.size, n), math.nan)
+            z_s = np.repeat(values["source.redshift"][picks][:, None], n, axis=1)
+        if not self.lens_mode:
+            if s.deflectors is not None:
+                sigma = s.deflectors.draw_sigma(u[:, 1], z_l)
+            behind = weighted = kept = np.ones((rows.size, n), dtype=bool)
+        else:
+            behind = z_s > z_l
+            ratio = np.where(behind, s.distances.distance_ratio(np.minimum(z_l, z_s), z_s), 0.0)
+            weighted = behind & ((u[:, c] <= ratio**2) if s.deflectors is not None else True)
+            if s.deflectors is not None:  # sigma only where a pair can still be kept (the costly part)
+                sigma = np.full((rows.size, n), math.nan)
+                sigma[weighted] = s.deflectors.draw_sigma(u[:, 1][weighted], z_l[weighted])
+            kept = weighted
+            selection = s.recipe.selection
+            if (selection.einstein_radius is not None and selection.enforce
+                    and s.recipe.lens.mass.model != "stars_and_halo"):
+                theta = sis_einstein_radius(sigma, ratio)
+                kept = weighted & (theta >= selection.einstein_radius[0]) & (theta <= selection.einstein_radius[1])
+        for name, a in (("sigma", sigma), ("z_lens", z_l), ("z_source", z_s), ("m", m)):
+            self.batch[name][rows] = a
+        for name, a in (("behind", behind), ("weighted", weighted), ("kept", kept)):
+            self.flags[name][rows] = a
+        self.has_batch[rows] = True
+        self.cursor[rows] = 0
+
+    def _count(self, rows: np.ndarray, stop: np.ndarray) -> None:
+        columns = np.arange(self.size)[None, :]
+        span = (columns >= self.cursor[rows][:, None]) & (columns < stop[:, None])
+        behind, weighted, kept = (self.flags[name][rows] for name in ("behind", "weighted", "kept"))
+        self.counts[rows, 0] += np.count_nonzero(span & ~behind, axis=1)
+        self.counts[rows, 1] += np.count_nonzero(span & behind & ~weighted, axis=1)
+        self.counts[rows, 2] += np.count_nonzero(span & weighted & ~kept, axis=1)
+
+    def next(self, active: np.ndarray, values: dict):
+        """The next kept pair of every active row: (sigma, z_lens, z_source, m, found)."""
+        m = active.size
+        out = {name: np.zeros(m) for name in ("sigma", "z_lens", "z_source", "m")}
+        found = np.zeros(m, dtype=bool)
+        todo = np.arange(m)
+        for _ in range(self.sampler.GEOMETRY_BATCHES if self.bulk else 1):
+            if todo.size == 0:
+                break
+            rows = active[todo]
+            fresh = ~self.has_batch[rows] | (self.cursor[rows] >= self.size)
+            if fresh.any():
+                self._new_batches(rows[fresh], values, todo[fresh])
+            kept = self.flags["kept"][rows] & (np.arange(self.size)[None, :] >= self.cursor[rows][:, None])
+            has = kept.any(axis=1)
+            first = np.argmax(kept, axis=1)
+            hit_rows, hit_first = rows[has], first[has]
+            self._count(hit_rows, hit_first)
+            self.cursor[hit_rows] = hit_first + 1
+            for name in out:
+                out[name][todo[has]] = self.batch[name][hit_rows, hit_first]
+            found[todo[has]] = True
+            miss = rows[~has]
+            self._count(miss, np.full(miss.size, self.size))
+            self.has_batch[miss] = False
+            todo = todo[~has]
+            if not self.bulk:
+                break
+        return out["sigma"], out["z_lens"], out["z_source"], out["m"], found
+
+
+def offset_on_sky(ra0: float, dec0: float, position_angle: float, separation: float) -> tuple[float, float]:
+    """The point at ``separation`` (deg) from (ra0, dec0) towards ``position_angle`` (deg east of
+    north), on the sphere (spherical trigonometry; astropy's SkyCoord.directional_offset_by is the
+    reference in the tests)."""
+    d0, pa, s = math.radians(dec0), math.radians(position_angle), math.radians(separation)
+    sin_dec = math.sin(d0) * math.cos(s) + math.cos(d0) * math.sin(s) * math.cos(pa)
+    dec = math.asin(max(-1.0, min(1.0, sin_dec)))
+    dra = math.atan2(math.sin(pa) * math.sin(s) * math.cos(d0), math.cos(s) - math.sin(d0) * sin_dec)
+    return (ra0 + math.degrees(dra)) % 360.0, math.degrees(dec)
 
 
 def _uniform_in_annulus(r_in: float, r_out: float, rng) -> tuple[float, float]:
@@ -861,16 +814,18 @@ def _uniform_in_annulus(r_in: float, r_out: float, rng) -> tuple[float, float]:
 
 
 def _uniform_in_disc(radius: float, rng) -> tuple[float, float]:
-    r = radius * math.sqrt(rng.uniform())
-    phi = rng.uniform(0.0, 2.0 * math.pi)
-    return r * math.cos(phi), r * math.sin(phi)
+    return _uniform_in_annulus(0.0, radius, rng)
 
 
-def _merge_counts(a: dict, b: dict) -> dict:
+def _merge_counts(a: Mapping[str, int], b: Mapping[str, int]) -> dict:
     out = dict(a)
-    for name, n in b.items():
-        out[name] = out.get(name, 0) + n
+    _add_counts(out, b)
     return out
+
+
+def _add_counts(total: dict, more: Mapping[str, int]) -> None:
+    for name, n in more.items():
+        total[name] = total.get(name, 0) + int(n)
 
 
 def _exhausted_message(system_id: int, limit: int, rejections: dict) -> str:
@@ -880,7 +835,7 @@ def _exhausted_message(system_id: int, limit: int, rejections: dict) -> str:
             f"selection.max_candidates")
 
 
-def _subhalo(mass: float, x: float, y: float, theta_e: float, sigma_cr_arcsec2: float) -> "Subhalo":
+def _subhalo(mass: float, x: float, y: float, theta_e: float, sigma_cr_arcsec2: float) -> Subhalo:
     """A truncated SIS of total mass ``pi Sigma_cr b a`` with the tidal truncation ``a = sqrt(b theta_E)``
     of an SIS subhalo in an SIS host (Metcalf & Madau 2001, from memory); solved for b."""
     b = (mass / (math.pi * sigma_cr_arcsec2 * math.sqrt(theta_e))) ** (2.0 / 3.0)

@@ -137,9 +137,15 @@ class HomogeneousIsothermal:
         ax, ay = self.deflection(x, y)
         dx = np.asarray(x, dtype=float) - self.center[0]
         dy = np.asarray(y, dtype=float) - self.center[1]
-        r2 = np.maximum(dx * dx + dy * dy, self.central_floor**2)
-        two_kappa = 2.0 * self.convergence(x, y)
-        return ax, ay, two_kappa * dy * dy / r2, -two_kappa * dx * dy / r2, two_kappa * dx * dx / r2
+        return (ax, ay) + isothermal_hessian(self.convergence(x, y), dx, dy)
+
+
+def isothermal_hessian(kappa, dx, dy, floor: float = HomogeneousIsothermal.central_floor):
+    """``(psi_xx, psi_xy, psi_yy) = 2 kappa t t^T`` of a potential homogeneous of degree one, at
+    offsets ``(dx, dy)`` from its centre (see :class:`HomogeneousIsothermal`); broadcasting."""
+    r2 = np.maximum(dx * dx + dy * dy, floor**2)
+    two_kappa = 2.0 * kappa
+    return two_kappa * dy * dy / r2, -two_kappa * dx * dy / r2, two_kappa * dx * dx / r2
 
 
 def _components(model: MassModel) -> tuple:

@@ -12,6 +12,32 @@ from .base import HomogeneousIsothermal, MassModel, check_axis_ratio, check_cent
 # 1e-9 arcsec is far below any pixel; the singular profiles are unphysical there anyway.
 CENTRAL_FLOOR = 1e-9
 
+__all__ = ["SIS", "SIE", "sie_deflection_in_frame", "sie_convergence_in_frame"]
+
+
+def sie_deflection_in_frame(einstein_radius, q, xp, yp):
+    """The SIE deflection ``(alpha_x', alpha_y')`` in the frame of its major axis (the formula of
+    :class:`SIE`), broadcasting over every argument, so one call serves one lens on many points or
+    many lenses (one a row) on their own points.  ``q == 1`` gives the SIS."""
+    b, q = np.asarray(einstein_radius, dtype=float), np.asarray(q, dtype=float)
+    sphere = q == 1.0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        e = np.sqrt(1.0 - q * q)
+        w = np.maximum(np.sqrt(q * q * xp * xp + yp * yp), CENTRAL_FLOOR)
+        pre = b * np.sqrt(q) / e
+        # |e y'/w| <= e < 1, so arctanh stays finite.
+        axp, ayp = pre * np.arctan(e * xp / w), pre * np.arctanh(e * yp / w)
+    if np.any(sphere):
+        r = np.maximum(np.hypot(xp, yp), CENTRAL_FLOOR)
+        axp, ayp = np.where(sphere, b * xp / r, axp), np.where(sphere, b * yp / r, ayp)
+    return axp, ayp
+
+
+def sie_convergence_in_frame(einstein_radius, q, xp, yp):
+    """``kappa = (b / 2) / sqrt(q x'^2 + y'^2 / q)``, broadcasting like :func:`sie_deflection_in_frame`."""
+    q = np.asarray(q, dtype=float)
+    return 0.5 * np.asarray(einstein_radius, dtype=float) / np.maximum(np.sqrt(q * xp * xp + yp * yp / q), CENTRAL_FLOOR)
+
 
 @dataclass(frozen=True)
 class SIS(HomogeneousIsothermal, MassModel):
@@ -103,23 +129,11 @@ class SIE(HomogeneousIsothermal, MassModel):
 
     def deflection(self, x, y):
         xp, yp, c, s = self._frame(x, y)
-        b, q = self.einstein_radius, self.q
-        if q == 1.0:
-            r = np.maximum(np.hypot(xp, yp), CENTRAL_FLOOR)
-            axp, ayp = b * xp / r, b * yp / r
-        else:
-            e = np.sqrt(1.0 - q * q)
-            w = np.maximum(np.sqrt(q * q * xp * xp + yp * yp), CENTRAL_FLOOR)
-            pre = b * np.sqrt(q) / e
-            axp = pre * np.arctan(e * xp / w)
-            # |e y'/w| <= e < 1, so arctanh stays finite.
-            ayp = pre * np.arctanh(e * yp / w)
-        return rotate_back(axp, ayp, c, s)
+        return rotate_back(*sie_deflection_in_frame(self.einstein_radius, self.q, xp, yp), c, s)
 
     def convergence(self, x, y):
         xp, yp, _, _ = self._frame(x, y)
-        q = self.q
-        return 0.5 * self.einstein_radius / np.maximum(np.sqrt(q * xp * xp + yp * yp / q), CENTRAL_FLOOR)
+        return sie_convergence_in_frame(self.einstein_radius, self.q, xp, yp)
 
 
     def potential(self, x, y):

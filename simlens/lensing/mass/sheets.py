@@ -8,6 +8,14 @@ import numpy as np
 
 from .base import MassModel, check_center, check_positive
 
+__all__ = ["ExternalShear", "ConvergenceSheet", "shear_components"]
+
+
+def shear_components(gamma, angle):
+    """``(g1, g2) = gamma (cos 2 angle, sin 2 angle)`` (angle in degrees), broadcasting."""
+    two_phi = 2.0 * np.radians(angle)
+    return gamma * np.cos(two_phi), gamma * np.sin(two_phi)
+
 
 @dataclass(frozen=True)
 class ExternalShear(MassModel):
@@ -40,8 +48,7 @@ class ExternalShear(MassModel):
 
     @property
     def components_g1_g2(self) -> tuple[float, float]:
-        two_phi = 2.0 * np.radians(self.angle)
-        return self.gamma * np.cos(two_phi), self.gamma * np.sin(two_phi)
+        return shear_components(self.gamma, self.angle)
 
     def _offsets(self, x, y):
         return (np.asarray(x, dtype=float) - self.center[0], np.asarray(y, dtype=float) - self.center[1])
