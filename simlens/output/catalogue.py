@@ -16,6 +16,7 @@ import numpy as np
 from astropy.io import fits
 from astropy.table import Table
 
+from .columns import table_hdu
 from .atomic import atomic_path
 
 __all__ = ["write_catalogue"]
@@ -71,7 +72,7 @@ def write_catalogue(read_part: Callable[[int], Table], n_parts: int, folder: Pat
                 else:
                     body = [line for line in lines if not line.startswith("#")]
                     ecsv_out.writelines(body[1:])  # drop the column-name line
-                hdu = fits.BinTableHDU(part)
+                hdu = table_hdu(part, None)
                 if i == 0:
                     header = hdu.header.copy()
                     header["NAXIS2"] = n_rows

@@ -28,6 +28,8 @@ import numpy as np
 from astropy.io import fits
 from astropy.table import Table
 
+from .columns import read_table, table_hdu
+
 from .atomic import atomic_path
 
 __all__ = ["write_shard", "read_shard", "PLANES"]
@@ -44,9 +46,9 @@ def write_shard(path: Path, cubes: dict, truth: Table, header: dict, extra_table
     for name in PLANES:
         if name in cubes:
             hdus.append(fits.ImageHDU(data=cubes[name], name=name))
-    hdus.append(fits.BinTableHDU(truth, name="TRUTH"))
+    hdus.append(table_hdu(truth, "TRUTH"))
     for name, table in (extra_tables or {}).items():
-        hdus.append(fits.BinTableHDU(table, name=name))
+        hdus.append(table_hdu(table, name))
     with atomic_path(Path(path)) as tmp:
         fits.HDUList(hdus).writeto(tmp)
 
@@ -55,5 +57,5 @@ def read_shard(path: Path, planes=("IMAGES",)) -> tuple[dict, Table]:
     """Read the requested planes (arrays) and the truth rows of one shard file."""
     with fits.open(path, memmap=True) as hdul:
         arrays = {name: np.array(hdul[name].data) for name in planes}
-        truth = Table.read(hdul["TRUTH"])
+        truth = read_table(hdul, "TRUTH")
     return arrays, truth

@@ -1,244 +1,300 @@
 """The truth catalogue of a run: one row per system, as FITS table and ECSV with units.
 
-Columns (``<band>`` for every band of the survey):
-
-=========================  ========  ==========================================================
-column                     unit      meaning
-=========================  ========  ==========================================================
-system_id                            id within the run (random streams derive from it)
-file                                 file with the system's images, relative to the run folder: its
-                                     own cutout if per-system files are written, else its shard
-shard, shard_index                   shard file (relative path) and the system's row in it
-ra, dec                    deg       lens centre (= cutout centre, CRVAL of the WCS)
-z_lens, z_source                     redshifts
-velocity_dispersion        km / s    lens stellar velocity dispersion
-einstein_radius            arcsec    SIS/SIE Einstein radius from sigma and the distances;
-                                     stars_and_halo: solved (mean convergence 1 within it)
-mass_model                           sie, power_law or cored_isothermal
-mass_q, mass_angle         -, deg    mass axis ratio and major-axis angle (CCW from +x)
-mass_slope                           3D density slope (2 unless power_law)
-mass_core_radius           arcsec    core radius (0 unless cored_isothermal)
-multipole_m{3,4}_strength            multipole amplitudes a_3, a_4 (0: none)
-multipole_m{3,4}_angle     deg       multipole angles relative to the mass major axis
-n_subhalos                           subhalos of this lens (each a row of subhalos.ecsv)
-subhalo_mass_total         M_sun     their total mass
-n_line_of_sight                      SIS galaxies in other lens planes (rows of line_of_sight.ecsv);
-                                     with any, max_time_delay is nan (multi-plane)
-shear_gamma, shear_angle   -, deg    external shear
-lens_mag_<band>            mag       lens light, AB
-lens_half_light_radius     arcsec    circularised R_e of the lens light
-lens_sersic_index                    Sersic n of the lens light
-lens_q, lens_angle         -, deg    lens-light shape
-source_mag_<band>          mag       unlensed source (disk + clumps), AB
-source_half_light_radius   arcsec    circularised R_e of the source disk
-source_sersic_index                  Sersic n of the source disk
-source_q, source_angle     -, deg    source-disk shape
-source_x, source_y         arcsec    source centre, source plane, relative to the lens centre
-source_n_clumps                      number of star-forming clumps
-magnification                        extended-source magnification (reference band): lensed
-                                     flux of the source galaxy in the rendered field over its
-                                     unlensed flux (point-source images not included)
-n_images                             images of the source centre in the rendered field (each a
-                                     row of images.ecsv, with magnification and time delay)
-point_magnification                  sum of |magnification| of those images (point source)
-max_time_delay             day       delay between the first and the last of those images
-lens_absolute_magnitude    mag       rest-frame AB magnitude of the lens light in the scaling
-                                     relations' rest filter (nan unless lens.light.scaling)
-lens_luminosity            L_sun     its luminosity in that filter
-lens_stellar_mass          M_sun     luminosity x mass_to_light (nan unless given)
-source_absolute_magnitude  mag       rest-frame AB magnitude of the source (source.counts only)
-quasar_mag_<band>          mag       unlensed point source at the source centre (nan: none)
-placement                            fixed, lens or sky (source.position.mode)
-region_radius, region_area arcsec    the disc in which source centres fall uniformly; its area
-                           arcsec2
-region_widened                       the caustics reached beyond the nominal disc, which was
-                                     widened to hold them
-multiply_imaged                      the source centre lies inside a caustic or the cut
-tangential_caustic_area    arcsec2   area inside the tangential caustic
-inner_caustic_area         arcsec2   area inside the radial caustic or the cut
-candidate                            which draw of this system passed the selection (0: first)
-passes_<cut>                         the system passes that [selection] cut
-selected                             it passes all of them
-stellar_kappa_e                      stars_and_halo: the stars' convergence at R_e (0: other models)
-halo_mass, halo_concentration        stars_and_halo: NFW M200 (M_sun) and c200 (nan: other models)
-halo_kappa_s, halo_scale_radius      stars_and_halo: NFW kappa_s and r_s (arcsec)
-halo_ellipticity                     stars_and_halo: ellipticity of the halo's potential
-second_source_z, _x, _y    -, arcsec second source plane (source.second): redshift, centre in its plane
-second_source_mag_<band>   mag       its unlensed magnitude
-second_source_magnification          its lensed flux in the rendered field over the unlensed flux
-second_source_deflector_einstein_radius  arcsec  the first source as an SIS deflector of it
-system_class                         lens (source centre multiply imaged), missed_caustics,
-                                     source_in_front, or a negative class (simlens.negatives)
-is_lens                              system_class is lens and the system is selected: the label
-n_lookalike_features                 look-alike light components added (negatives)
-arc_snr_<band>                       matched-filter S/N of the noiseless lensed source:
-                                     sqrt(sum_i S_i^2 / var_i), var_i = expected per-pixel variance
-                                     (sky + lens + source Poisson and read noise), over the cutout
-psf_fwhm_<band>            arcsec    PSF FWHM
-magzero_<band>             mag       AB zero point of the images: m = magzero - 2.5 log10(ADU)
-sky_level_<band>                     sky level subtracted from the images (ADU per pixel)
-=========================  ========  ==========================================================
+Every column is declared once, in :data:`TRUTH_COLUMNS` (name, unit, description, value); the rows,
+the units, the descriptions written into the files and the column reference of the docs
+(``docs/truth_columns.md``, written by ``python -m simlens.output.column_docs``) all come from it.  The
+per-image, subhalo and line-of-sight tables have their own lists below.
 """
 
 from __future__ import annotations
 
+import math
+from dataclasses import dataclass
 from typing import Sequence
 
-import astropy.units as u
 import numpy as np
 from astropy.table import Table
 
 from ..imaging.render import RenderedSystem
+from .columns import ColumnSpec as C, described_table, reference_table, rows_from
 
 __all__ = ["truth_row", "truth_table", "subhalo_rows", "subhalo_table", "image_rows", "image_table",
-           "line_of_sight_rows", "line_of_sight_table", "TRUTH_UNITS"]
+           "line_of_sight_rows", "line_of_sight_table", "TRUTH_COLUMNS", "FIELD_COLUMNS", "OBJECT_COLUMNS", "column_reference"]
 
-TRUTH_UNITS = {
-    "ra": u.deg, "dec": u.deg, "velocity_dispersion": u.km / u.s, "einstein_radius": u.arcsec,
-    "mass_angle": u.deg, "shear_angle": u.deg, "mass_core_radius": u.arcsec,
-    "multipole_m3_angle": u.deg, "multipole_m4_angle": u.deg, "subhalo_mass_total": u.M_sun, "lens_half_light_radius": u.arcsec, "lens_angle": u.deg,
-    "source_half_light_radius": u.arcsec, "source_angle": u.deg, "source_x": u.arcsec, "source_y": u.arcsec,
-    "max_time_delay": u.day, "lens_absolute_magnitude": u.mag, "lens_luminosity": u.L_sun,
-    "lens_stellar_mass": u.M_sun, "source_absolute_magnitude": u.mag, "region_radius": u.arcsec,
-    "region_area": u.arcsec**2, "second_source_x": u.arcsec, "second_source_y": u.arcsec,
-    "second_source_deflector_einstein_radius": u.arcsec, "halo_mass": u.M_sun, "halo_scale_radius": u.arcsec, "tangential_caustic_area": u.arcsec**2, "inner_caustic_area": u.arcsec**2,
-}
+NAN = math.nan
+
+
+@dataclass(frozen=True)
+class _Entry:
+    """What one truth row describes: the rendered system, where its images are, its cut results."""
+
+    rendered: RenderedSystem
+    file: str
+    shard: str
+    shard_index: int
+    flags: dict
+    cut_names: tuple
+
+    @property
+    def system(self):
+        return self.rendered.system
+
+    @property
+    def selected(self) -> bool:
+        return all(bool(self.flags.get(name, True)) for name in self.cut_names)
+
+
+def _multipole(order: int, part: int):
+    return lambda e: next((m[part] for m in e.system.multipoles if m[0] == order), 0.0)
+
+
+def _second(name: str, default=NAN):
+    return lambda e: getattr(e.system.second_source, name) if e.system.second_source else default
+
+
+def _band(b, name):  # the BandConditions of band b
+    return next(c for c in b.system.bands if c.name == name)
+
+
+TRUTH_COLUMNS = (
+    C("system_id", "", "id within the run (its random streams derive from it)", lambda e: e.system.system_id),
+    C("file", "", "file with the system's images, relative to the run folder (its cutout, or its shard)",
+      lambda e: e.file),
+    C("shard", "", "shard file holding the system (relative path)", lambda e: e.shard),
+    C("shard_index", "", "the system's row in its shard", lambda e: e.shard_index),
+    C("ra", "deg", "lens centre right ascension (cutout centre, CRVAL of the WCS)", lambda e: e.system.ra),
+    C("dec", "deg", "lens centre declination", lambda e: e.system.dec),
+    C("z_lens", "", "lens redshift", lambda e: e.system.z_lens),
+    C("z_source", "", "source redshift", lambda e: e.system.z_source),
+    C("velocity_dispersion", "km / s", "lens stellar velocity dispersion", lambda e: e.system.velocity_dispersion),
+    C("einstein_radius", "arcsec", "Einstein radius: of the SIS with this sigma and these distances "
+      "(stars_and_halo: solved, mean convergence 1 within it)", lambda e: e.system.einstein_radius),
+    C("mass_model", "", "mass model of the recipe (sie, power_law, cored_isothermal, stars_and_halo)",
+      lambda e: e.system.mass_model_name),
+    C("mass_q", "", "mass axis ratio (minor / major)", lambda e: e.system.mass_q),
+    C("mass_angle", "deg", "mass major-axis angle, CCW from +x", lambda e: e.system.mass_angle),
+    C("mass_slope", "", "3D density slope (2 unless power_law)", lambda e: e.system.mass_slope),
+    C("mass_core_radius", "arcsec", "core radius (0 unless cored_isothermal)", lambda e: e.system.mass_core_radius),
+    C("multipole_m3_strength", "", "m = 3 multipole amplitude a_3 (0: none)", _multipole(3, 1)),
+    C("multipole_m3_angle", "deg", "m = 3 multipole angle relative to the mass major axis", _multipole(3, 2)),
+    C("multipole_m4_strength", "", "m = 4 multipole amplitude a_4 (0: none)", _multipole(4, 1)),
+    C("multipole_m4_angle", "deg", "m = 4 multipole angle relative to the mass major axis", _multipole(4, 2)),
+    C("n_subhalos", "", "subhalos of this lens (rows of the subhalo table)", lambda e: len(e.system.subhalos)),
+    C("subhalo_mass_total", "M_sun", "total mass of those subhalos",
+      lambda e: float(sum(h.mass for h in e.system.subhalos))),
+    C("n_line_of_sight", "", "SIS galaxies in other lens planes (rows of the line-of-sight table); with "
+      "any, max_time_delay is nan", lambda e: len(e.system.line_of_sight)),
+    C("shear_gamma", "", "external shear strength", lambda e: e.system.shear_gamma),
+    C("shear_angle", "deg", "external shear angle, CCW from +x", lambda e: e.system.shear_angle),
+    C("lens_mag_{band}", "mag", "lens light in {band}, AB", lambda e, b: e.system.lens_magnitudes[b]),
+    C("lens_half_light_radius", "arcsec", "circularised half-light radius of the lens light",
+      lambda e: e.system.lens_half_light_radius),
+    C("lens_sersic_index", "", "Sersic index of the lens light", lambda e: e.system.lens_sersic_index),
+    C("lens_q", "", "lens-light axis ratio", lambda e: e.system.lens_q),
+    C("lens_angle", "deg", "lens-light major-axis angle, CCW from +x", lambda e: e.system.lens_angle),
+    C("source_mag_{band}", "mag", "unlensed source galaxy (disk and clumps) in {band}, AB (nan: no source)",
+      lambda e, b: e.system.source_magnitude(b)),
+    C("source_half_light_radius", "arcsec", "circularised half-light radius of the source disk",
+      lambda e: e.system.source_half_light_radius),
+    C("source_sersic_index", "", "Sersic index of the source disk", lambda e: e.system.source_sersic_index),
+    C("source_q", "", "source-disk axis ratio", lambda e: e.system.source_q),
+    C("source_angle", "deg", "source-disk major-axis angle, CCW from +x", lambda e: e.system.source_angle),
+    C("source_x", "arcsec", "source centre in the source plane, x, from the lens centre", lambda e: e.system.source_x),
+    C("source_y", "arcsec", "source centre in the source plane, y, from the lens centre", lambda e: e.system.source_y),
+    C("source_n_clumps", "", "star-forming clumps of the source", lambda e: len(e.system.clumps)),
+    C("magnification", "", "extended-source magnification in the reference band: lensed flux of the source "
+      "galaxy in the rendered field over its unlensed flux (point-source images not included)",
+      lambda e: e.rendered.magnification),
+    C("n_images", "", "images of the source centre in the rendered field (rows of the image table)",
+      lambda e: len(e.rendered.images)),
+    C("point_magnification", "", "sum of |magnification| of those images (a point source's total)",
+      lambda e: float(np.abs(e.rendered.images.magnification).sum())),
+    C("max_time_delay", "day", "delay between the first and the last of those images",
+      lambda e: float(e.rendered.time_delays.max()) if len(e.rendered.images) else 0.0),
+    C("lens_absolute_magnitude", "mag", "rest-frame AB magnitude of the lens light in the scaling relations' "
+      "rest filter (nan unless lens.light.scaling)", lambda e: e.system.lens_absolute_magnitude),
+    C("lens_luminosity", "L_sun", "lens luminosity in that filter", lambda e: e.system.lens_luminosity),
+    C("lens_stellar_mass", "M_sun", "luminosity times mass_to_light (nan unless given)",
+      lambda e: e.system.lens_stellar_mass),
+    C("source_absolute_magnitude", "mag", "rest-frame AB magnitude of the source (source.counts only)",
+      lambda e: e.system.source_absolute_magnitude),
+    C("quasar_mag_{band}", "mag", "unlensed point source at the source centre in {band}, AB (nan: none)",
+      lambda e, b: e.system.quasar_magnitudes[b] if e.system.quasar_magnitudes is not None else NAN),
+    C("placement", "", "placement mode: fixed, lens or sky (source.position.mode)", lambda e: e.system.placement),
+    C("region_radius", "arcsec", "radius of the disc in which source centres fall uniformly",
+      lambda e: e.system.region_radius),
+    C("region_area", "arcsec2", "area of that disc", lambda e: e.system.region_area),
+    C("region_widened", "", "the caustics reached beyond the nominal disc, which was widened to hold them",
+      lambda e: e.system.region_widened),
+    C("multiply_imaged", "", "the source centre lies inside a caustic or the cut", lambda e: e.system.multiply_imaged),
+    C("tangential_caustic_area", "arcsec2", "area inside the tangential caustic",
+      lambda e: e.system.tangential_caustic_area),
+    C("inner_caustic_area", "arcsec2", "area inside the radial caustic or the cut", lambda e: e.system.inner_caustic_area),
+    C("candidate", "", "which candidate of this system passed the selection (0: the first)",
+      lambda e: e.system.candidate),
+    C("passes_{cut}", "", "the system passes the {cut} cut of [selection]",
+      lambda e, cut: bool(e.flags.get(cut, True))),
+    C("selected", "", "the system passes every [selection] cut", lambda e: e.selected),
+    C("stellar_kappa_e", "", "stars_and_halo: the stars' convergence at R_e (0: other models)",
+      lambda e: e.system.stellar_kappa_e),
+    C("halo_mass", "M_sun", "stars_and_halo: NFW M200 (nan: other models)", lambda e: e.system.halo_mass),
+    C("halo_concentration", "", "stars_and_halo: NFW c200 (nan: other models)", lambda e: e.system.halo_concentration),
+    C("halo_kappa_s", "", "stars_and_halo: NFW kappa_s (0: other models)", lambda e: e.system.halo_kappa_s),
+    C("halo_scale_radius", "arcsec", "stars_and_halo: NFW scale radius r_s", lambda e: e.system.halo_scale_radius),
+    C("halo_ellipticity", "", "stars_and_halo: ellipticity of the halo's potential", lambda e: e.system.halo_ellipticity),
+    C("second_source_z", "", "second source plane (source.second): redshift (nan: none)", _second("z")),
+    C("second_source_x", "arcsec", "second source centre in its plane, x", _second("x")),
+    C("second_source_y", "arcsec", "second source centre in its plane, y", _second("y")),
+    C("second_source_magnification", "", "second source: lensed flux in the rendered field over the unlensed flux",
+      lambda e: e.rendered.second_magnification),
+    C("second_source_deflector_einstein_radius", "arcsec", "the first source as an SIS deflector of the second",
+      _second("deflector_einstein_radius", 0.0)),
+    C("second_source_mag_{band}", "mag", "second source, unlensed, in {band}, AB (nan: none)",
+      lambda e, b: e.system.second_source.magnitudes[b] if e.system.second_source else NAN),
+    C("system_class", "", "lens (source centre multiply imaged), missed_caustics, source_in_front, or a "
+      "negative class", lambda e: e.system.system_class),
+    C("is_lens", "", "the label: system_class is lens and the system is selected",
+      lambda e: e.system.system_class == "lens" and e.selected),
+    C("n_lookalike_features", "", "look-alike light components added (negatives)", lambda e: len(e.system.extra_light)),
+    C("arc_snr_{band}", "", "matched-filter S/N of the noiseless lensed source in {band}: sqrt(sum S_i^2 / var_i) "
+      "over the cutout, var_i the expected pixel variance", lambda e, b: e.rendered.band(b).arc_snr),
+    C("psf_fwhm_{band}", "arcsec", "PSF FWHM in {band}", lambda e, b: _band(e, b).psf_fwhm),
+    C("magzero_{band}", "mag", "AB zero point of the {band} images: m = magzero - 2.5 log10(ADU)",
+      lambda e, b: _band(e, b).magzero),
+    C("sky_level_{band}", "", "sky level subtracted from the {band} images (ADU per pixel)",
+      lambda e, b: _band(e, b).sky_level),
+)
+
+# Field runs add where each lens sits in its field (simlens.runs.fields).
+FIELD_COLUMNS = (
+    C("field_id", "", "field image holding the lens", lambda e: e["field_id"]),
+    C("x_pixel", "pix", "lens centre, column in the field image (0-based)", lambda e: e["x_pixel"]),
+    C("y_pixel", "pix", "lens centre, row in the field image (0-based)", lambda e: e["y_pixel"]),
+)
 
 
 def truth_row(rendered: RenderedSystem, file: str, shard: str = "", shard_index: int = -1,
               flags: dict | None = None, cut_names: tuple = ()) -> dict:
-    s = rendered.system
-    row = {
-        "system_id": s.system_id, "file": file, "shard": shard, "shard_index": shard_index,
-        "ra": s.ra, "dec": s.dec,
-        "z_lens": s.z_lens, "z_source": s.z_source, "velocity_dispersion": s.velocity_dispersion,
-        "einstein_radius": s.einstein_radius, "mass_model": s.mass_model_name,
-        "mass_q": s.mass_q, "mass_angle": s.mass_angle, "mass_slope": s.mass_slope,
-        "mass_core_radius": s.mass_core_radius,
-        "multipole_m3_strength": next((a for m, a, _ in s.multipoles if m == 3), 0.0),
-        "multipole_m3_angle": next((t for m, _, t in s.multipoles if m == 3), 0.0),
-        "multipole_m4_strength": next((a for m, a, _ in s.multipoles if m == 4), 0.0),
-        "multipole_m4_angle": next((t for m, _, t in s.multipoles if m == 4), 0.0),
-        "n_subhalos": len(s.subhalos), "subhalo_mass_total": float(sum(h.mass for h in s.subhalos)),
-        "n_line_of_sight": len(s.line_of_sight),
-        "shear_gamma": s.shear_gamma, "shear_angle": s.shear_angle,
-    }
-    names = [b.name for b in s.bands]
-    row.update({f"lens_mag_{b}": s.lens_magnitudes[b] for b in names})
-    row.update({"lens_half_light_radius": s.lens_half_light_radius, "lens_sersic_index": s.lens_sersic_index,
-                "lens_q": s.lens_q, "lens_angle": s.lens_angle})
-    row.update({f"source_mag_{b}": s.source_magnitude(b) for b in names})
-    row.update({"source_half_light_radius": s.source_half_light_radius,
-                "source_sersic_index": s.source_sersic_index, "source_q": s.source_q,
-                "source_angle": s.source_angle, "source_x": s.source_x, "source_y": s.source_y,
-                "source_n_clumps": len(s.clumps),
-                "magnification": rendered.magnification, "n_images": len(rendered.images),
-                "point_magnification": float(np.abs(rendered.images.magnification).sum()),
-                "max_time_delay": float(rendered.time_delays.max()) if len(rendered.images) else 0.0,
-                "lens_absolute_magnitude": s.lens_absolute_magnitude, "lens_luminosity": s.lens_luminosity,
-                "lens_stellar_mass": s.lens_stellar_mass,
-                "source_absolute_magnitude": s.source_absolute_magnitude})
-    row.update({f"quasar_mag_{b}": (s.quasar_magnitudes[b] if s.quasar_magnitudes is not None else float("nan"))
-                for b in names})
-    row.update({"placement": s.placement, "region_radius": s.region_radius, "region_area": s.region_area,
-                "region_widened": s.region_widened, "multiply_imaged": s.multiply_imaged,
-                "tangential_caustic_area": s.tangential_caustic_area, "inner_caustic_area": s.inner_caustic_area,
-                "candidate": s.candidate})
-    flags = flags or {}
-    row.update({f"passes_{name}": bool(flags.get(name, True)) for name in cut_names})
-    row["selected"] = all(bool(flags.get(name, True)) for name in cut_names)
-    row.update({"stellar_kappa_e": s.stellar_kappa_e, "halo_mass": s.halo_mass,
-                "halo_concentration": s.halo_concentration, "halo_kappa_s": s.halo_kappa_s,
-                "halo_scale_radius": s.halo_scale_radius, "halo_ellipticity": s.halo_ellipticity})
-    second = s.second_source
-    row.update({"second_source_z": second.z if second else float("nan"),
-                "second_source_x": second.x if second else float("nan"),
-                "second_source_y": second.y if second else float("nan"),
-                "second_source_magnification": rendered.second_magnification,
-                "second_source_deflector_einstein_radius": second.deflector_einstein_radius if second else 0.0})
-    row.update({f"second_source_mag_{b}": (second.magnitudes[b] if second else float("nan")) for b in names})
-    row["system_class"] = s.system_class
-    row["is_lens"] = s.system_class == "lens" and row["selected"]
-    row["n_lookalike_features"] = len(s.extra_light)
-    row.update({f"arc_snr_{b.band.name}": b.arc_snr for b in rendered.bands})
-    row.update({f"psf_fwhm_{b.name}": b.psf_fwhm for b in s.bands})
-    row.update({f"magzero_{b.name}": b.magzero for b in s.bands})
-    row.update({f"sky_level_{b.name}": b.sky_level for b in s.bands})
-    return row
+    """The truth row of one rendered system (:data:`TRUTH_COLUMNS`): ``file`` holds its images,
+    ``shard`` and ``shard_index`` where it sits, ``flags`` the pass/fail of each cut in ``cut_names``."""
+    entry = _Entry(rendered, file, shard, shard_index, dict(flags or {}), tuple(cut_names))
+    return rows_from(TRUTH_COLUMNS, entry, bands=[b.name for b in rendered.system.bands], cuts=entry.cut_names)
 
 
-SUBHALO_COLUMNS = ("system_id", "x", "y", "mass", "einstein_radius", "truncation_radius")
-SUBHALO_UNITS = {"x": u.arcsec, "y": u.arcsec, "mass": u.M_sun, "einstein_radius": u.arcsec,
-                 "truncation_radius": u.arcsec}
+def truth_table(rows: Sequence[dict]) -> Table:
+    """The truth rows as a table with the unit and description of every column."""
+    names = list(rows[0])
+    bands = [n[len("lens_mag_"):] for n in names if n.startswith("lens_mag_")]
+    cuts = [n[len("passes_"):] for n in names if n.startswith("passes_")]
+    return described_table(rows, FIELD_COLUMNS + TRUTH_COLUMNS, bands=bands, cuts=cuts)
+
+
+SUBHALO_COLUMNS = (
+    C("system_id", "", "the system the subhalo belongs to", lambda h: h[0]),
+    C("x", "arcsec", "position in the image plane, x, from the lens centre", lambda h: h[1].x),
+    C("y", "arcsec", "position in the image plane, y, from the lens centre", lambda h: h[1].y),
+    C("mass", "M_sun", "total mass of the truncated SIS", lambda h: h[1].mass),
+    C("einstein_radius", "arcsec", "its Einstein radius b", lambda h: h[1].einstein_radius),
+    C("truncation_radius", "arcsec", "its truncation radius a = sqrt(b theta_E)", lambda h: h[1].truncation_radius),
+)
 
 
 def subhalo_rows(rendered: RenderedSystem) -> list[dict]:
-    return [{"system_id": rendered.system.system_id, "x": h.x, "y": h.y, "mass": h.mass,
-             "einstein_radius": h.einstein_radius, "truncation_radius": h.truncation_radius}
-            for h in rendered.system.subhalos]
-
-
-def _keyed_table(rows: Sequence[dict], names: tuple, units: dict, dtype: tuple) -> Table:
-    """A table of per-system rows (keyed by system_id), with its columns even when empty."""
-    table = Table(rows=list(rows), names=names) if rows else Table(names=names, dtype=dtype)
-    for name, unit in units.items():
-        table[name].unit = unit
-    return table
+    return [rows_from(SUBHALO_COLUMNS, (rendered.system.system_id, h)) for h in rendered.system.subhalos]
 
 
 def subhalo_table(rows: Sequence[dict]) -> Table:
     """Subhalos keyed by system_id (positions in the image plane, arcsec from the lens centre)."""
-    return _keyed_table(rows, SUBHALO_COLUMNS, SUBHALO_UNITS, (np.int64,) + (float,) * 5)
+    return described_table(rows, SUBHALO_COLUMNS, dtype=[np.int64] + [float] * 5)
 
 
-def truth_table(rows: Sequence[dict]) -> Table:
-    table = Table(rows=list(rows), names=list(rows[0]))
-    for name, column in table.columns.items():
-        if name in TRUTH_UNITS:
-            column.unit = TRUTH_UNITS[name]
-        elif name.startswith(("lens_mag_", "source_mag_", "quasar_mag_", "second_source_mag_")):
-            column.unit = u.mag
-        elif name.startswith("psf_fwhm_"):
-            column.unit = u.arcsec
-        elif name.startswith("magzero_"):
-            column.unit = u.mag
-    return table
-
-
-IMAGE_COLUMNS = ("system_id", "image", "x", "y", "magnification", "parity", "arrival", "time_delay")
-IMAGE_UNITS = {"x": u.arcsec, "y": u.arcsec, "time_delay": u.day}
+IMAGE_COLUMNS = (
+    C("system_id", "", "the system of the image", lambda i: i["system_id"]),
+    C("image", "", "index of the image within its system", lambda i: i["image"]),
+    C("x", "arcsec", "image position, x, from the lens centre", lambda i: i["x"]),
+    C("y", "arcsec", "image position, y, from the lens centre", lambda i: i["y"]),
+    C("magnification", "", "signed point magnification 1 / det A", lambda i: i["magnification"]),
+    C("parity", "", "+1 a minimum or maximum, -1 a saddle", lambda i: i["parity"]),
+    C("arrival", "", "arrival order (0 first; -1 where delays are not computed)", lambda i: i["arrival"]),
+    C("time_delay", "day", "delay after the first image: (1+z_l)/c D_l D_s/D_ls times the Fermat-potential "
+      "difference (nan with line-of-sight planes)", lambda i: i["time_delay"]),
+)
 
 
 def image_rows(rendered: RenderedSystem) -> list[dict]:
-    """One row per image of the source centre: position (arcsec from the lens centre, image plane),
-    signed magnification, parity (+1 minimum or maximum, -1 saddle), arrival order (0 first) and
-    time delay after the first image (days); with line-of-sight planes the delays are not computed
-    (NaN, arrival -1)."""
+    """One row per image of the source centre (:data:`IMAGE_COLUMNS`); with line-of-sight planes the
+    delays are not computed (nan, arrival -1)."""
     im, delays = rendered.images, rendered.time_delays
     order = np.argsort(np.argsort(delays, kind="stable"), kind="stable") if len(im) else np.empty(0, int)
     if len(im) and not np.all(np.isfinite(delays)):  # multi-plane systems: delays not computed
         order = np.full(len(im), -1)
-    return [{"system_id": rendered.system.system_id, "image": k, "x": float(im.x[k]), "y": float(im.y[k]),
-             "magnification": float(im.magnification[k]), "parity": int(np.sign(im.magnification[k])),
-             "arrival": int(order[k]), "time_delay": float(delays[k])} for k in range(len(im))]
+    return [rows_from(IMAGE_COLUMNS, {"system_id": rendered.system.system_id, "image": k, "x": float(im.x[k]),
+                                      "y": float(im.y[k]), "magnification": float(im.magnification[k]),
+                                      "parity": int(np.sign(im.magnification[k])), "arrival": int(order[k]),
+                                      "time_delay": float(delays[k])})
+            for k in range(len(im))]
 
 
 def image_table(rows: Sequence[dict]) -> Table:
     """Images keyed by system_id (see :func:`image_rows`)."""
-    return _keyed_table(rows, IMAGE_COLUMNS, IMAGE_UNITS,
-                        (np.int64, np.int64, float, float, float, np.int64, np.int64, float))
+    return described_table(rows, IMAGE_COLUMNS, dtype=[np.int64, np.int64, float, float, float, np.int64,
+                                                       np.int64, float])
 
 
-LOS_COLUMNS = ("system_id", "z", "velocity_dispersion", "x", "y", "einstein_radius")
-LOS_UNITS = {"velocity_dispersion": u.km / u.s, "x": u.arcsec, "y": u.arcsec, "einstein_radius": u.arcsec}
+LINE_OF_SIGHT_COLUMNS = (
+    C("system_id", "", "the system whose line of sight holds the galaxy", lambda g: g[0]),
+    C("z", "", "redshift of the galaxy's plane", lambda g: g[1].z),
+    C("velocity_dispersion", "km / s", "SIS velocity dispersion", lambda g: g[1].velocity_dispersion),
+    C("x", "arcsec", "position in its own plane, x, from the line of sight to the lens", lambda g: g[1].x),
+    C("y", "arcsec", "position in its own plane, y", lambda g: g[1].y),
+    C("einstein_radius", "arcsec", "its Einstein radius for the system's source", lambda g: g[1].einstein_radius),
+)
 
 
 def line_of_sight_rows(rendered: RenderedSystem) -> list[dict]:
-    return [{"system_id": rendered.system.system_id, "z": g.z, "velocity_dispersion": g.velocity_dispersion,
-             "x": g.x, "y": g.y, "einstein_radius": g.einstein_radius} for g in rendered.system.line_of_sight]
+    return [rows_from(LINE_OF_SIGHT_COLUMNS, (rendered.system.system_id, g)) for g in rendered.system.line_of_sight]
 
 
 def line_of_sight_table(rows: Sequence[dict]) -> Table:
-    """Line-of-sight SIS galaxies keyed by system_id (position in their own plane, arcsec; Einstein
-    radius for the system's source)."""
-    return _keyed_table(rows, LOS_COLUMNS, LOS_UNITS, (np.int64,) + (float,) * 5)
+    """Line-of-sight SIS galaxies keyed by system_id."""
+    return described_table(rows, LINE_OF_SIGHT_COLUMNS, dtype=[np.int64] + [float] * 5)
+
+
+def _key(name: str):
+    return lambda row, band=None: row[name.format(band=band)]
+
+
+OBJECT_COLUMNS = tuple(C(name, unit, description, _key(name)) for name, unit, description in (
+    ("field_id", "", "field image holding the object"),
+    ("object_id", "", "index of the object within its field"),
+    ("kind", "", "galaxy or star"),
+    ("x_pixel", "pix", "centre, column in the field image (0-based)"),
+    ("y_pixel", "pix", "centre, row in the field image (0-based)"),
+    ("ra", "deg", "centre right ascension"),
+    ("dec", "deg", "centre declination"),
+    ("mag_{band}", "mag", "magnitude in {band}, AB"),
+    ("redshift", "", "galaxy redshift (nan for stars)"),
+    ("half_light_radius", "arcsec", "galaxy half-light radius, circularised (nan for stars)"),
+    ("sersic_index", "", "galaxy Sersic index (nan for stars)"),
+    ("q", "", "galaxy axis ratio (nan for stars)"),
+    ("angle", "deg", "galaxy major-axis angle, CCW from +x (nan for stars)"),
+    ("temperature", "K", "star's effective temperature (nan for galaxies)"),
+))
+
+
+def column_reference() -> str:
+    """The column reference of the docs (docs/truth_columns.md)."""
+    parts = ["# Truth columns\n",
+             "Written by `python -m simlens.output.column_docs` from `simlens/output/truth.py`; the same "
+             "descriptions are in the files (ECSV headers, FITS `TCOMMn` cards). `{band}` stands for "
+             "each band of the survey, `{cut}` for each `[selection]` cut.\n"]
+    for title, specs in (("One row per system (`truth.fits`, `truth.ecsv`, shard `TRUTH`)", TRUTH_COLUMNS),
+                         ("Field runs add", FIELD_COLUMNS),
+                         ("Images of the source centre (`images.*`, `IMAGE_TRUTH`)", IMAGE_COLUMNS),
+                         ("Subhalos (`subhalos.*`, `SUBHALOS`)", SUBHALO_COLUMNS),
+                         ("Line-of-sight galaxies (`line_of_sight.*`, `LINE_OF_SIGHT`)", LINE_OF_SIGHT_COLUMNS),
+                         ("Field objects: unlensed galaxies and stars (`field_objects.*`, `OBJECTS`)",
+                          OBJECT_COLUMNS)):
+        parts.append(f"## {title}\n\n" + reference_table(specs))
+    return "\n".join(parts)
+

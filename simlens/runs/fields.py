@@ -57,7 +57,8 @@ from ..imaging.observe import effective_psf_image, psf_profile
 from ..output.atomic import atomic_path
 from ..output.checksums import sha256_of
 from ..output.cutout_fits import band_keywords, cutout_wcs
-from ..output.truth import (image_rows, image_table, line_of_sight_rows, line_of_sight_table, subhalo_rows,
+from ..output.columns import described_table, table_hdu
+from ..output.truth import (OBJECT_COLUMNS, image_rows, image_table, line_of_sight_rows, line_of_sight_table, subhalo_rows,
                            subhalo_table, truth_row, truth_table)
 from ..truth.sampler import PopulationSampler
 from ..recipe import Recipe
@@ -139,21 +140,12 @@ def region_text(rows: list[dict], title: str) -> str:
     return "\n".join(lines) + "\n"
 
 
-OBJECT_UNITS = {"ra": "deg", "dec": "deg", "half_light_radius": "arcsec", "angle": "deg", "temperature": "K"}
-
-
 def objects_table(rows: list[dict], bands: tuple) -> Table:
+    """The unlensed galaxies and stars of a field (:data:`OBJECT_COLUMNS`)."""
     names = (["field_id", "object_id", "kind", "x_pixel", "y_pixel", "ra", "dec"] + [f"mag_{b}" for b in bands]
              + ["redshift", "half_light_radius", "sersic_index", "q", "angle", "temperature"])
-    if rows:
-        table = Table(rows=rows, names=names)
-    else:
-        table = Table(names=names, dtype=[np.int64, np.int64, "U6"] + [float] * (len(names) - 3))
-    for name, unit in OBJECT_UNITS.items():
-        table[name].unit = unit
-    for b in bands:
-        table[f"mag_{b}"].unit = "mag"
-    return table
+    return described_table(rows, OBJECT_COLUMNS, bands=bands, names=names,
+                           dtype=[np.int64, np.int64, "U6"] + [float] * (len(names) - 3))
 
 
 def render_field(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> ShardResult:
@@ -237,11 +229,11 @@ def render_field(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
 
     t5 = time.perf_counter()
     truth = truth_table(rows)
-    hdus += [fits.BinTableHDU(truth, name="TRUTH"),
-             fits.BinTableHDU(objects_table(objects.rows(spec.index, wcs), survey.band_names), name="OBJECTS"),
-             fits.BinTableHDU(image_table(images), name="IMAGE_TRUTH"),
-             fits.BinTableHDU(subhalo_table(subhalos), name="SUBHALOS"),
-             fits.BinTableHDU(line_of_sight_table(los), name="LINE_OF_SIGHT")]
+    hdus += [table_hdu(truth, "TRUTH"),
+             table_hdu(objects_table(objects.rows(spec.index, wcs), survey.band_names), "OBJECTS"),
+             table_hdu(image_table(images), "IMAGE_TRUTH"),
+             table_hdu(subhalo_table(subhalos), "SUBHALOS"),
+             table_hdu(line_of_sight_table(los), "LINE_OF_SIGHT")]
     with atomic_path(run_folder / file) as tmp:
         fits.HDUList(hdus).writeto(tmp)
     region = region_path(recipe, spec.index)

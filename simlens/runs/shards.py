@@ -17,6 +17,7 @@ import numpy as np
 from astropy.table import Table
 
 from ..output.checksums import sha256_of
+from ..output.columns import read_table
 from ..output.cutout_fits import write_cutout
 from ..output.shard_fits import write_shard
 from ..output.truth import (image_rows, image_table, line_of_sight_rows, line_of_sight_table, subhalo_rows,
@@ -136,4 +137,4 @@ def render_shard(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
 
 
 def read_truth_rows(run_folder: Path, recipe: Recipe, spec: ShardSpec, table: str = "TRUTH") -> Table:
-    return Table.read(Path(run_folder) / shard_path(recipe, spec.index), hdu=table)
+    return read_table(Path(run_folder) / shard_path(recipe, spec.index), table)
