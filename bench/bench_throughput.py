@@ -28,6 +28,7 @@ from astropy.io import fits
 from astropy.table import Table
 
 import simlens
+from simlens.imaging.scene import build_scene
 from simlens.lensing.mass import SIE
 from simlens.imaging.observe import psf_profile
 from simlens.recipe.distributions import Fixed
@@ -47,9 +48,10 @@ def galsim_route(systems, size: int, path: Path) -> None:
     cube = np.zeros((len(systems), nb, size, size), np.float32)
     rows = []
     for k, s in enumerate(systems):
+        scene = build_scene(s)
         for b, band in enumerate(s.bands):
-            lens = s.lens_light(band.name)
-            src = s.source_light(band.name)
+            lens = scene.lens_light[band.name]
+            src = scene.source_light[band.name]
             profile = galsim.Sersic(n=lens.sersic_index, half_light_radius=lens.half_light_radius, flux=lens.flux)
             profile = profile.shear(q=lens.q, beta=lens.angle * galsim.degrees)
             source = galsim.Sersic(n=src.sersic_index, half_light_radius=src.half_light_radius, flux=src.flux)

@@ -37,6 +37,7 @@ from scipy.signal import fftconvolve
 from .errors import SimlensError
 from .output.atomic import atomic_path
 from .output.ownership import confined
+from .imaging.scene import build_scene
 from .truth.sampler import PopulationSampler
 from .recipe import Recipe
 from .recipe.distributions import Fixed
@@ -304,8 +305,8 @@ def inject(image_path: str | Path, recipe: Recipe, lenses_path: str | Path, *, o
         ix, iy = int(round(px)), int(round(py))
         dx, dy = (px - ix) * image.pixel_scale, (py - iy) * image.pixel_scale  # lens offset from the pixel centre
         system = PopulationSampler(_lens_recipe(recipe, row)).draw(index)
-        mass = system.mass_model()
-        source = system.source_light(band)
+        scene = build_scene(system)
+        mass, source = scene.deflector, scene.source_light[band]
         counts = 10 ** (-0.4 * (system.source_magnitude(band) - image.zero_point))
         source = source.with_flux(counts) if source.flux > 0 else source
         n = size + 2 * pad

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from types import SimpleNamespace
 from pathlib import Path
 
 import pytest
@@ -19,7 +20,7 @@ import pytest
 import numpy as np
 
 from simlens.lensing.caustics import find_caustics
-from simlens.truth.record import build_deflector
+from simlens.lensing.lens_models import build_deflector
 from simlens.truth.sampler import PopulationSampler, SelectionExhausted, _Caustics
 from simlens.recipe import load_recipe, parse_recipe
 
@@ -184,7 +185,7 @@ def test_array_caustics_agree_with_the_scan():
     table, deflectors = _table(theta, q, angle, gamma, shear_angle)
     x, y = rng.uniform(-1.0, 1.0, (2, 400))
     for k, d in enumerate(deflectors):
-        mass = build_deflector("sie", theta[k], q[k], angle[k], 2.0, 0.0, (), (), gamma[k], shear_angle[k])
+        mass = build_deflector(SimpleNamespace(einstein_radius=theta[k], **d))
         scan = find_caustics(mass, theta[k], closed_form=False)
         px, py = theta[k] * x, theta[k] * y
         ours = table.multiply_imaged(np.full(px.size, k), px, py)

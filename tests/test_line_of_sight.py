@@ -12,6 +12,7 @@ from astropy.table import Table
 from scipy import stats
 
 import simlens
+from simlens.imaging.scene import build_scene
 from simlens.lensing.multiplane import MultiPlaneLens
 from simlens.truth.sampler import PopulationSampler
 from simlens.recipe import parse_recipe
@@ -52,11 +53,11 @@ def test_line_of_sight_galaxies_are_drawn_from_the_comoving_volume():
 def test_the_mass_model_is_the_multi_plane_lens_of_those_galaxies():
     recipe = parse_recipe(LOS)
     s = PopulationSampler(recipe).draw(4)
-    mass = s.mass_model()
+    mass = build_scene(s).deflector
     assert isinstance(mass, MultiPlaneLens) and len(mass.planes) == 4
     assert list(mass.redshifts) == sorted([s.z_lens] + [g.z for g in s.line_of_sight])
     # without the line of sight, the same system is single-plane
-    single = s.__class__(**{**s.__dict__, "line_of_sight": ()}).mass_model()
+    single = build_scene(s.__class__(**{**s.__dict__, "line_of_sight": ()})).deflector
     x, y = np.array([0.3, -1.1, 2.0]), np.array([0.7, 0.4, -1.5])
     assert not np.allclose(np.array(mass.ray_shoot(x, y)), np.array(single.ray_shoot(x, y)))
 

@@ -8,6 +8,7 @@ from astropy.io import fits
 from astropy.table import Table
 
 import simlens
+from simlens.imaging.scene import build_scene
 from simlens.cli import main
 from simlens.errors import SimlensError
 
@@ -130,7 +131,7 @@ def test_recipes_choose_the_mass_model(small_recipe_text, tmp_path, mass_table):
     assert list(truth["mass_model"]) == [model, model]
     assert np.all(truth["multipole_m4_strength"] == 0.03) and np.all(truth["multipole_m4_angle"] == 45.0)
     system = simlens.PopulationSampler(recipe).draw(0)
-    names = [type(c).__name__ for c in system.mass_model().components]
+    names = [type(c).__name__ for c in build_scene(system).deflector.components]
     assert names[0] == {"power_law": "PowerLaw", "cored_isothermal": "CoredIsothermal"}[model]
     assert "Multipole" in names
     if model == "power_law":

@@ -19,6 +19,7 @@ from simlens.truth.sampler import PopulationSampler
 from simlens.recipe import parse_recipe
 from simlens.cosmology import DistanceTable
 from simlens.populations.velocity_function import VELOCITY_FUNCTIONS
+from simlens.imaging.scene import build_scene
 
 WINDOWS = [(4.0, 0.03), (3.0, 0.01), (0.2, 0.004), (0.02, 0.0004), (0.002, 0.00004)]
 
@@ -135,7 +136,7 @@ def test_sis_magnification_distribution_in_lens_mode():
     windows = [(2.5, 0.02), (0.2, 0.002), (0.02, 0.0002)]
     for i in range(recipe.count):
         s = sampler.draw(i)
-        images = find_images(s.mass_model(), s.source_x, s.source_y, windows)
+        images = find_images(build_scene(s).deflector, s.source_x, s.source_y, windows)
         n_images.append(len(images))
         mu.append(np.abs(images.magnification).sum())
     mu = np.array(mu)

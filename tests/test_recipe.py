@@ -150,3 +150,22 @@ def test_mass_model_keys_must_match_the_model():
     assert recipe.lens.mass.model == "power_law"
     with pytest.raises(RecipeError, match="'power_law'"):
         parse_recipe(edit("[lens.mass]\n", "[lens.mass]\nmodel = \"powerlaw\"\n"))
+
+
+def test_choice_lists_come_from_their_registries():
+    # the recipe's choices are the registries' names, and the negative-class weights of the
+    # schema are exactly the classes simlens.populations.negatives knows
+    import dataclasses as dc
+
+    from simlens.lensing.lens_models import LENS_MODELS
+    from simlens.populations.negatives import NEGATIVE_CLASSES
+    from simlens.populations.photometry import TEMPLATES
+    from simlens.populations.velocity_function import VELOCITY_FUNCTIONS
+    from simlens.recipe import schema
+
+    assert schema.MASS_MODELS == tuple(LENS_MODELS)
+    assert schema.TEMPLATE_NAMES == tuple(TEMPLATES)
+    assert schema.VELOCITY_FUNCTION_NAMES == tuple(VELOCITY_FUNCTIONS)
+    assert {f.name for f in dc.fields(schema.NegativeSettings)} - {"fraction"} == set(NEGATIVE_CLASSES)
+    for model in LENS_MODELS.values():  # every model-specific key exists in [lens.mass]
+        assert set(model.recipe_keys.values()) <= {f.name for f in dc.fields(schema.MassSettings)}

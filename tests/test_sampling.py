@@ -12,6 +12,7 @@ from simlens.truth.sampler import PopulationSampler
 from simlens.recipe import parse_recipe
 from simlens.recipe.distributions import Choice, LogUniform, TruncatedNormal, Uniform
 from simlens.truth.streams import grid_cell, system_streams
+from simlens.imaging.scene import build_scene
 
 from .conftest import SMALL_RECIPE
 
@@ -80,7 +81,7 @@ def test_clump_fluxes_add_up_to_the_source_magnitude(small_recipe):
     sampler = PopulationSampler(small_recipe)
     with_clumps = next(s for s in map(sampler.draw, range(50)) if s.clumps)
     for band in ("g", "r"):
-        light = with_clumps.source_light(band)
+        light = build_scene(with_clumps).source_light[band]
         expected = with_clumps.band(band).counts_from_magnitude(with_clumps.source_magnitude(band))
         assert light.flux == pytest.approx(expected, rel=1e-10)
 
@@ -108,4 +109,4 @@ def test_subhalo_population(small_recipe_text):
         total = math.pi * h.einstein_radius * h.truncation_radius * sigma_cr * (d_l / ARCSEC_PER_RADIAN) ** 2
         # the sampler's interpolated distances (simlens.cosmology) agree with astropy to 2e-6
         assert total == pytest.approx(h.mass, rel=1e-5)
-    assert sum(type(c).__name__ == "TruncatedSIS" for c in system.mass_model().components) == 40
+    assert sum(type(c).__name__ == "TruncatedSIS" for c in build_scene(system).deflector.components) == 40

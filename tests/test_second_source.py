@@ -11,6 +11,7 @@ from astropy import constants, units as u
 from astropy.table import Table
 
 import simlens
+from simlens.imaging.scene import build_scene
 from simlens.lensing.mass import ScaledDeflector
 from simlens.truth.sampler import PopulationSampler
 from simlens.recipe import parse_recipe
@@ -51,7 +52,7 @@ def test_second_plane_matches_a_two_plane_calculation_by_hand():
     d = lambda z1, z2: cosmo.angular_diameter_distance(z1, z2).value  # noqa: E731
     d0 = lambda z: cosmo.angular_diameter_distance(z).value  # noqa: E731
     centre2 = np.array([system.source_x, system.source_y])
-    mass2 = system.second_source_mass()
+    mass2 = build_scene(system).second_deflector
     for theta in (np.array([0.9, 0.4]), np.array([-1.7, 0.2]), np.array([0.1, -2.3])):
         hat1 = a1 * theta / np.linalg.norm(theta)
         theta2 = theta - d(0.5, 1.5) / d0(1.5) * hat1
@@ -65,7 +66,7 @@ def test_without_its_own_deflector_the_second_plane_rescales_the_main_lens():
     recipe = parse_recipe(double_source_recipe(0.0))
     sampler = PopulationSampler(recipe)
     system = sampler.draw(1)
-    mass2 = system.second_source_mass()
+    mass2 = build_scene(system).second_deflector
     assert isinstance(mass2, ScaledDeflector)
     cosmo = sampler.cosmology
     ratio = lambda zs: (cosmo.angular_diameter_distance(0.5, zs) / cosmo.angular_diameter_distance(zs)).value  # noqa: E731

@@ -18,6 +18,7 @@ from simlens.lensing.mass import NFW, SersicMass
 from simlens.truth.sampler import PopulationSampler
 from simlens.recipe import parse_recipe
 from simlens.imaging.render import render_system
+from simlens.imaging.scene import build_scene
 
 from .conftest import PHYSICAL_RECIPE
 
@@ -59,7 +60,7 @@ def test_stars_and_halo_systems_are_lenses_with_consistent_truth():
     system = sampler.draw(1)
     assert system.multiply_imaged and system.einstein_radius > 0
     assert 2e12 <= system.halo_mass <= 1e13 and system.stellar_kappa_e > 0
-    mass = system.mass_model()
+    mass = build_scene(system).deflector
     assert [type(c).__name__ for c in mass.components][:2] == ["SersicMass", "NFW"]
     # the caustic test agrees with the image finder for this model
     windows = [(3.0, 0.02), (1.5, 0.005), (0.1, 0.001)]

@@ -18,6 +18,7 @@ from ..lensing.lens_equation import ImageSet, find_images, time_delays
 from .light import PointSource
 from .observe import ObservedBand, convolution_sampling, observe_scene, padding_for
 from ..truth.record import System
+from .scene import build_scene
 from .rays import ComponentImages, PixelGrid, render_scene, trace_rays
 from ..recipe import SurveySettings
 
@@ -109,7 +110,8 @@ class SystemRendering:
                                       "galsim_stage"), 0.0)
         t0 = time.perf_counter()
         self.grid = pixel_grid_for(system, survey)
-        self.mass = system.mass_model()
+        self.scene = scene = build_scene(system)
+        self.mass = scene.deflector
         fwhm_max = max(b.psf_fwhm for b in system.bands)
         self.rays, sampling = observation_rays(self.mass, self.grid, fwhm_max)
         t1 = time.perf_counter()
@@ -121,12 +123,12 @@ class SystemRendering:
 
         # Shapes are achromatic: evaluate each once for all bands, on the PSF stage's grid.
         self.components = ComponentImages(self.rays, sampling=sampling, adaptive=survey.adaptive_supersampling)
-        self.components.prepare_lensed(system.source_light(reference_band))  # refine where the whole source needs it
+        self.components.prepare_lensed(scene.source_light[reference_band])  # refine where the whole source needs it
         self.second = None
         if system.second_source is not None:  # its own ray map, through its own deflectors
-            rays2, sampling2 = observation_rays(system.second_source_mass(), self.grid, fwhm_max)
+            rays2, sampling2 = observation_rays(scene.second_deflector, self.grid, fwhm_max)
             self.second = ComponentImages(rays2, sampling=sampling2, adaptive=survey.adaptive_supersampling)
-            self.second.prepare_lensed(system.second_source_light(reference_band))
+            self.second.prepare_lensed(scene.second_source_light[reference_band])
         self.timings["adaptive_refinement"] = time.perf_counter() - t2
         self.observed: dict[str, ObservedBand] = {}
         self.magnification = self.second_magnification = math.nan
@@ -155,15 +157,15 @@ class SystemRendering:
         ta = time.perf_counter()
         points = ()
         if system.quasar_magnitudes is not None:
-            flux = system.quasar_flux(name)
+            flux = self.scene.point_flux[name]
             points = tuple(PointSource(flux=flux * abs(float(mu)), center=(float(x), float(y)))
                            for x, y, mu in zip(self.images.x, self.images.y, self.images.magnification))
-        scene = render_scene(name, self.rays, system.lens_light(name), system.source_light(name), self.components,
+        scene = render_scene(name, self.rays, self.scene.lens_light[name], self.scene.source_light[name], self.components,
                              lensed_points=points)
         if name == self.reference_band:
             self.magnification = scene.magnification  # of the first source alone
         if self.second is not None:
-            light2 = system.second_source_light(name)
+            light2 = self.scene.second_source_light[name]
             lensed2 = self.second.render(light2, lensed=True)
             if name == self.reference_band and light2.flux > 0:
                 self.second_magnification = float(lensed2.sum()) / light2.flux

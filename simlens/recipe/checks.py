@@ -9,6 +9,7 @@ from typing import Mapping
 
 from ..errors import RecipeError
 from .distributions import Grid
+from ..lensing.lens_models import LENS_MODELS
 from .schema import MassSettings, Recipe
 from .values import shown
 
@@ -133,15 +134,11 @@ def _check_selection(recipe: Recipe) -> None:
 def _check_mass(recipe: Recipe) -> None:
     origin = recipe.origin
     mass, defaults = recipe.lens.mass, MassSettings()
-    for key, model in (("slope", "power_law"), ("core_radius", "cored_isothermal"),
-                       ("halo_ellipticity", "stars_and_halo")):
-        if mass.model != model and getattr(mass, key) != getattr(defaults, key):
-            raise RecipeError(origin, f"lens.mass.{key}", f"applies to model = '{model}' only, "
-                              f"not to model = '{mass.model}'", f"remove it, or set model = '{model}'")
-    for key in ("halo_mass", "concentration"):
-        if mass.model != "stars_and_halo" and getattr(mass, key) is not None:
-            raise RecipeError(origin, f"lens.mass.{key}", "applies to model = 'stars_and_halo' only",
-                              "remove it, or set model = 'stars_and_halo'")
+    for model in LENS_MODELS.values():  # a model's own keys (the registry) are refused by the others
+        for key in model.recipe_keys.values():
+            if mass.model != model.name and getattr(mass, key) != getattr(defaults, key):
+                raise RecipeError(origin, f"lens.mass.{key}", f"applies to model = '{model.name}' only, "
+                                  f"not to model = '{mass.model}'", f"remove it, or set model = '{model.name}'")
     if mass.model == "stars_and_halo":
         if mass.halo_mass is None:
             raise RecipeError(origin, "lens.mass.halo_mass", "is missing for model = 'stars_and_halo'",

@@ -28,6 +28,9 @@ import math
 from dataclasses import dataclass, field
 from typing import Iterator
 
+from ..lensing.lens_models import LENS_MODELS
+from ..populations.photometry import TEMPLATES
+from ..populations.velocity_function import VELOCITY_FUNCTIONS
 from .distributions import Fixed, Grid, Parameter
 from .values import check_number
 
@@ -205,7 +208,7 @@ class FootprintSettings:
     radius: float = number(1.0, low=0, low_open=True, high=180, unit="deg", doc="footprint radius")
 
 
-MASS_MODELS = ("sie", "power_law", "cored_isothermal", "stars_and_halo")
+MASS_MODELS = tuple(LENS_MODELS)  # the registry of simlens.lensing.lens_models
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -263,8 +266,8 @@ class ShearSettings:
     angle: Parameter = parameter(0.0, unit="deg", doc="shear angle, CCW from +x")
 
 
-VELOCITY_FUNCTION_NAMES = ("choi2007", "sheth2003")
-TEMPLATE_NAMES = ("elliptical", "spiral", "late_spiral", "irregular")
+VELOCITY_FUNCTION_NAMES = tuple(VELOCITY_FUNCTIONS)  # simlens.populations.velocity_function
+TEMPLATE_NAMES = tuple(TEMPLATES)  # simlens.populations.photometry
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -24,12 +24,14 @@ import dataclasses
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
+from types import SimpleNamespace
 from typing import Callable, Mapping, Sequence
 
 import numpy as np
 
 from ..cosmology import DistanceTable, sis_einstein_radius
 from ..errors import SimlensError
+from ..lensing.lens_models import LENS_MODELS, TRUTH_DEFAULTS, build_deflector, multi_plane
 from ..lensing.caustics import CUT_ANGLES, _UNIT_CIRCLE, find_caustics, inside_polygon, isothermal_caustics, polygon_area
 from ..lensing.mass.base import isothermal_hessian, rotate_back
 from ..lensing.mass.isothermal import sie_convergence_in_frame, sie_deflection_in_frame
@@ -41,7 +43,7 @@ from ..populations.velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulat
 from ..recipe import Recipe
 from ..recipe.distributions import Fixed, Grid
 from .conditions import BandConditions
-from .record import (Clump, LineOfSightGalaxy, SecondSource, Subhalo, System, build_deflector, multi_plane)
+from .record import Clump, LineOfSightGalaxy, SecondSource, Subhalo, System
 from .streams import SYSTEM_STREAMS, grid_cell, system_streams
 
 __all__ = ["PopulationSampler", "SelectionExhausted", "System", "offset_on_sky"]
@@ -477,7 +479,7 @@ class _GeometryPhase:
             theta_e = sis_einstein_radius(sigma, ratio)
             lights = [None] * active.size
             composite = [{} for _ in active]
-            if model == "stars_and_halo":  # the stars follow the light: draw it first, then solve for theta_E
+            if LENS_MODELS[model].solves_einstein_radius:  # the stars follow the light: draw it, then solve theta_E
                 normals = np.stack([self.physics[k].standard_normal(size=LensLightModel.NORMALS) for k in active])
                 lights = s.lens_light_model.draw_many(sigma, z_lens, values["lens.mass.q"], values["lens.mass.angle"],
                                                       normals)
@@ -581,10 +583,11 @@ class _GeometryPhase:
 
 
 def _deflector_fields(model: str, v: dict, subhalos: tuple) -> dict:
-    """The System's mass fields of a candidate."""
+    """The System's mass fields of a candidate (those of the model's own recipe keys included)."""
+    own = {name: v[f"lens.mass.{key}"] for name, key in LENS_MODELS[model].recipe_keys.items()
+           if name in TRUTH_DEFAULTS}  # stars_and_halo's are solved (_stars_and_halo)
     return dict(mass_model_name=model, mass_q=v["lens.mass.q"], mass_angle=v["lens.mass.angle"],
-                mass_slope=v["lens.mass.slope"] if model == "power_law" else 2.0,
-                mass_core_radius=v["lens.mass.core_radius"] if model == "cored_isothermal" else 0.0,
+                **{**TRUTH_DEFAULTS, **own},
                 multipoles=tuple((m, v[f"lens.multipoles.m{m}_strength"], v[f"lens.multipoles.m{m}_angle"])
                                  for m in (3, 4) if v[f"lens.multipoles.m{m}_strength"] != 0.0),
                 subhalos=subhalos, shear_gamma=v["lens.shear.gamma"], shear_angle=v["lens.shear.angle"])
@@ -613,9 +616,7 @@ class _Caustics:
             scan += table._closed_form(np.array(simple), theta_e, deflectors)
         for j in scan:
             d = deflectors[j]
-            mass = build_deflector(d["mass_model_name"], theta_e[j], d["mass_q"], d["mass_angle"], d["mass_slope"],
-                                   d["mass_core_radius"], d["subhalos"], d["multipoles"], d["shear_gamma"],
-                                   d["shear_angle"], composite=_composite_model(composite[j], lights[j], values[j]))
+            mass = build_deflector(_TruthSoFar(theta_e[j], d, composite[j], lights[j], values[j]))
             if line_of_sight[j]:
                 mass = multi_plane(mass, z_lens[j], line_of_sight[j], z_source[j], sampler.cosmology)
             found = find_caustics(mass, theta_e[j])
@@ -676,15 +677,15 @@ class _Caustics:
                     tangential_caustic_area=float(self.areas[j, 0]), inner_caustic_area=float(self.areas[j, 1]))
 
 
-def _composite_model(truth: dict, light, v: dict) -> dict | None:
-    """The stars-and-halo parameters of :func:`build_deflector` (None for other models); the stars
-    take the lens light's shape."""
-    if not truth:
-        return None
-    return dict(stellar_kappa_e=truth["stellar_kappa_e"], stellar_r_e=light.half_light_radius,
-                stellar_n=v["lens.light.sersic_index"], stellar_q=light.q,
-                stellar_angle=light.angle, halo_kappa_s=truth["halo_kappa_s"],
-                halo_scale_radius=truth["halo_scale_radius"], halo_ellipticity=truth["halo_ellipticity"])
+class _TruthSoFar(SimpleNamespace):
+    """A candidate's mass fields before its System exists (for :func:`build_deflector`): the
+    deflector fields, the solved stars-and-halo truth, and the lens light the stars follow."""
+
+    def __init__(self, einstein_radius: float, deflector: dict, solved: dict, light, v: dict):
+        super().__init__(einstein_radius=einstein_radius, **deflector, **solved)
+        if light is not None:
+            self.lens_half_light_radius, self.lens_q, self.lens_angle = light.half_light_radius, light.q, light.angle
+            self.lens_sersic_index = v["lens.light.sersic_index"]
 
 
 class _PairQueue:
@@ -747,7 +748,7 @@ class _PairQueue:
             kept = weighted
             selection = s.recipe.selection
             if (selection.einstein_radius is not None and selection.enforce
-                    and s.recipe.lens.mass.model != "stars_and_halo"):
+                    and not LENS_MODELS[s.recipe.lens.mass.model].solves_einstein_radius):
                 theta = sis_einstein_radius(sigma, ratio)
                 kept = weighted & (theta >= selection.einstein_radius[0]) & (theta <= selection.einstein_radius[1])
         for name, a in (("sigma", sigma), ("z_lens", z_l), ("z_source", z_s), ("m", m)):

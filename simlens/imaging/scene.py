@@ -1,0 +1,114 @@
+"""From a truth record to the scene it describes: the deflectors and the light of every band.
+
+:func:`build_scene` turns a :class:`~simlens.truth.record.System` (plain numbers) into one frozen
+:class:`Scene`: the deflector of the first source (all lens planes), that of a second source
+plane, and per band the lens light, the unlensed source light and the unlensed point-source flux,
+in counts.  The renderer (:mod:`simlens.imaging.render`), and through it the shards, the fields
+and the injection into real images, take a scene; each deflector is built once per scene.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Mapping
+
+from ..cosmology import distance_ratio
+from ..lensing.lens_models import build_deflector, multi_plane
+from ..lensing.mass import SIS, MassModel, ScaledDeflector
+from ..lensing.multiplane import MultiPlaneLens
+from ..truth.record import System
+from .light import CompositeLight, LightProfile, Sersic
+
+__all__ = ["Scene", "build_scene", "CLUMP_SERSIC_INDEX"]
+
+CLUMP_SERSIC_INDEX = 0.5  # Gaussian clumps
+
+
+@dataclass(frozen=True)
+class Scene:
+    """The models of one system, in counts per band (a band's name keys each mapping)."""
+
+    system: System
+    deflector: MassModel  # to the first source plane, every lens plane included
+    lens_light: Mapping[str, LightProfile]  # the lens galaxy, with any look-alike features
+    source_light: Mapping[str, LightProfile]  # the unlensed source galaxy (disk and clumps)
+    point_flux: Mapping[str, float]  # counts of the unlensed point source at the source centre (0: none)
+    second_deflector: MassModel | None = None  # to the second source plane
+    second_source_light: Mapping[str, LightProfile] | None = None
+
+
+def build_scene(system: System) -> Scene:
+    """The scene of ``system`` (see the module docstring)."""
+    names = [b.name for b in system.bands]
+    main = build_deflector(system)
+    deflector = main
+    if system.line_of_sight and system.lensing:
+        deflector = multi_plane(main, system.z_lens, system.line_of_sight, system.z_source, system.cosmology)
+    second = system.second_source is not None
+    return Scene(system=system, deflector=deflector,
+                 lens_light={b: _lens_light(system, b) for b in names},
+                 source_light={b: _source_light(system, b) for b in names},
+                 point_flux={b: _point_flux(system, b) for b in names},
+                 second_deflector=_second_deflector(system, main) if second else None,
+                 second_source_light={b: _second_source_light(system, b) for b in names} if second else None)
+
+
+def _lens_light(system: System, band: str) -> LightProfile:
+    conditions = system.band(band)
+    galaxy = Sersic(flux=conditions.counts_from_magnitude(system.lens_magnitudes[band]),
+                    half_light_radius=system.lens_half_light_radius,
+                    sersic_index=system.lens_sersic_index, q=system.lens_q, angle=system.lens_angle)
+    if not system.extra_light:
+        return galaxy
+    return CompositeLight((galaxy,) + tuple(shape.with_flux(conditions.counts_from_magnitude(mags[band]))
+                                            for shape, mags in system.extra_light))
+
+
+def _source_light(system: System, band: str) -> LightProfile:
+    """A point source is not part of it: its images are found and placed by the renderer."""
+    conditions = system.band(band)
+    if not system.host or not system.source_present:
+        return Sersic(flux=0.0, half_light_radius=system.source_half_light_radius,
+                      center=(system.source_x, system.source_y))
+    disk = Sersic(flux=conditions.counts_from_magnitude(system.source_disk_magnitudes[band]),
+                  half_light_radius=system.source_half_light_radius, sersic_index=system.source_sersic_index,
+                  q=system.source_q, angle=system.source_angle, center=(system.source_x, system.source_y))
+    if not system.clumps:
+        return disk
+    knots = tuple(
+        Sersic(flux=conditions.counts_from_magnitude(c.magnitudes[band]), half_light_radius=c.half_light_radius,
+               sersic_index=CLUMP_SERSIC_INDEX, center=(system.source_x + c.x, system.source_y + c.y))
+        for c in system.clumps)
+    return CompositeLight((disk,) + knots)
+
+
+def _point_flux(system: System, band: str) -> float:
+    if system.quasar_magnitudes is None or not system.source_present:
+        return 0.0
+    return system.band(band).counts_from_magnitude(system.quasar_magnitudes[band])
+
+
+def _second_deflector(system: System, main: MassModel) -> MassModel:
+    """The main lens plane rescaled to the second source's redshift, any line-of-sight galaxies
+    likewise, and the first source as an SIS in its plane."""
+    second, cosmo = system.second_source, system.cosmology
+    scaled = ScaledDeflector(main, second.deflection_factor)
+    planes = [(system.z_lens, scaled)]
+    for g in system.line_of_sight:
+        factor = distance_ratio(cosmo, g.z, second.z) / distance_ratio(cosmo, g.z, system.z_source)
+        planes.append((g.z, SIS(einstein_radius=g.einstein_radius * factor, center=(g.x, g.y))))
+    if second.deflector_einstein_radius > 0:
+        planes.append((system.z_source, SIS(einstein_radius=second.deflector_einstein_radius,
+                                            center=(system.source_x, system.source_y))))
+    if len(planes) == 1:
+        return scaled
+    planes.sort(key=lambda p: p[0])
+    return MultiPlaneLens(planes=tuple(m for _, m in planes), redshifts=tuple(z for z, _ in planes),
+                          z_source=second.z, cosmology=cosmo)
+
+
+def _second_source_light(system: System, band: str) -> LightProfile:
+    second = system.second_source
+    return Sersic(flux=system.band(band).counts_from_magnitude(second.magnitudes[band]),
+                  half_light_radius=second.half_light_radius, sersic_index=second.sersic_index,
+                  q=second.q, angle=second.angle, center=(second.x, second.y))
