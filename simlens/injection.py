@@ -38,9 +38,11 @@ from .errors import SimlensError
 from .output.atomic import atomic_path
 from .output.ownership import confined
 from .imaging.scene import build_scene
+from .cosmology import DistanceTable
 from .truth.sampler import PopulationSampler
+from .truth.streams import injection_streams
 from .recipe import Recipe
-from .recipe.distributions import Fixed
+from .recipe.distributions import Fixed, Grid
 
 __all__ = ["SurveyImage", "read_survey_image", "read_lens_catalogue", "inject", "InjectionResult", "empirical_psf",
            "select_lens_galaxies"]
@@ -147,14 +149,15 @@ def select_lens_galaxies(image: SurveyImage, recipe: Recipe, band: str, psf_fwhm
     filt = recipe.survey.band(band).filter
     rest = scaling.rest_filter if scaling is not None else "LSST_r"
     k_table = kcorrection("elliptical", filt, rest) if filt is not None else None
-    sampler = PopulationSampler(recipe)
+    distances = DistanceTable(recipe.cosmology.build())
+    redshifts = _lens_redshifts(recipe, distances, len(chosen))
     rows = []
     for index, source in enumerate(chosen):
         x, y = float(source.x_centroid), float(source.y_centroid)
         ra, dec = (float(v) for v in image.wcs.celestial.pixel_to_world_values(x, y))
-        z = sampler.draw(index).z_lens
+        z = float(redshifts[index])
         magnitude = image.zero_point - 2.5 * math.log10(float(source.segment_flux))
-        absolute = magnitude - float(sampler.distances.distmod(z)) - (k_table(z) if k_table else 0.0)
+        absolute = magnitude - float(distances.distmod(z)) - (k_table(z) if k_table else 0.0)
         sigma = fj.reference_sigma * 10 ** (-(absolute - fj.magnitude_at_reference) / (2.5 * fj.slope))
         rows.append({"ra": ra, "dec": dec, "x_pixel": x, "y_pixel": y, "z_lens": z,
                      "velocity_dispersion": float(np.clip(sigma, 50.0, 500.0)),
@@ -162,6 +165,27 @@ def select_lens_galaxies(image: SurveyImage, recipe: Recipe, band: str, psf_fwhm
                      "mass_angle": float(source.orientation.value), f"mag_{band}": magnitude,
                      "gini": float(source.gini), "snr": float(source.segment_flux) / (std * math.sqrt(float(source.area.value)))})
     return Table(rows=rows)
+
+
+INJECTION_STREAMS = ("noise", "lens_redshifts")  # append new names at the end
+
+
+def _lens_redshifts(recipe: Recipe, distances: DistanceTable, n: int) -> np.ndarray:
+    """Redshifts of ``n`` automatically selected lens galaxies, from the recipe's lens population
+    (its redshift distribution, without the lensing weight) or its ``lens.redshift``, drawn from
+    the injection's own stream (never a system's, whose draws they would correlate with)."""
+    u = injection_streams(recipe.seed, INJECTION_STREAMS)["lens_redshifts"].uniform(size=n)
+    pop = recipe.lens.population
+    if pop is not None:
+        from .populations.velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulation
+
+        deflectors = DeflectorPopulation(VELOCITY_FUNCTIONS[pop.velocity_function], distances, pop.redshift_range,
+                                         pop.velocity_dispersion_range, pop.density_evolution, pop.sigma_evolution)
+        return deflectors.draw_redshift(u)
+    redshift = recipe.lens.redshift
+    if isinstance(redshift, Grid):
+        return np.array([redshift.values[i % len(redshift.values)] for i in range(n)], dtype=float)
+    return np.asarray(redshift.from_uniform(u), dtype=float)
 
 
 @dataclass
@@ -255,15 +279,21 @@ def _fine_kernel(kernel: np.ndarray, ss: int) -> np.ndarray:
     return np.clip(fine, 0.0, None)
 
 
-def _lens_recipe(recipe: Recipe, row) -> Recipe:
-    """The recipe with this deflector's redshift, velocity dispersion and shape fixed."""
-    mass = recipe.lens.mass
-    mass = dataclasses.replace(mass, model="sie",
-                               q=Fixed(float(row["mass_q"])) if "mass_q" in row.colnames else mass.q,
-                               angle=Fixed(float(row["mass_angle"])) if "mass_angle" in row.colnames else mass.angle)
-    lens = dataclasses.replace(recipe.lens, population=None, redshift=Fixed(float(row["z_lens"])),
-                               velocity_dispersion=Fixed(float(row["velocity_dispersion"])), mass=mass)
-    return dataclasses.replace(recipe, lens=lens)
+# Catalogue column -> the recipe key path whose drawn value it replaces.
+LENS_COLUMNS = {"z_lens": "lens.redshift", "velocity_dispersion": "lens.velocity_dispersion",
+                "mass_q": "lens.mass.q", "mass_angle": "lens.mass.angle"}
+
+
+def injection_sampler(recipe: Recipe, lenses: Table) -> PopulationSampler:
+    """One sampler for the whole injection: the recipe's sources and placement behind SIE
+    deflectors whose redshift, velocity dispersion (and shape, where given) are the catalogue's;
+    system ``i`` is the catalogue's row ``i``."""
+    lens = dataclasses.replace(recipe.lens, population=None, redshift=Fixed(math.nan),
+                               velocity_dispersion=Fixed(math.nan),
+                               mass=dataclasses.replace(recipe.lens.mass, model="sie"))
+    columns = {c: path for c, path in LENS_COLUMNS.items() if c in lenses.colnames}
+    given = {i: {path: float(row[c]) for c, path in columns.items()} for i, row in enumerate(lenses)}
+    return PopulationSampler(dataclasses.replace(recipe, lens=lens), given=given)
 
 
 def inject(image_path: str | Path, recipe: Recipe, lenses_path: str | Path, *, out: str | Path,
@@ -297,14 +327,14 @@ def inject(image_path: str | Path, recipe: Recipe, lenses_path: str | Path, *, o
     fine_kernel = _fine_kernel(kernel, ss)
     injected = image.data.copy()
     added_total = np.zeros_like(image.data)
-    rng = np.random.default_rng(np.random.SeedSequence(recipe.seed, spawn_key=(0x1A7EC7,)))
+    rng = injection_streams(recipe.seed, INJECTION_STREAMS)["noise"]
+    systems = injection_sampler(recipe, lenses).draw_many(range(len(lenses)))
     rows = []
     ny, nx = image.data.shape
-    for index, row in enumerate(lenses):
+    for index, (row, system) in enumerate(zip(lenses, systems)):
         px, py = (float(v) for v in image.wcs.celestial.world_to_pixel_values(float(row["ra"]), float(row["dec"])))
         ix, iy = int(round(px)), int(round(py))
         dx, dy = (px - ix) * image.pixel_scale, (py - iy) * image.pixel_scale  # lens offset from the pixel centre
-        system = PopulationSampler(_lens_recipe(recipe, row)).draw(index)
         scene = build_scene(system)
         mass, source = scene.deflector, scene.source_light[band]
         counts = 10 ** (-0.4 * (system.source_magnitude(band) - image.zero_point))

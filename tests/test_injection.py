@@ -115,6 +115,24 @@ def test_missing_photometry_is_a_clear_error_or_given_explicitly(tmp_path, capsy
         inject(tmp_path / "plain.fits", parse_recipe(SMALL_RECIPE), tmp_path / "lenses.csv", out=tmp_path / "o2")
 
 
+def test_every_lens_takes_its_catalogue_values_from_one_sampler(tmp_path):
+    # theta_E = 4 pi (sigma / c)^2 D_ls / D_s (SEF 1992, eq. 8.36) with astropy's distances for
+    # the catalogue's sigma and z_lens; the source redshift is the recipe's
+    import astropy.constants as const
+
+    image = synthetic_image(tmp_path)
+    recipe = parse_recipe(SMALL_RECIPE)
+    result = inject(image, recipe, tmp_path / "lenses.csv", out=tmp_path / "out", psf_path=tmp_path / "psf.fits")
+    cosmo = recipe.cosmology.build()
+    for row in result.truth:
+        ratio = (cosmo.angular_diameter_distance(row["z_lens"], row["z_source"])
+                 / cosmo.angular_diameter_distance(row["z_source"])).value
+        sigma = row["velocity_dispersion"] / const.c.to("km/s").value
+        assert row["einstein_radius"] == pytest.approx(4 * np.pi * sigma**2 * ratio * 206264.806, rel=1e-4)
+    assert list(result.truth["z_lens"]) == [0.4, 0.5, 0.45]
+    assert list(result.truth["velocity_dispersion"]) == [260.0, 300.0, 240.0]
+
+
 def test_an_unlensed_source_adds_its_catalogue_flux(tmp_path):
     # Absolute photometry: with (almost) no deflection the added counts equal 10^(-0.4 (m - MAGZERO))
     # of the source (AB definition of the zero point), less the PSF's wings beyond the stamp (< 1 %).

@@ -70,11 +70,15 @@ class PopulationSampler:
     TRIES_PER_CANDIDATE = 64  # deflectors tried (sharing the candidate's streams) before rejection
     LENS_MODE_PLACEMENT_TRIES = 1000  # source places tried behind an explicit-distribution deflector
 
-    def __init__(self, recipe: Recipe, conditions: tuple | None = None):
+    def __init__(self, recipe: Recipe, conditions: tuple | None = None,
+                 given: Mapping[int, Mapping[str, float]] | None = None):
         """``conditions``: BandConditions (survey order) that every system takes instead of its
-        own draw -- the one set of seeing, sky and depth of a field image."""
+        own draw -- the one set of seeing, sky and depth of a field image.  ``given``: per system
+        id, values of recipe key paths that replace the drawn ones (the catalogued deflectors of
+        an injection); the uniforms are drawn all the same, so the other draws do not move."""
         self.recipe = recipe
         self.conditions = conditions
+        self.given = {int(i): dict(v) for i, v in (given or {}).items()}
         self.cosmology = recipe.cosmology.build()
         self.distances = DistanceTable(self.cosmology)
         self._parameters = list(recipe.parameters())
@@ -452,6 +456,9 @@ class _GeometryPhase:
             cells = [grid_cell(self.ids[k], s._grid_shape) for k in rows]
             for j, (path, param) in enumerate(s._grid_parameters):
                 values[path] = np.array([float(param.at(c[j])) for c in cells])
+        for j, k in enumerate(rows):
+            for path, value in s.given.get(self.ids[k], {}).items():
+                values[path][j] = value
         return values
 
     def _reject(self, k: int, cut: str) -> None:
