@@ -16,12 +16,13 @@ from __future__ import annotations
 
 import argparse
 import sys
+import warnings
 from pathlib import Path
 
 import numpy as np
 
 from .version import __version__
-from .errors import SimlensError
+from .errors import SimlensError, SimlensWarning
 from .recipe import load_recipe
 
 __all__ = ["main"]
@@ -256,10 +257,23 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    """simlens's own warnings as one plain line; any other warning as Python prints it."""
+    if issubclass(category, SimlensWarning):
+        print(f"simlens: warning: {message}", file=sys.stderr)
+    else:
+        _python_show_warning(message, category, filename, lineno, file, line)
+
+
+_python_show_warning = warnings.showwarning
+
+
 def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     try:
-        return args.func(args)
+        with warnings.catch_warnings():
+            warnings.showwarning = _show_warning
+            return args.func(args)
     except SimlensError as exc:
         print(f"simlens: error: {exc}", file=sys.stderr)
         return 2

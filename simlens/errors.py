@@ -37,3 +37,8 @@ class RecipeError(SimlensError):
         if accepted:
             message += f" (accepted: {accepted})"
         super().__init__(message)
+
+
+class SimlensWarning(UserWarning):
+    """Something the user should know that does not stop the command (the command line prints
+    the message alone, as ``simlens: warning: ...``)."""

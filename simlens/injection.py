@@ -24,6 +24,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -34,9 +35,11 @@ from astropy.wcs import WCS
 from astropy.wcs.utils import proj_plane_pixel_scales
 from scipy.signal import fftconvolve
 
-from .errors import SimlensError
+from .errors import SimlensError, SimlensWarning
 from .output.atomic import atomic_path
 from .output.ownership import confined
+from .imaging.rays import ComponentImages, PixelGrid
+from .imaging.render import observation_rays
 from .imaging.scene import build_scene
 from .cosmology import DistanceTable
 from .truth.sampler import PopulationSampler
@@ -66,11 +69,15 @@ def read_survey_image(path: str | Path, gain: float | None = None, zero_point: f
     path = Path(path)
     if not path.is_file():
         raise SimlensError(f"{path}: no such image")
-    with fits.open(path) as hdul:
-        hdu = next((h for h in hdul if h.data is not None and getattr(h.data, "ndim", 0) == 2), None)
-        if hdu is None:
-            raise SimlensError(f"{path}: no two-dimensional image HDU")
-        data, header = np.array(hdu.data, dtype=float), hdu.header.copy()
+    try:
+        with fits.open(path) as hdul:
+            hdu = next((h for h in hdul if h.data is not None and getattr(h.data, "ndim", 0) == 2), None)
+            if hdu is None:
+                raise SimlensError(f"{path}: no two-dimensional image HDU")
+            data, header = np.array(hdu.data, dtype=float), hdu.header.copy()
+    except (OSError, ValueError, TypeError) as exc:  # astropy's reports of a file that is not FITS
+        raise SimlensError(f"{path}: not a readable FITS image ({type(exc).__name__}); "
+                           "give a FITS file holding the survey image") from None
     wcs = WCS(header)
     if not wcs.has_celestial:
         raise SimlensError(f"{path}: the image has no celestial WCS (CTYPE/CRVAL/CRPIX/CD keywords); "
@@ -167,14 +174,11 @@ def select_lens_galaxies(image: SurveyImage, recipe: Recipe, band: str, psf_fwhm
     return Table(rows=rows)
 
 
-INJECTION_STREAMS = ("noise", "lens_redshifts")  # append new names at the end
-
-
 def _lens_redshifts(recipe: Recipe, distances: DistanceTable, n: int) -> np.ndarray:
     """Redshifts of ``n`` automatically selected lens galaxies, from the recipe's lens population
     (its redshift distribution, without the lensing weight) or its ``lens.redshift``, drawn from
     the injection's own stream (never a system's, whose draws they would correlate with)."""
-    u = injection_streams(recipe.seed, INJECTION_STREAMS)["lens_redshifts"].uniform(size=n)
+    u = injection_streams(recipe.seed)["lens_redshifts"].uniform(size=n)
     pop = recipe.lens.population
     if pop is not None:
         from .populations.velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulation
@@ -265,18 +269,45 @@ def _psf_kernel(psf_path: str | Path | None, recipe: Recipe, band: str, pixel_sc
     return kernel / total
 
 
-def _fine_kernel(kernel: np.ndarray, ss: int) -> np.ndarray:
+def _fine_kernel(kernel: np.ndarray, sampling: int) -> np.ndarray:
     """The effective PSF (fraction of a point source's flux per pixel, as a function of the offset)
-    interpolated (cubic) at the fine grid's offsets, for convolving fine flux samples."""
+    interpolated (cubic) at offsets of ``1 / sampling`` pixel, centred like the kernel: for
+    ``n * sampling`` even the offsets are half-integer multiples of the step, as the offsets
+    between a pixel centre and the samples of an even ``sampling`` are."""
     from scipy.ndimage import map_coordinates
 
     n = kernel.shape[0]
     c = (n - 1) / 2.0
-    m = n * ss
-    offsets = (np.arange(m) - (m - 1) / 2.0) / ss  # in pixels; odd m: 0 is a sample
+    m = n * sampling
+    offsets = (np.arange(m) - (m - 1) / 2.0) / sampling  # in pixels
     gy, gx = np.meshgrid(offsets + c, offsets + c, indexing="ij")
     fine = map_coordinates(kernel, [gy, gx], order=3, mode="constant", cval=0.0)
     return np.clip(fine, 0.0, None)
+
+
+def _lensed_source_pixels(scene, band: str, counts: float, grid: PixelGrid, kernel: np.ndarray,
+                          fwhm: float, adaptive: bool) -> np.ndarray:
+    """The lensed source of ``scene`` in ``band`` with ``counts`` in all (unlensed), through the
+    effective PSF ``kernel`` (image pixels, odd sides), on the cutout of ``grid``: the rays and
+    the source's samples are the renderer's (:func:`~simlens.imaging.render.observation_rays`,
+    :class:`~simlens.imaging.rays.ComponentImages`, adaptive refinement included).
+
+    The kernel already holds the pixel response, so each sample's counts are spread by the
+    kernel read at the offset from the sample to each pixel centre (no second pixel average)."""
+    source = scene.source_light[band]
+    source = source.with_flux(counts) if source.flux > 0 else source
+    rays, sampling = observation_rays(scene.deflector, grid, fwhm)
+    components = ComponentImages(rays, sampling=sampling, adaptive=adaptive)
+    components.prepare_lensed(source)
+    samples = components.render(source, lensed=True)
+    fine_kernel = _fine_kernel(kernel, sampling)
+    # Sample j of a pixel row lies (s p - j + (s + m - 2) / 2) / s pixels from pixel p's centre, with
+    # s the sampling and m the fine kernel's side: that is kernel element s p - j + (s + m - 2) / 2.
+    first = (sampling + fine_kernel.shape[0] - 2) // 2
+    convolved = fftconvolve(samples, fine_kernel, mode="full")
+    n = grid.padded_size
+    pixels = convolved[first::sampling, first::sampling][:n, :n]
+    return np.clip(grid.crop(pixels), 0.0, None)
 
 
 # Catalogue column -> the recipe key path whose drawn value it replaces.
@@ -321,42 +352,31 @@ def inject(image_path: str | Path, recipe: Recipe, lenses_path: str | Path, *, o
         with atomic_path(out / "psf.fits") as tmp:
             fits.PrimaryHDU(data=kernel.astype(np.float32)).writeto(tmp)
         files.append("psf.fits")
-    ss = recipe.survey.supersampling | 1  # odd, so that pixel centres are fine-grid samples
     size = recipe.survey.cutout_size
-    pad = kernel.shape[0] // 2 + 1
-    fine_kernel = _fine_kernel(kernel, ss)
+    padding = kernel.shape[0] // 2 + 1
     injected = image.data.copy()
     added_total = np.zeros_like(image.data)
-    rng = injection_streams(recipe.seed, INJECTION_STREAMS)["noise"]
+    rng = injection_streams(recipe.seed)["noise"]
     systems = injection_sampler(recipe, lenses).draw_many(range(len(lenses)))
-    rows = []
+    rows, holes = [], []
     ny, nx = image.data.shape
     for index, (row, system) in enumerate(zip(lenses, systems)):
         px, py = (float(v) for v in image.wcs.celestial.world_to_pixel_values(float(row["ra"]), float(row["dec"])))
-        ix, iy = int(round(px)), int(round(py))
-        dx, dy = (px - ix) * image.pixel_scale, (py - iy) * image.pixel_scale  # lens offset from the pixel centre
-        scene = build_scene(system)
-        mass, source = scene.deflector, scene.source_light[band]
+        # The cutout's centre (pixel (size - 1) / 2, the renderer's convention) nearest the lens,
+        # and the lens's offset from it (within half a pixel), which the rays take into account.
+        c0, r0 = int(round(px - 0.5 * (size - 1))), int(round(py - 0.5 * (size - 1)))
+        offset = ((px - c0 - 0.5 * (size - 1)) * image.pixel_scale, (py - r0 - 0.5 * (size - 1)) * image.pixel_scale)
+        grid = PixelGrid(size=size, pixel_scale=image.pixel_scale, supersampling=recipe.survey.supersampling,
+                         padding=padding, lens_offset=offset)
         counts = 10 ** (-0.4 * (system.source_magnitude(band) - image.zero_point))
-        source = source.with_flux(counts) if source.flux > 0 else source
-        n = size + 2 * pad
-        fine = (np.arange(n * ss) + 0.5) / ss - 0.5 * n  # fine-pixel centres, pixels from the cutout centre
-        gx, gy = np.meshgrid(fine * image.pixel_scale, fine * image.pixel_scale)
-        # even cutouts: shift by half a pixel so that pixel (iy, ix)'s centre is the origin
-        offset = 0.5 * image.pixel_scale if size % 2 == 0 else 0.0
-        bx, by = mass.ray_shoot(gx + offset - dx, gy + offset - dy)
-        flux = source.surface_brightness(bx, by) * (image.pixel_scale / ss) ** 2
-        # The PSF image already holds the pixel response (it is an effective PSF): convolve the
-        # fine samples with it and read the result at the pixel centres (no second pixel average).
-        convolved = fftconvolve(flux, fine_kernel, mode="same")
-        pixels = convolved[ss // 2::ss, ss // 2::ss]
-        stamp = pixels[pad:pad + size, pad:pad + size]
-        stamp = np.clip(stamp, 0.0, None)
-        # the stamp's pixel (r, c) is image pixel (iy - half + r, ix - half + c)
-        half = size // 2 if size % 2 == 1 else size // 2 - 1
-        r0, c0 = iy - half, ix - half
+        stamp = _lensed_source_pixels(build_scene(system), band, counts, grid, kernel, _recipe_fwhm(recipe, band),
+                                      recipe.survey.adaptive_supersampling)
+        # the stamp's pixel (r, c) is image pixel (r0 + r, c0 + c)
         rs, cs = slice(max(r0, 0), min(r0 + size, ny)), slice(max(c0, 0), min(c0 + size, nx))
         sub = stamp[rs.start - r0:rs.stop - r0, cs.start - c0:cs.stop - c0]
+        blank = ~np.isfinite(image.data[rs, cs])
+        if blank.any():
+            holes.append(f"lens {index} ({int(blank.sum())} pixels)")
         electrons = rng.poisson(sub * image.gain)
         injected[rs, cs] += electrons / image.gain
         added_total[rs, cs] += sub
@@ -369,7 +389,12 @@ def inject(image_path: str | Path, recipe: Recipe, lenses_path: str | Path, *, o
                      "einstein_radius": theta_e, "z_source": system.z_source,
                      f"source_mag_{band}": system.source_magnitude(band), "source_x": system.source_x,
                      "source_y": system.source_y, "added_flux": float(sub.sum()),
-                     "added_flux_unclipped": float(stamp.sum()), "file": cutout_file})
+                     "added_flux_unclipped": float(stamp.sum()), "blank_pixels": int(blank.sum()),
+                     "file": cutout_file})
+    if holes:
+        warnings.warn(f"{image.path}: pixels without data (NaN or infinite) under {len(holes)} of the lenses: "
+                      f"{', '.join(holes[:5])}{' ...' if len(holes) > 5 else ''}; they stay blank in the injected "
+                      "image and are counted in the truth's blank_pixels", SimlensWarning, stacklevel=2)
     truth = Table(rows=rows)
     for name, unit in (("ra", "deg"), ("dec", "deg"), ("einstein_radius", "arcsec"), ("source_x", "arcsec"),
                        ("source_y", "arcsec"), ("velocity_dispersion", "km / s")):

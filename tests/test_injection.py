@@ -224,3 +224,34 @@ def test_automatic_selection_finds_the_early_type_galaxies(tmp_path):
         assert match["mass_q"][0] == pytest.approx(q, abs=0.1)
         assert abs(((match["mass_angle"][0] - angle) + 90) % 180 - 90) < 10
         assert 50 <= match["velocity_dispersion"][0] <= 500
+
+
+def test_an_image_that_is_not_fits_is_one_clear_error(tmp_path, capsys):
+    # common practice: a user error is one line and exit status 2, never a traceback
+    synthetic_image(tmp_path)
+    (tmp_path / "notes.fits").write_text("these are not FITS bytes\n" * 40)
+    recipe_path = tmp_path / "r.toml"
+    recipe_path.write_text(SMALL_RECIPE)
+    assert main(["inject", str(tmp_path / "notes.fits"), "--recipe", str(recipe_path), "--lenses",
+                 str(tmp_path / "lenses.csv"), "--out", str(tmp_path / "out"), "--gain", "4"]) == 2
+    err = capsys.readouterr().err
+    assert "not a readable FITS image" in err and "Traceback" not in err and "these are not" not in err
+
+
+def test_blank_pixels_under_a_lens_are_reported_per_lens(tmp_path, capsys):
+    # Survey images mark missing data as NaN (common practice): the lens over the hole is named,
+    # its blank pixels counted in the truth, the other lenses are untouched by the warning.
+    image = synthetic_image(tmp_path)
+    with fits.open(image) as hdul:
+        data, header = hdul[0].data.copy(), hdul[0].header
+    data[55:65, 45:55] = np.nan  # 100 pixels around the first lens (x 50.3, y 60.6)
+    holed = tmp_path / "holed.fits"
+    fits.PrimaryHDU(data=data, header=header).writeto(holed)
+    recipe_path = tmp_path / "r.toml"
+    recipe_path.write_text(SMALL_RECIPE)
+    assert main(["inject", str(holed), "--recipe", str(recipe_path), "--lenses", str(tmp_path / "lenses.csv"),
+                 "--out", str(tmp_path / "out"), "--psf", str(tmp_path / "psf.fits")]) == 0
+    err = capsys.readouterr().err
+    assert "simlens: warning:" in err and "lens 0 (100 pixels)" in err and "lens 1" not in err
+    truth = Table.read(tmp_path / "out" / "truth.ecsv")
+    assert list(truth["blank_pixels"]) == [100, 0, 0]

@@ -35,16 +35,21 @@ class PixelGrid:
     pixel_scale : arcsec per pixel.
     supersampling : rays per pixel side (>= 1).
     padding : pixels added on every side for the PSF's reach (>= 0).
+    lens_offset : where the lens centre lies relative to the cutout centre (arcsec, x and y): zero
+        for simulated cutouts; within half a pixel for a lens of a real image (injection).  Rays
+        and sample positions are in the lens frame (the lens at the origin).
     """
 
     size: int
     pixel_scale: float
     supersampling: int = 4
     padding: int = 0
+    lens_offset: tuple = (0.0, 0.0)
 
     def __post_init__(self):
         if self.size < 1 or self.supersampling < 1 or self.padding < 0 or not self.pixel_scale > 0:
             raise ValueError(f"invalid PixelGrid {self!r}")
+        object.__setattr__(self, "lens_offset", tuple(float(v) for v in self.lens_offset))
 
     @property
     def padded_size(self) -> int:
@@ -69,8 +74,17 @@ class PixelGrid:
 
     def fine_axis(self) -> np.ndarray:
         """Centres of the fine pixels along one axis (arcsec, relative to the cutout centre)."""
-        k = np.arange(self.fine_size)
-        return ((k + 0.5) / self.supersampling - 0.5 * self.padded_size) * self.pixel_scale
+        return self.sample_axis(self.supersampling)
+
+    def sample_axis(self, sampling: int) -> np.ndarray:
+        """Centres of the padded field's samples along one axis, ``sampling`` per pixel side
+        (arcsec, relative to the cutout centre)."""
+        k = np.arange(self.padded_size * sampling)
+        return ((k + 0.5) / sampling - 0.5 * self.padded_size) * self.pixel_scale
+
+    def in_lens_frame(self, axis: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The x and y positions (arcsec, lens at the origin) of the samples of a cutout-frame axis."""
+        return axis - self.lens_offset[0], axis - self.lens_offset[1]
 
     def pixel_axis(self) -> np.ndarray:
         """Centres of the cutout's pixels along one axis (arcsec)."""
@@ -102,11 +116,11 @@ class RayMap:
     mass: MassModel | None = None  # kept for adaptive refinement (more rays where needed)
 
     @property
-    def axis(self) -> np.ndarray:
-        """Coordinates of the full-resolution rays along one axis."""
+    def axes(self) -> tuple[np.ndarray, np.ndarray]:
+        """Image-plane x and y coordinates (lens frame) of the full-resolution rays."""
         k = self.inset * self.grid.supersampling
         axis = self.grid.fine_axis()
-        return axis[k:axis.size - k] if k else axis
+        return self.grid.in_lens_frame(axis[k:axis.size - k] if k else axis)
 
 
 def trace_rays(mass: MassModel, grid: PixelGrid, outer_sampling: int | None = None,
@@ -123,14 +137,11 @@ def trace_rays(mass: MassModel, grid: PixelGrid, outer_sampling: int | None = No
         inset = grid.padding - margin
     k = inset * grid.supersampling
     axis = grid.fine_axis()
-    axis = axis[k:axis.size - k] if k else axis
-    x, y = np.meshgrid(axis, axis)
+    x, y = np.meshgrid(*grid.in_lens_frame(axis[k:axis.size - k] if k else axis))
     beta_x, beta_y = mass.ray_shoot(x, y)
     outer = None
     if inset:
-        n = grid.padded_size * outer_sampling
-        outer_axis = ((np.arange(n) + 0.5) / outer_sampling - 0.5 * grid.padded_size) * grid.pixel_scale
-        ox, oy = np.meshgrid(outer_axis, outer_axis)
+        ox, oy = np.meshgrid(*grid.in_lens_frame(grid.sample_axis(outer_sampling)))
         outer = (ox, oy) + tuple(mass.ray_shoot(ox, oy))
     return RayMap(grid=grid, x=x, y=y, beta_x=beta_x, beta_y=beta_y, inset=inset, outer=outer,
                   outer_sampling=outer_sampling if inset else None, mass=mass)
@@ -174,9 +185,10 @@ def deposit_points(image: np.ndarray, grid: PixelGrid, points: tuple, sampling: 
     sampling = sampling or grid.supersampling
     n = grid.padded_size * sampling
     scale = grid.pixel_scale / sampling
+    ox, oy = grid.lens_offset  # points are in the lens frame
     for p in points:
-        fx = p.center[0] / scale + 0.5 * n - 0.5
-        fy = p.center[1] / scale + 0.5 * n - 0.5
+        fx = (p.center[0] + ox) / scale + 0.5 * n - 0.5
+        fy = (p.center[1] + oy) / scale + 0.5 * n - 0.5
         ix, iy = int(np.floor(fx)), int(np.floor(fy))
         wx, wy = fx - ix, fy - iy
         for dy, wy_ in ((0, 1 - wy), (1, wy)):
@@ -193,19 +205,20 @@ CENTRE_REFINE_HALF_WIDTH = 4
 CENTRE_REFINE_FACTOR = 8
 
 
-def refine_centre(unit: np.ndarray, profile: LightProfile, axis: np.ndarray, scale: float) -> None:
-    """Replace the samples around ``profile.center`` by sub-sampled averages (in place); ``axis``
-    holds the sample centres along one axis of ``unit`` and ``scale`` their spacing (arcsec)."""
-    n, h, m = axis.size, CENTRE_REFINE_HALF_WIDTH, CENTRE_REFINE_FACTOR
-    cx = int(round((profile.center[0] - axis[0]) / scale))
-    cy = int(round((profile.center[1] - axis[0]) / scale))
+def refine_centre(unit: np.ndarray, profile: LightProfile, axes: tuple, scale: float) -> None:
+    """Replace the samples around ``profile.center`` by sub-sampled averages (in place); ``axes``
+    hold the sample centres along the x and y axes of ``unit`` and ``scale`` their spacing (arcsec)."""
+    x_axis, y_axis = axes
+    n, h, m = x_axis.size, CENTRE_REFINE_HALF_WIDTH, CENTRE_REFINE_FACTOR
+    cx = int(round((profile.center[0] - x_axis[0]) / scale))
+    cy = int(round((profile.center[1] - y_axis[0]) / scale))
     r0, r1 = max(cy - h, 0), min(cy + h + 1, n)
     c0, c1 = max(cx - h, 0), min(cx + h + 1, n)
     if r0 >= r1 or c0 >= c1:
         return
     offsets = ((np.arange(m) + 0.5) / m - 0.5) * scale
-    ys = (axis[r0:r1, None] + offsets[None, :]).ravel()
-    xs = (axis[c0:c1, None] + offsets[None, :]).ravel()
+    ys = (y_axis[r0:r1, None] + offsets[None, :]).ravel()
+    xs = (x_axis[c0:c1, None] + offsets[None, :]).ravel()
     gx, gy = np.meshgrid(xs, ys)
     sb = profile.surface_brightness(gx, gy).reshape(r1 - r0, m, c1 - c0, m).mean(axis=(1, 3))
     unit[r0:r1, c0:c1] = sb * scale * scale
@@ -262,7 +275,7 @@ class ComponentImages:
         if inner is None:
             inner = profile.surface_brightness(x, y) * grid.fine_pixel_area
         if not lensed and hasattr(profile, "center"):
-            refine_centre(inner, profile, rm.axis, grid.fine_scale)
+            refine_centre(inner, profile, rm.axes, grid.fine_scale)
         refinement = None
         if lensed and self.adaptive:
             refinement = self._shared_refinement or self._trace_refinement(self._flag(inner))
@@ -315,9 +328,10 @@ class ComponentImages:
         rows, cols = flagged
         per_side = grid.supersampling * ADAPTIVE_FACTOR
         offsets = ((np.arange(per_side) + 0.5) / per_side - 0.5) * grid.pixel_scale
-        first = rm.axis[0] - 0.5 * grid.fine_scale + 0.5 * grid.pixel_scale  # centre of the region's first pixel
-        cx = first + cols * grid.pixel_scale
-        cy = first + rows * grid.pixel_scale
+        to_centre = 0.5 * (grid.pixel_scale - grid.fine_scale)  # from a pixel's first ray to its centre
+        x_axis, y_axis = rm.axes
+        cx = x_axis[0] + to_centre + cols * grid.pixel_scale
+        cy = y_axis[0] + to_centre + rows * grid.pixel_scale
         gx = cx[:, None, None] + offsets[None, None, :]
         gy = cy[:, None, None] + offsets[None, :, None]
         gx, gy = np.broadcast_arrays(gx, gy)

@@ -62,7 +62,7 @@ from ..output.truth import (OBJECT_COLUMNS, image_rows, image_table, line_of_sig
                            subhalo_table, truth_row, truth_table)
 from ..truth.sampler import PopulationSampler
 from ..recipe import Recipe
-from ..truth.streams import field_streams
+from ..truth.streams import FIELD_STREAMS, field_streams
 from ..truth.selection import merge_attrition
 from .rendering import STAGES, rendered_systems
 from .shards import ShardResult, ShardSpec, shard_path
@@ -70,7 +70,6 @@ from .shards import ShardResult, ShardSpec, shard_path
 __all__ = ["render_field", "place_lenses", "region_path", "region_text", "objects_table", "describe_fields",
            "expected_background", "FIELD_STREAMS"]
 
-FIELD_STREAMS = ("layout", "background", "noise")
 REGION_MIN_RADIUS = 2.0  # arcsec
 # GalSim sizes a stamp so that about folding_threshold of the flux falls outside it (default 5e-3).
 # A bright star would then end in a visible square edge, so the threshold is lowered until the lost
@@ -162,7 +161,7 @@ def render_field(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
     conditions = first.bands
     sampler.conditions = conditions
     wcs = cutout_wcs(first.ra, first.dec, scale, size)
-    streams = field_streams(recipe.seed, spec.index, FIELD_STREAMS)
+    streams = field_streams(recipe.seed, spec.index)
     origins = place_lenses(size, stamp, spec.n_systems, streams["layout"])
     timings["sampling"] += time.perf_counter() - t0
 

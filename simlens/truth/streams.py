@@ -14,12 +14,16 @@ from typing import Sequence
 
 import numpy as np
 
-__all__ = ["SYSTEM_STREAMS", "system_streams", "field_streams", "injection_streams", "grid_cell"]
+__all__ = ["SYSTEM_STREAMS", "FIELD_STREAMS", "INJECTION_STREAMS", "system_streams", "field_streams", "injection_streams", "grid_cell"]
 
 # Named random streams of a system; append new names at the end to keep old draws unchanged.
 # "physics" feeds, in code order, the deflector and source geometry, subhalos, placement, lens light,
 # source size and clumps; "observation" the sky position and the noise seeds.
 SYSTEM_STREAMS = ("parameters", "physics", "observation", "negatives")
+# Of a field image: lens places, unlensed background objects, noise (append new names at the end).
+FIELD_STREAMS = ("layout", "background", "noise")
+# Of an injection run: the added electrons' noise, the redshifts of automatically selected lenses.
+INJECTION_STREAMS = ("noise", "lens_redshifts")
 
 
 class _Streams(dict):
@@ -54,18 +58,18 @@ FIELD_TAG = 0x6669656C64  # "field"
 INJECTION_TAG = 0x696E6A656374  # "inject"
 
 
-def field_streams(seed: int, field_index: int, names: Sequence[str]) -> dict[str, np.random.Generator]:
-    """Independent generators for one field image (lens places, background objects, noise), apart
-    from every system's streams; they depend only on ``(seed, field_index)``."""
+def field_streams(seed: int, field_index: int) -> dict[str, np.random.Generator]:
+    """Independent generators for one field image (FIELD_STREAMS), apart from every system's
+    streams; they depend only on ``(seed, field_index)``."""
     root = np.random.SeedSequence(entropy=int(seed), spawn_key=(int(field_index), 0, FIELD_TAG))
-    return _Streams(names, root.generate_state(2 * len(names), np.uint64))
+    return _Streams(FIELD_STREAMS, root.generate_state(2 * len(FIELD_STREAMS), np.uint64))
 
 
-def injection_streams(seed: int, names: Sequence[str]) -> dict[str, np.random.Generator]:
-    """Generators for one injection run (its noise), apart from every system's and field's streams;
-    the injected systems themselves draw from their own system streams."""
+def injection_streams(seed: int) -> dict[str, np.random.Generator]:
+    """Generators for one injection run (INJECTION_STREAMS), apart from every system's and field's
+    streams; the injected systems themselves draw from their own system streams."""
     root = np.random.SeedSequence(entropy=int(seed), spawn_key=(0, 0, INJECTION_TAG))
-    return _Streams(names, root.generate_state(2 * len(names), np.uint64))
+    return _Streams(INJECTION_STREAMS, root.generate_state(2 * len(INJECTION_STREAMS), np.uint64))
 
 
 def grid_cell(system_id: int, grid_sizes: Sequence[int]) -> tuple[int, ...]:
