@@ -1,25 +1,16 @@
 """simlens: synthetic multi-band survey cutouts of galaxy-scale strong gravitational lenses.
 
-The pipeline, one module a stage::
+The pipeline, one package a stage (DEVELOPERS.md has the full map)::
 
-    recipe.py      TOML recipe -> validated, frozen settings (Recipe)
-    population.py  Recipe + system_id -> System (the truth, plain numbers); uses distances.py,
-                   velocity_function.py, scaling_relations.py, photometry.py, galaxies.py,
-                   caustics.py and negatives.py
-    selection.py   candidates redrawn until the selection cuts pass; attrition
-    mass/          deflectors (SIS, SIE, power law, cored, NFW, Sersic, multipoles, subhalos, ...)
-    light.py       surface brightness (Sersic, rings, spiral arms, point sources, sums)
-    raytrace.py    System -> Scene per band (ray map once, lensed source + lens light)
-    observe.py     Scene -> ObservedBand (GalSim PSF, pixel, sky, CCD noise)
-    render.py      System -> RenderedSystem (all bands + measured truth)
-    shard.py       a block of systems rendered and written as one unit of work
-    engines.py     where shards run: this process, worker processes, Dask
-    run_folder.py  manifest, resume, verify
-    output/        shard files, per-system FITS cutouts with WCS, truth catalogue
-    pipeline.py    a whole run into a folder
-    loader.py      (images, truth) batches from a run, for training
-    scoring.py     a finder's completeness, purity and ROC against a run's truth
-    gallery.py     contact sheets and population plots
+    recipe/        TOML recipe -> validated, frozen settings (Recipe)
+    populations/   velocity function, scaling relations, photometry, galaxies, negatives, background
+    truth/         the truth record (System), the array sampler, selection cuts, random streams
+    lensing/       mass models and their registry, multi-plane, caustics, the lens equation
+    imaging/       System -> Scene -> rays -> ObservedBand (GalSim PSF, pixel, sky, CCD noise)
+    output/        the truth schema, shard files, FITS cutouts with WCS, catalogues, manifests
+    runs/          a whole run: shards, fields, engines (processes, Dask), run folder, loader
+    scoring/       a finder's completeness, purity and ROC, on cutouts and on fields
+    cli.py, injection.py (lensed sources in a user's image), gallery.py (contact sheets)
 
 Five lines::
 

@@ -14,7 +14,7 @@ Isothermal lenses in external fields -- a sum of models whose potential is homog
 one about one centre (SIE, isothermal multipoles) and of models with a uniform Hessian (external
 shear, convergence sheet) -- take a closed-form route: along each ray ``det A`` is a quadratic in
 ``1/r`` (linear, since the isothermal Hessian has rank one), so the tangential curve is solved for
-directly at CUT_ANGLES angles, about ten times faster than the scan.  Tests compare both routes.
+directly at CUT_ANGLES angles, with no scan.  Tests compare both routes.
 
 A source is multiply imaged when it lies inside the tangential caustic, the radial caustic or the
 cut (even-odd rule for the tangential caustic, whose cusps may cross the others).  For the SIS the

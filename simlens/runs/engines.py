@@ -11,8 +11,8 @@ finish; the caller records them.  Results never depend on the engine.
   ``LocalCluster`` of ``workers`` single-threaded processes.  Needs ``pip install 'simlens[dask]'``.
   The LocalCluster's workers start without Dask's default ``MALLOC_TRIM_THRESHOLD_=65536``: setting
   it switches off glibc's adaptive mmap threshold, so every large temporary numpy array is a fresh
-  mmap, and simlens's array work ran 2x slower.  Its statistical profiler (sampling every worker
-  thread every 10 ms) is switched off too: it cost about 12 % (both measured with
+  mmap, and simlens's array work runs much slower.  Its statistical profiler (sampling every worker
+  thread every 10 ms) is switched off too (both costs are in the README, from
   bench/bench_parallel.py).  Workers of a cluster you start yourself should be configured the same
   way (``distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_: null`` and
   ``distributed.worker.profile.enabled: false``).

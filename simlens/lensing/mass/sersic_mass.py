@@ -39,7 +39,7 @@ class SersicMass(MassModel):
     integrals J0, J1 (even in x' and y') are tabulated once per model on a grid of ``log rho`` and
     ``atan2(y'/q, x')`` in the first quadrant (``rho^2 = x'^2 + y'^2/q^2``, from 1e-4 to 100 R_e)
     by the same quadrature and interpolated with bicubic splines: relative error below 1e-4 of |alpha|
-    (tests), about twenty times faster (0.1 s per 200k rays, the table included).  Rays beyond the table use the quadrature.
+    (tests), much faster (the README's measured table).  Rays beyond the table use the quadrature.
     The potential is not implemented in closed form (``potential`` integrates numerically per point).
 
     Parameters
