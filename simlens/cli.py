@@ -9,20 +9,24 @@
     simlens inject IMAGE.fits --recipe RECIPE --lenses CATALOG [--psf PSF.fits] [--out DIR]
     simlens gallery RUN_DIR [--where "COLUMN OP VALUE" ...] [--missed SCORES --threshold T] [--sort COLUMN]
 
-User errors print one line (``simlens: error: ...``) and exit with status 2; no traceback.
+Every error prints one line (``simlens: error: ...``), never a traceback unless ``--debug`` is given.
+Exit status: 0 success; 1 a run that failed or a verify that found damage; 2 an input error (a
+recipe, a file, an option, a folder that cannot be used); 130 interrupted (Ctrl-C).
 """
 
 from __future__ import annotations
 
 import argparse
+import os
 import sys
+import traceback
 import warnings
 from pathlib import Path
 
 import numpy as np
 
 from .version import __version__
-from .errors import SimlensError, SimlensWarning
+from .errors import RunError, SimlensError, SimlensWarning, clip
 from .recipe import load_recipe
 
 __all__ = ["main"]
@@ -48,7 +52,7 @@ def _make(args) -> int:
               f"to use them all", file=sys.stderr)
     try:
         summary = run(recipe, out, overwrite=args.overwrite, workers=args.workers, engine=args.engine,
-                      scheduler=args.scheduler, progress=progress)
+                      scheduler=args.scheduler, progress=progress, check_machine=not args.no_resource_check)
     except KeyboardInterrupt:
         print(f"simlens: interrupted; finished shards are kept in {out}: run the same command again to finish",
               file=sys.stderr)
@@ -74,6 +78,13 @@ def _check(args) -> int:
     print(f"  survey {survey.name!r}: bands {', '.join(survey.band_names)} (reference {recipe.reference_band}); "
           f"{survey.cutout_size}x{survey.cutout_size} pixels of {survey.pixel_scale:g} arcsec; "
           f"supersampling {survey.supersampling}")
+    from .runs.resources import available_memory, estimate_resources, size_text
+
+    estimate = estimate_resources(recipe)
+    memory = available_memory()
+    print(f"  resources: {estimate.describe()}" + (f"; {size_text(memory)} of memory free here" if memory else ""))
+    if memory is not None and estimate.memory_per_worker > memory:
+        print(f"  note: more memory than this machine has free: make will refuse; lower {estimate.memory_hint}")
     if recipe.field is not None:
         from .runs.fields import describe_fields
 
@@ -177,6 +188,7 @@ def _inject(args) -> int:
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="simlens", description="Synthetic survey cutouts of strong gravitational lenses.")
     parser.add_argument("--version", action="version", version=f"simlens {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show the Python traceback of an error")
     verbs = parser.add_subparsers(dest="verb", required=True, metavar="{make,check,verify,inject,score,gallery}")
 
     make = verbs.add_parser("make", help="render the systems of a recipe into a run folder")
@@ -190,6 +202,8 @@ def build_parser() -> argparse.ArgumentParser:
                       help="where shards run (default: serial for 1 worker, else processes)")
     make.add_argument("--scheduler", help="address of a running Dask scheduler (implies --engine dask)")
     make.add_argument("--quiet", action="store_true", help="no progress bar")
+    make.add_argument("--no-resource-check", action="store_true",
+                      help="start even where the memory or disk estimate exceeds what this machine has free")
     make.set_defaults(func=_make)
 
     check = verbs.add_parser("check", help="validate a recipe and summarise what would be drawn")
@@ -274,12 +288,35 @@ def main(argv: list[str] | None = None) -> int:
         with warnings.catch_warnings():
             warnings.showwarning = _show_warning
             return args.func(args)
-    except SimlensError as exc:
-        print(f"simlens: error: {exc}", file=sys.stderr)
-        return 2
     except KeyboardInterrupt:
         print("simlens: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # the reader of our output went away (`simlens check ... | head`)
+        try:
+            sys.stdout = open(os.devnull, "w")
+        except OSError:
+            pass
+        return 141
+    except Exception as exc:  # every error is one line; --debug adds the traceback
+        if args.debug:
+            traceback.print_exc()
+        print(f"simlens: error: {_one_line(exc)}", file=sys.stderr)
+        return 2 if isinstance(exc, SimlensError) and not isinstance(exc, RunError) else 1
+
+
+def _one_line(exc: BaseException) -> str:
+    """The message of ``exc`` as one line of bounded length; an error that is not simlens's own
+    says it is one and points to --debug."""
+    if isinstance(exc, SimlensError):
+        return clip(" ".join(str(exc).split()), 600)
+    if isinstance(exc, MemoryError):
+        return ("out of memory; lower survey.supersampling, survey.cutout_size or output.shard_size, "
+                "or use fewer --workers")
+    if isinstance(exc, OSError) and exc.strerror:
+        where = f"{clip(exc.filename, 200)}: " if exc.filename else ""
+        return f"{where}{exc.strerror}"
+    text = clip(" ".join(str(exc).split()), 200)
+    return f"unexpected {type(exc).__name__}: {text} (an error inside simlens; run with --debug for the traceback)"
 
 
 if __name__ == "__main__":  # pragma: no cover

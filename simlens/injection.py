@@ -35,7 +35,7 @@ from astropy.wcs import WCS
 from astropy.wcs.utils import proj_plane_pixel_scales
 from scipy.signal import fftconvolve
 
-from .errors import SimlensError, SimlensWarning
+from .errors import SimlensError, SimlensWarning, clip
 from .output.atomic import atomic_path
 from .output.ownership import confined
 from .imaging.rays import ComponentImages, PixelGrid
@@ -70,7 +70,8 @@ def read_survey_image(path: str | Path, gain: float | None = None, zero_point: f
     if not path.is_file():
         raise SimlensError(f"{path}: no such image")
     try:
-        with fits.open(path) as hdul:
+        with warnings.catch_warnings(), fits.open(path) as hdul:
+            warnings.simplefilter("ignore")  # astropy's warning on a truncated file precedes its error
             hdu = next((h for h in hdul if h.data is not None and getattr(h.data, "ndim", 0) == 2), None)
             if hdu is None:
                 raise SimlensError(f"{path}: no two-dimensional image HDU")
@@ -78,7 +79,14 @@ def read_survey_image(path: str | Path, gain: float | None = None, zero_point: f
     except (OSError, ValueError, TypeError) as exc:  # astropy's reports of a file that is not FITS
         raise SimlensError(f"{path}: not a readable FITS image ({type(exc).__name__}); "
                            "give a FITS file holding the survey image") from None
-    wcs = WCS(header)
+    if not np.isfinite(data).any():
+        raise SimlensError(f"{path}: the image holds no finite pixel (all NaN or infinite); give an image with data")
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # astropy's notes on non-standard keywords
+            wcs = WCS(header)
+    except Exception as exc:  # astropy raises several kinds for a malformed WCS
+        raise SimlensError(f"{path}: the image's WCS cannot be read ({type(exc).__name__}: {clip(exc)})") from None
     if not wcs.has_celestial:
         raise SimlensError(f"{path}: the image has no celestial WCS (CTYPE/CRVAL/CRPIX/CD keywords); "
                            "injection needs sky positions")
@@ -90,9 +98,15 @@ def read_survey_image(path: str | Path, gain: float | None = None, zero_point: f
         if given is not None:
             values[key] = float(given)
         elif key in header:
-            values[key] = float(header[key])
+            try:
+                values[key] = float(header[key])
+            except (TypeError, ValueError):
+                raise SimlensError(f"{path}: header {key} is not a number ({clip(repr(header[key]))}); "
+                                   f"give it with {option}") from None
         else:
             raise SimlensError(f"{path}: header has no {key}; give it with {option}")
+        if not math.isfinite(values[key]):
+            raise SimlensError(f"{path}: {key} must be finite, got {values[key]}; give it with {option}")
     if not values["GAIN"] > 0:
         raise SimlensError(f"{path}: gain must be > 0, got {values['GAIN']}")
     return SurveyImage(path=path, data=data, header=header, wcs=wcs, pixel_scale=float(scales.mean()),
@@ -105,12 +119,46 @@ def read_lens_catalogue(path: str | Path) -> Table:
     path = Path(path)
     if not path.is_file():
         raise SimlensError(f"{path}: no such lens catalogue")
-    table = Table.read(path, format="ascii.csv") if path.suffix.lower() == ".csv" else Table.read(path)
+    try:
+        table = Table.read(path, format="ascii.csv") if path.suffix.lower() == ".csv" else Table.read(path)
+    except Exception as exc:  # astropy raises many kinds for unreadable tables
+        raise SimlensError(f"{path}: cannot be read as a table ({type(exc).__name__}: {clip(exc)})") from None
     missing = [c for c in ("ra", "dec", "z_lens", "velocity_dispersion") if c not in table.colnames]
     if missing:
         raise SimlensError(f"{path}: missing column(s) {', '.join(missing)} (a lens needs ra, dec, z_lens and "
-                           "velocity_dispersion; automatic selection of lens galaxies is not available yet)")
+                           "velocity_dispersion; or pass --lenses auto to select lens galaxies in the image)")
+    if len(table) == 0:
+        raise SimlensError(f"{path}: holds no lenses")
+    for column, low, high, unit in _CATALOGUE_RANGES:
+        if column not in table.colnames:
+            continue
+        try:
+            values = np.asarray(table[column].filled(np.nan) if hasattr(table[column], "filled") else table[column],
+                                dtype=float)
+        except (TypeError, ValueError):
+            raise SimlensError(f"{path}: column {column} must hold numbers") from None
+        bad = ~(np.isfinite(values) & (values >= low) & (values <= high)) | (values == 0) & (low == 0)
+        if bad.any():
+            row = int(np.flatnonzero(bad)[0])
+            raise SimlensError(f"{path}: row {row + 1} (lens {row}): {column} = {values[row]:g} is not in "
+                               f"{'(' if low == 0 else '['}{low:g}, {high:g}]{unit}; fix or remove the row")
     return table
+
+
+# Accepted catalogue values: (column, low, high, unit); a low of 0 is open (a positive value).
+_CATALOGUE_RANGES = (("ra", -360.0, 360.0, " deg"), ("dec", -90.0, 90.0, " deg"), ("z_lens", 0.0, 10.0, ""),
+                     ("velocity_dispersion", 0.0, 2000.0, " km/s"), ("mass_q", 0.0, 1.0, ""),
+                     ("mass_angle", -360.0, 360.0, " deg"))
+
+
+def _check_on_image(path, lenses: Table, positions: list, shape: tuple) -> None:
+    """Every lens of a catalogue lies on the image (its centre inside the pixel grid)."""
+    ny, nx = shape
+    for index, (px, py) in enumerate(positions):
+        if not (-0.5 <= px < nx - 0.5 and -0.5 <= py < ny - 0.5):
+            raise SimlensError(f"{path}: row {index + 1} (lens {index}) at ra {float(lenses['ra'][index]):.5f}, "
+                               f"dec {float(lenses['dec'][index]):.5f} falls outside the image (pixel "
+                               f"{px:.0f}, {py:.0f} of {nx} x {ny}); remove it from the catalogue")
 
 
 def select_lens_galaxies(image: SurveyImage, recipe: Recipe, band: str, psf_fwhm_arcsec: float,
@@ -336,17 +384,19 @@ def inject(image_path: str | Path, recipe: Recipe, lenses_path: str | Path, *, o
     if band not in recipe.survey.band_names:
         raise SimlensError(f"band {band!r} is not in the recipe ({', '.join(recipe.survey.band_names)})")
     out = Path(out)
-    _claim_output_folder(out, overwrite)
+    automatic = str(lenses_path) == "auto"
+    lenses = select_lens_galaxies(image, recipe, band, _recipe_fwhm(recipe, band)) if automatic else \
+        read_lens_catalogue(lenses_path)
+    positions = [tuple(float(v) for v in image.wcs.celestial.world_to_pixel_values(float(r["ra"]), float(r["dec"])))
+                 for r in lenses]
+    if not automatic:
+        _check_on_image(lenses_path, lenses, positions, image.data.shape)
+    _claim_output_folder(out, overwrite)  # nothing is written before the inputs pass
     files: list = []
-    if str(lenses_path) == "auto":
-        lenses = select_lens_galaxies(image, recipe, band, _recipe_fwhm(recipe, band))
+    if automatic:
         with atomic_path(out / "lenses_selected.ecsv") as tmp:
             lenses.write(tmp, format="ascii.ecsv")
         files.append("lenses_selected.ecsv")
-    else:
-        lenses = read_lens_catalogue(lenses_path)
-    positions = [tuple(float(v) for v in image.wcs.celestial.world_to_pixel_values(float(r["ra"]), float(r["dec"])))
-                 for r in lenses]
     kernel = _psf_kernel(psf_path, recipe, band, image.pixel_scale, image, exclude=positions)
     if psf_path == "stars":
         with atomic_path(out / "psf.fits") as tmp:

@@ -48,7 +48,7 @@ MALFORMED = [
      ["unknown key"]),
     (edit("seed = 42", "seed = -1"), "seed", ["out of range"]),
     (SMALL_RECIPE + "\n[lens]\n", "", ["not valid TOML"]),
-    (edit("[survey.bands.g]\nzero_point = 26.6\n", "[survey.bands.g]\n"), "survey.bands.g.zero_point", ["missing"]),
+    (edit("[survey.bands.g]\nzero_point = 26.6\n", "[survey.bands.g]\n"), "survey.bands.g.zero_point", ["required"]),
     # physical populations
     (edit_physical("[lens.population]\n", "[lens.population]\nredshift = 0.5\n"), "lens.population.redshift",
      ["unknown key"]),

@@ -111,7 +111,7 @@ def test_full_disk_keeps_finished_shards_and_resume_finishes_identically(referen
     with pytest.raises(SimlensError, match="No space left on device.*finished shards are kept"):
         simlens.run(recipe, tmp_path / "run")
     manifest = json.loads((tmp_path / "run" / "manifest.json").read_text())
-    assert manifest["status"] == "running" and sorted(manifest["shards"]) == ["0", "1"]
+    assert manifest["status"] == "failed" and "No space" in manifest["failure"] and sorted(manifest["shards"]) == ["0", "1"]
     report = simlens.verify_run(tmp_path / "run")
     assert not report.ok and report.missing == (2, 3) and not report.damaged
     monkeypatch.setattr(shard_module, "write_shard", real)

@@ -88,7 +88,7 @@ def test_impossible_cut_gives_a_clear_error(tmp_path):
 def test_impossible_cut_through_the_cli(tmp_path, capsys):
     path = tmp_path / "impossible.toml"
     path.write_text(with_selection("[selection]\neinstein_radius = [40.0, 50.0]\nmax_candidates = 30\n"))
-    assert main(["make", str(path), "--out", str(tmp_path / "run"), "--quiet"]) == 2
+    assert main(["make", str(path), "--out", str(tmp_path / "run"), "--quiet"]) == 1  # a run that started and failed
     err = capsys.readouterr().err
     assert "none of 30 candidates" in err and "Traceback" not in err
 

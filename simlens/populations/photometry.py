@@ -33,6 +33,7 @@ from pathlib import Path
 
 import numpy as np
 from scipy.integrate import trapezoid as _trapezoid
+from ..errors import clip
 
 __all__ = ["Filter", "Template", "KCorrection", "kcorrection", "TEMPLATES", "load_filter", "ab_magnitude_offset",
            "galsim_filter_names"]
@@ -79,9 +80,14 @@ def load_filter(spec: str, base_folder: str = ".") -> Filter:
     else:
         path = Path(spec) if os.path.isabs(spec) else Path(base_folder) / spec
         if not path.is_file():
-            raise FileNotFoundError(f"filter {spec!r}: no GalSim filter of that name "
-                                    f"({', '.join(galsim_filter_names())}) and no file {path}")
-    data = np.loadtxt(path, comments="#")
+            raise FileNotFoundError(f"filter {clip(repr(spec))}: no GalSim filter of that name "
+                                    f"({', '.join(galsim_filter_names())}) and no file {clip(str(path), 200)}")
+    try:
+        data = np.loadtxt(path, comments="#", ndmin=2)
+    except (ValueError, UnicodeDecodeError):
+        # never quote the file: it may be any file the recipe names
+        raise ValueError(f"filter file {clip(str(path), 200)}: not two columns of numbers (nm, throughput) "
+                         f"on every line") from None
     if data.ndim != 2 or data.shape[1] < 2 or data.shape[0] < 3:
         raise ValueError(f"filter file {path}: expected two columns (nm, throughput), got shape {data.shape}")
     wavelength, throughput = data[:, 0], np.clip(data[:, 1], 0.0, None)

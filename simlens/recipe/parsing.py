@@ -6,6 +6,7 @@ from __future__ import annotations
 import dataclasses
 import difflib
 import math
+import re
 import tomllib
 from pathlib import Path
 from typing import Any, Mapping
@@ -36,6 +37,10 @@ def parse_recipe(raw: str, origin: str = "<recipe>", default_name: str = "simlen
         data = tomllib.loads(raw)
     except tomllib.TOMLDecodeError as exc:
         raise RecipeError(origin, "", f"is not valid TOML: {exc}") from None
+    except RecursionError:
+        raise RecipeError(origin, "", "is nested too deeply to be read",
+                          "tables and arrays a few levels deep, as in recipes/demo.toml") from None
+    _check_finite(origin, data, "")
     data = dict(data)
     data.setdefault("name", default_name)
     recipe = _build(Recipe, data, origin, "")
@@ -45,6 +50,23 @@ def parse_recipe(raw: str, origin: str = "<recipe>", default_name: str = "simlen
 
 
 _INTERNAL_FIELDS = {"source_text", "origin"}
+_MAX_DEPTH = 8  # the schema's deepest key is four tables down; anything deeper is not a recipe
+
+
+def _check_finite(origin: str, value: Any, path: str, depth: int = 0) -> None:
+    """Every number in a recipe is finite (TOML allows nan and inf), and nothing nests deeper than
+    the schema does; the first offender is named by its key path."""
+    if depth > _MAX_DEPTH:
+        raise RecipeError(origin, path, "is nested too deeply", "tables and arrays as in recipes/demo.toml")
+    if isinstance(value, float) and not math.isfinite(value):
+        raise RecipeError(origin, path or "(top level)", f"must be a finite number, got {value!r}",
+                          "a finite number")
+    if isinstance(value, Mapping):
+        for key, item in value.items():
+            _check_finite(origin, item, f"{path}.{key}" if path else str(key), depth + 1)
+    elif isinstance(value, list):
+        for i, item in enumerate(value):
+            _check_finite(origin, item, f"{path}[{i}]", depth + 1)
 
 
 def _build(cls, data: Any, origin: str, prefix: str):
@@ -65,8 +87,12 @@ def _build(cls, data: Any, origin: str, prefix: str):
         if name not in data:
             if f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING:
                 if kind == "bands":
-                    raise RecipeError(origin, path, "is missing", "at least one [survey.bands.NAME] table")
-                raise RecipeError(origin, path, "is missing", f.metadata.get("doc", ""))
+                    raise RecipeError(origin, path, "required", "at least one [survey.bands.NAME] table")
+                unit = f.metadata.get("unit")
+                raise RecipeError(origin, path, "required", f.metadata.get("doc", "") + (f", {unit}" if unit else ""))
+            if kind == "table" and f.default_factory is not dataclasses.MISSING:
+                # an absent table takes its defaults, and names any key it cannot do without
+                values[name] = _build(f.metadata["cls"], {}, origin, path + ".")
             continue
         value = data[name]
         if kind == "parameter":
@@ -92,14 +118,20 @@ def _build(cls, data: Any, origin: str, prefix: str):
     return cls(**values)
 
 
+_BAND_NAME_MAX = 16
+_BAND_NAME = re.compile(rf"[A-Za-z0-9][A-Za-z0-9_-]{{0,{_BAND_NAME_MAX - 1}}}")
+
+
 def _parse_bands(origin: str, path: str, value: Any) -> tuple:
     if not isinstance(value, Mapping) or not value:
         raise RecipeError(origin, path, f"must hold one table per band, got {shown(value)}",
                           "[survey.bands.g], [survey.bands.r], ...")
     bands = []
     for band_name, band_data in value.items():
-        if not band_name.replace("_", "").replace("-", "").isalnum():
-            raise RecipeError(origin, f"{path}.{band_name}", "band names must be letters, digits, '_' or '-'")
+        if not _BAND_NAME.fullmatch(band_name):
+            # band names become FITS column names (arc_snr_<band>, ...) and header values
+            raise RecipeError(origin, f"{path}.{shown(band_name)}", "is not a usable band name",
+                              f"1 to {_BAND_NAME_MAX} ASCII letters, digits, '_' or '-'")
         band = _build(BandSettings, band_data, origin, f"{path}.{band_name}.")
         bands.append(dataclasses.replace(band, name=band_name))
     return tuple(bands)

@@ -141,19 +141,20 @@ def band_colors(*, doc: str = ""):
 class PsfSettings:
     profile: str = text("moffat", choices=("moffat", "kolmogorov"),
                         doc="PSF shape: Moffat (with beta) or Kolmogorov")
-    fwhm: Parameter = parameter(low=0, low_open=True, unit="arcsec", doc="PSF full width at half maximum")
-    beta: Parameter = parameter(3.0, low=1.1, low_open=True, doc="Moffat beta (ignored for kolmogorov)")
+    fwhm: Parameter = parameter(low=0.01, high=10, unit="arcsec", doc="PSF full width at half maximum")
+    beta: Parameter = parameter(3.0, low=1.1, low_open=True, high=50, doc="Moffat beta (ignored for kolmogorov)")
 
 
 @dataclass(frozen=True, kw_only=True)
 class BandSettings:
-    zero_point: Parameter = parameter(low=0, low_open=True, unit="mag",
+    zero_point: Parameter = parameter(low=10, high=40, unit="mag",
                                       doc="AB magnitude of a source giving 1 electron per second")
-    sky_brightness: Parameter = parameter(low=0, low_open=True, unit="mag/arcsec^2",
+    sky_brightness: Parameter = parameter(low=10, high=32, unit="mag/arcsec^2",
                                           doc="sky surface brightness (AB)")
-    exposure_time: Parameter = parameter(low=0, low_open=True, unit="s", doc="total exposure time")
-    gain: Parameter = parameter(low=0, low_open=True, unit="electron/adu", doc="detector gain")
-    read_noise: Parameter = parameter(0.0, low=0, unit="electron", doc="read noise per pixel (all exposures)")
+    exposure_time: Parameter = parameter(low=0, low_open=True, high=1e7, unit="s", doc="total exposure time")
+    gain: Parameter = parameter(low=0.01, high=1000, unit="electron/adu", doc="detector gain")
+    read_noise: Parameter = parameter(0.0, low=0, high=1000, unit="electron",
+                                      doc="read noise per pixel (all exposures)")
     psf: PsfSettings = table(PsfSettings, doc="point-spread function")
     filter: str = text(optional=True, doc="filter curve: a GalSim filter name (e.g. 'LSST_r') or a file "
                                           "of 'nm throughput' lines, relative to the recipe; needed "
@@ -164,7 +165,7 @@ class BandSettings:
 @dataclass(frozen=True, kw_only=True)
 class SurveySettings:
     name: str = text("unnamed survey", doc="survey name, copied to outputs")
-    pixel_scale: float = number(low=0, low_open=True, unit="arcsec/pixel", doc="pixel scale")
+    pixel_scale: float = number(low=0.005, high=5, unit="arcsec/pixel", doc="pixel scale")
     cutout_size: int = number(64, low=8, high=4096, integer=True, unit="pixel", doc="cutout side")
     supersampling: int = number(4, low=1, high=32, integer=True,
                                 doc="rays per pixel side for the lensed scene")
@@ -187,10 +188,10 @@ class SurveySettings:
 @dataclass(frozen=True, kw_only=True)
 class CosmologySettings:
     name: str = text(optional=True, doc="an astropy realisation, e.g. Planck18")
-    H0: float = number(optional=True, low=0, low_open=True, unit="km/s/Mpc", doc="Hubble constant")
+    H0: float = number(optional=True, low=20, high=200, unit="km/s/Mpc", doc="Hubble constant")
     Om0: float = number(optional=True, low=0, high=2, doc="matter density today")
     Ode0: float = number(optional=True, low=-1, high=3, doc="dark-energy density (omit for flat)")
-    Tcmb0: float = number(0.0, low=0, unit="K", doc="CMB temperature")
+    Tcmb0: float = number(0.0, low=0, high=10, unit="K", doc="CMB temperature")
 
     def build(self):
         from ..cosmology import flat_or_curved_cosmology, named_cosmology
@@ -215,10 +216,10 @@ MASS_MODELS = tuple(LENS_MODELS)  # the registry of simlens.lensing.lens_models
 class MassSettings:
     model: str = text("sie", choices=MASS_MODELS, doc="mass profile of the lens galaxies")
     q: Parameter = parameter(0.8, low=0, low_open=True, high=1, doc="mass axis ratio")
-    angle: Parameter = parameter(0.0, unit="deg", doc="major-axis angle, CCW from +x")
+    angle: Parameter = parameter(0.0, low=-360, high=360, unit="deg", doc="major-axis angle, CCW from +x")
     slope: Parameter = parameter(2.0, low=1, low_open=True, high=3, high_open=True,
                                  doc="3D density slope (power_law; 2 = isothermal)")
-    core_radius: Parameter = parameter(0.05, low=0, low_open=True, unit="arcsec",
+    core_radius: Parameter = parameter(0.05, low=0, low_open=True, high=10, unit="arcsec",
                                        doc="core radius (cored_isothermal)")
     halo_mass: Parameter = parameter(optional=True, low=1e9, high=1e16, unit="M_sun",
                                      doc="NFW halo M200 (stars_and_halo: Sersic stars following the light + NFW)")
@@ -231,21 +232,21 @@ class MassSettings:
 @dataclass(frozen=True, kw_only=True)
 class MultipoleSettings:
     m3_strength: Parameter = parameter(0.0, low=-0.2, high=0.2, doc="m = 3 multipole amplitude a_3")
-    m3_angle: Parameter = parameter(0.0, unit="deg", doc="m = 3 angle, relative to the mass major axis")
+    m3_angle: Parameter = parameter(0.0, low=-360, high=360, unit="deg", doc="m = 3 angle, relative to the mass major axis")
     m4_strength: Parameter = parameter(0.0, low=-0.2, high=0.2, doc="m = 4 multipole amplitude a_4")
-    m4_angle: Parameter = parameter(0.0, unit="deg",
+    m4_angle: Parameter = parameter(0.0, low=-360, high=360, unit="deg",
                                     doc="m = 4 angle relative to the mass major axis (0 disky, 45 boxy)")
 
 
 @dataclass(frozen=True, kw_only=True)
 class SubhaloSettings:
     count: Parameter = parameter(0, low=0, high=1000, integer=True, doc="subhalos per lens")
-    mass_min: float = number(1e6, low=0, low_open=True, unit="M_sun", doc="lightest subhalo")
-    mass_max: float = number(1e10, low=0, low_open=True, unit="M_sun", doc="heaviest subhalo")
+    mass_min: float = number(1e6, low=1e3, high=1e13, unit="M_sun", doc="lightest subhalo")
+    mass_max: float = number(1e10, low=1e3, high=1e13, unit="M_sun", doc="heaviest subhalo")
     mass_function_slope: float = number(-1.9, low=-3, high=-1.01,
                                         doc="dN/dm ~ m^slope (-1.9: Springel et al. 2008, from memory)")
-    annulus: Parameter = parameter(0.5, low=0, doc="inner radius of the placement annulus, in Einstein radii")
-    annulus_outer: Parameter = parameter(1.5, low=0, low_open=True,
+    annulus: Parameter = parameter(0.5, low=0, high=20, doc="inner radius of the placement annulus, in Einstein radii")
+    annulus_outer: Parameter = parameter(1.5, low=0, low_open=True, high=20,
                                          doc="outer radius of the placement annulus, in Einstein radii")
 
 
@@ -255,15 +256,15 @@ class LineOfSightSettings:
                                  doc="SIS galaxies along the line of sight, each in its own lens plane")
     velocity_dispersion: Parameter = parameter(100.0, low=10, high=500, unit="km/s",
                                                doc="their velocity dispersions (drawn for each)")
-    radius: float = number(8.0, low=0, low_open=True, unit="arcsec",
+    radius: float = number(8.0, low=0, low_open=True, high=120, unit="arcsec",
                            doc="they fall uniformly in a disc of this radius around the lens")
-    redshift_min: float = number(0.02, low=0, low_open=True, doc="nearest redshift; the farthest is the source's")
+    redshift_min: float = number(0.02, low=0, low_open=True, high=10, doc="nearest redshift; the farthest is the source's")
 
 
 @dataclass(frozen=True, kw_only=True)
 class ShearSettings:
     gamma: Parameter = parameter(0.0, low=0, high=0.5, doc="external shear strength")
-    angle: Parameter = parameter(0.0, unit="deg", doc="shear angle, CCW from +x")
+    angle: Parameter = parameter(0.0, low=-360, high=360, unit="deg", doc="shear angle, CCW from +x")
 
 
 VELOCITY_FUNCTION_NAMES = tuple(VELOCITY_FUNCTIONS)  # simlens.populations.velocity_function
@@ -296,7 +297,7 @@ class LensLightScalingSettings:
     plane_scatter: float = number(0.1, low=0, high=1, doc="scatter of log10 R_e (dex)")
     q_scatter: float = number(0.1, low=0, high=1, doc="light axis ratio = mass axis ratio + N(0, this)")
     angle_scatter: float = number(10.0, low=0, high=90, unit="deg", doc="light angle = mass angle + N(0, this)")
-    mass_to_light: float = number(optional=True, low=0, low_open=True,
+    mass_to_light: float = number(optional=True, low=0, low_open=True, high=100,
                                   doc="stellar M/L in the rest filter (M_sun/L_sun), for the stellar-mass truth")
 
 
@@ -304,19 +305,19 @@ class LensLightScalingSettings:
 class LensLightSettings:
     magnitude: Parameter = parameter(optional=True, low=0, high=40, unit="mag", doc="AB magnitude in the reference band")
     colors: dict = band_colors(doc="m_band - m_reference for each other band")
-    half_light_radius: Parameter = parameter(optional=True, low=0, low_open=True, unit="arcsec",
+    half_light_radius: Parameter = parameter(optional=True, low=0, low_open=True, high=30, unit="arcsec",
                                              doc="circularised R_e")
     scaling: LensLightScalingSettings = table(LensLightScalingSettings, optional=True,
                                               doc="luminosity, size and colours from the velocity dispersion "
                                                   "(Faber-Jackson, fundamental plane, a template)")
     sersic_index: Parameter = parameter(4.0, low=0.3, high=8.0, doc="Sersic n")
     q: Parameter = parameter(0.8, low=0, low_open=True, high=1, doc="light axis ratio")
-    angle: Parameter = parameter(0.0, unit="deg", doc="light major-axis angle, CCW from +x")
+    angle: Parameter = parameter(0.0, low=-360, high=360, unit="deg", doc="light major-axis angle, CCW from +x")
 
 
 @dataclass(frozen=True, kw_only=True)
 class LensSettings:
-    redshift: Parameter = parameter(optional=True, low=0, low_open=True, doc="lens redshift")
+    redshift: Parameter = parameter(optional=True, low=0, low_open=True, high=10, doc="lens redshift")
     velocity_dispersion: Parameter = parameter(optional=True, low=0, low_open=True, high=2000, unit="km/s",
                                                doc="stellar velocity dispersion (sets the Einstein radius)")
     population: DeflectorPopulationSettings = table(DeflectorPopulationSettings, optional=True,
@@ -336,7 +337,7 @@ class SourceCountsSettings:
     band: str = text(optional=True, doc="band of the counts and magnitude range (default: reference band)")
     magnitude_range: tuple = interval((20.0, 26.0), low=5.0, high=35.0, unit="mag", doc="unlensed magnitudes")
     redshift_range: tuple = interval((0.2, 5.0), low=0.0, high=7.0, doc="source redshifts")
-    density: float = number(46.0, low=0, low_open=True, unit="arcmin^-2",
+    density: float = number(46.0, low=0, low_open=True, high=10_000, unit="arcmin^-2",
                             doc="N(< pivot) (default: LSST Science Book 2009, i band, from memory)")
     pivot: float = number(25.0, low=5, high=35, unit="mag", doc="pivot magnitude of the counts")
     slope: float = number(0.31, low=0.01, high=1.0, doc="N(<m) ~ 10^(slope m)")
@@ -367,12 +368,14 @@ class SourcePositionSettings:
     region_radius_in_einstein_radii: float = number(
         1.3, low=1.0, high=10, doc="lens mode: radius of the placement disc; it must hold the caustics "
                                    "(widened, and flagged in the truth, where they reach farther)")
-    density: float = number(optional=True, low=0, low_open=True, unit="arcmin^-2",
+    density: float = number(optional=True, low=0, low_open=True, high=10_000, unit="arcmin^-2",
                             doc="sky mode: source density (default: from source.counts)")
     radius_in_einstein_radii: Parameter = parameter(
-        optional=True, low=0, doc="uniform in area inside this many Einstein radii of the lens centre")
-    x: Parameter = parameter(optional=True, unit="arcsec", doc="source-plane x offset from the lens centre")
-    y: Parameter = parameter(optional=True, unit="arcsec", doc="source-plane y offset from the lens centre")
+        optional=True, low=0, high=20, doc="uniform in area inside this many Einstein radii of the lens centre")
+    x: Parameter = parameter(optional=True, low=-100, high=100, unit="arcsec",
+                             doc="source-plane x offset from the lens centre")
+    y: Parameter = parameter(optional=True, low=-100, high=100, unit="arcsec",
+                             doc="source-plane y offset from the lens centre")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -380,9 +383,9 @@ class ClumpSettings:
     count: Parameter = parameter(0, low=0, high=50, integer=True, doc="number of star-forming clumps")
     flux_fraction: Parameter = parameter(0.2, low=0, high=1, high_open=True,
                                          doc="fraction of the source flux in all clumps together")
-    half_light_radius: Parameter = parameter(0.08, low=0, low_open=True, unit="arcsec",
+    half_light_radius: Parameter = parameter(0.08, low=0, low_open=True, high=5, unit="arcsec",
                                              doc="clump half-light radius (Gaussian clumps)")
-    spread: Parameter = parameter(1.0, low=0, low_open=True,
+    spread: Parameter = parameter(1.0, low=0, low_open=True, high=10,
                                   doc="clump offsets: Gaussian sigma in units of the source R_e")
     colors: dict = band_colors(doc="clump colours, m_band - m_reference (default: the source's)")
     template: str = text(optional=True, choices=TEMPLATE_NAMES,
@@ -391,14 +394,14 @@ class ClumpSettings:
 
 @dataclass(frozen=True, kw_only=True)
 class SecondSourceSettings:
-    redshift: Parameter = parameter(low=0, low_open=True, doc="redshift of the second source (behind the first)")
+    redshift: Parameter = parameter(low=0, low_open=True, high=12, doc="redshift of the second source (behind the first)")
     magnitude: Parameter = parameter(low=0, high=40, unit="mag", doc="unlensed AB magnitude, reference band")
     colors: dict = band_colors(doc="m_band - m_reference (default: the first source's disk colours)")
-    half_light_radius: Parameter = parameter(0.2, low=0, low_open=True, unit="arcsec", doc="circularised R_e")
+    half_light_radius: Parameter = parameter(0.2, low=0, low_open=True, high=30, unit="arcsec", doc="circularised R_e")
     sersic_index: Parameter = parameter(1.0, low=0.3, high=8.0, doc="Sersic n")
     q: Parameter = parameter(0.7, low=0, low_open=True, high=1, doc="axis ratio")
-    angle: Parameter = parameter(0.0, unit="deg", doc="major-axis angle, CCW from +x")
-    radius_in_einstein_radii: Parameter = parameter(1.0, low=0, doc="uniform in area inside this many "
+    angle: Parameter = parameter(0.0, low=-360, high=360, unit="deg", doc="major-axis angle, CCW from +x")
+    radius_in_einstein_radii: Parameter = parameter(1.0, low=0, high=20, doc="uniform in area inside this many "
                                                     "Einstein radii (for this source) of the lens centre")
     deflector_velocity_dispersion: Parameter = parameter(
         0.0, low=0, high=500, unit="km/s",
@@ -407,11 +410,11 @@ class SecondSourceSettings:
 
 @dataclass(frozen=True, kw_only=True)
 class SourceSettings:
-    redshift: Parameter = parameter(optional=True, low=0, low_open=True, doc="source redshift")
+    redshift: Parameter = parameter(optional=True, low=0, low_open=True, high=12, doc="source redshift")
     magnitude: Parameter = parameter(optional=True, low=0, high=40, unit="mag",
                                      doc="unlensed AB magnitude, reference band")
     colors: dict = band_colors(doc="m_band - m_reference for each other band")
-    half_light_radius: Parameter = parameter(optional=True, low=0, low_open=True, unit="arcsec",
+    half_light_radius: Parameter = parameter(optional=True, low=0, low_open=True, high=30, unit="arcsec",
                                              doc="circularised R_e")
     counts: SourceCountsSettings = table(SourceCountsSettings, optional=True,
                                          doc="magnitudes, redshifts, sizes and colours from published "
@@ -421,21 +424,21 @@ class SourceSettings:
                                          doc="a second source plane behind the first (double source plane lens)")
     sersic_index: Parameter = parameter(1.0, low=0.3, high=8.0, doc="Sersic n")
     q: Parameter = parameter(0.7, low=0, low_open=True, high=1, doc="axis ratio")
-    angle: Parameter = parameter(0.0, unit="deg", doc="major-axis angle, CCW from +x")
+    angle: Parameter = parameter(0.0, low=-360, high=360, unit="deg", doc="major-axis angle, CCW from +x")
     position: SourcePositionSettings = table(SourcePositionSettings, doc="where the source lies")
     clumps: ClumpSettings = table(ClumpSettings, doc="compact star-forming knots")
 
 
 @dataclass(frozen=True, kw_only=True)
 class SelectionSettings:
-    einstein_radius: tuple = interval(optional=True, low=0, unit="arcsec", doc="accepted Einstein radii")
+    einstein_radius: tuple = interval(optional=True, low=0, high=100, unit="arcsec", doc="accepted Einstein radii")
     resolvable: bool = flag(False, doc="theta_E^2 > r_source^2 + (FWHM/2)^2 in the reference band "
                                        "(a common rule of survey forecasts, from memory)")
     multiply_imaged: bool = flag(False, doc="the source centre lies inside a caustic")
-    min_magnification: float = number(optional=True, low=0, doc="minimum extended-source magnification")
+    min_magnification: float = number(optional=True, low=0, high=10_000, doc="minimum extended-source magnification")
     min_images: int = number(optional=True, low=1, high=10, integer=True,
                              doc="minimum number of images of the source centre in the cutout")
-    min_arc_snr: float = number(optional=True, low=0, doc="minimum arc S/N in arc_snr_band")
+    min_arc_snr: float = number(optional=True, low=0, high=1e6, doc="minimum arc S/N in arc_snr_band")
     arc_snr_band: str = text(optional=True, doc="band of min_arc_snr (default: reference band)")
     enforce: bool = flag(True, doc="true: redraw systems until they pass; false: only flag them in the truth")
     max_candidates: int = number(2000, low=1, high=10_000_000, integer=True,
@@ -462,12 +465,12 @@ class SelectionSettings:
 @dataclass(frozen=True, kw_only=True)
 class NegativeSettings:
     fraction: float = number(0.0, low=0, high=1, doc="fraction of the systems made non-lenses")
-    unlensed_source: float = number(1.0, low=0, doc="weight: the source unlensed, behind or beside the galaxy")
-    ring_galaxy: float = number(1.0, low=0, doc="weight: a blue star-forming ring around the galaxy")
-    spiral_arms: float = number(1.0, low=0, doc="weight: blue spiral arms around the galaxy")
-    tidal_features: float = number(1.0, low=0, doc="weight: red shells or streams, sometimes a merging companion")
-    edge_on_disk: float = number(1.0, low=0, doc="weight: a blue edge-on disk next to the galaxy")
-    blue_companions: float = number(1.0, low=0, doc="weight: compact blue galaxies near the galaxy")
+    unlensed_source: float = number(1.0, low=0, high=1e6, doc="weight: the source unlensed, behind or beside the galaxy")
+    ring_galaxy: float = number(1.0, low=0, high=1e6, doc="weight: a blue star-forming ring around the galaxy")
+    spiral_arms: float = number(1.0, low=0, high=1e6, doc="weight: blue spiral arms around the galaxy")
+    tidal_features: float = number(1.0, low=0, high=1e6, doc="weight: red shells or streams, sometimes a merging companion")
+    edge_on_disk: float = number(1.0, low=0, high=1e6, doc="weight: a blue edge-on disk next to the galaxy")
+    blue_companions: float = number(1.0, low=0, high=1e6, doc="weight: compact blue galaxies near the galaxy")
 
     def weights(self) -> dict:
         from ..populations.negatives import NEGATIVE_CLASSES
@@ -482,16 +485,16 @@ class FieldGalaxySettings:
     magnitude_range: tuple = interval((18.0, 25.5), low=5.0, high=35.0, unit="mag",
                                       doc="magnitudes of the background galaxies in the counts band")
     redshift_range: tuple = interval((0.02, 4.0), low=0.0, high=7.0, doc="their redshifts")
-    density: float = number(46.0, low=0, unit="arcmin^-2",
+    density: float = number(46.0, low=0, high=10_000, unit="arcmin^-2",
                             doc="N(< pivot); 0: no galaxies (default: LSST Science Book 2009, i band, from memory)")
     pivot: float = number(25.0, low=5, high=35, unit="mag", doc="pivot magnitude of the counts")
     slope: float = number(0.31, low=0.01, high=1.0, doc="N(<m) ~ 10^(slope m)")
     early_type_fraction: float = number(0.2, low=0, high=1,
                                         doc="share of early types (de Vaucouleurs, elliptical template); "
                                             "illustrative, from memory")
-    max_half_light_radius: float = number(5.0, low=0, low_open=True, unit="arcsec",
+    max_half_light_radius: float = number(5.0, low=0, low_open=True, high=60, unit="arcsec",
                                           doc="sizes are capped here (the brightest nearby galaxies)")
-    lens_clearance: float = number(2.5, low=0, unit="Einstein radii",
+    lens_clearance: float = number(2.5, low=0, high=100, unit="Einstein radii",
                                    doc="no background galaxy centre this close to a lens (it would be lensed)")
 
 
@@ -499,7 +502,7 @@ class FieldGalaxySettings:
 class FieldStarSettings:
     magnitude_range: tuple = interval((16.0, 25.5), low=5.0, high=35.0, unit="mag",
                                       doc="magnitudes of the stars in the reference band")
-    density: float = number(0.4, low=0, unit="arcmin^-2",
+    density: float = number(0.4, low=0, high=10_000, unit="arcmin^-2",
                             doc="N(< pivot); 0: no stars (illustrative high-latitude value, from memory)")
     pivot: float = number(21.0, low=5, high=35, unit="mag", doc="pivot magnitude of the star counts")
     slope: float = number(0.12, low=0.01, high=1.0,
@@ -529,7 +532,7 @@ class OutputSettings:
                              doc="systems per shard file (the unit of parallel work and of resuming)")
     per_system_files: bool = flag(False, doc="also write one FITS file per system (for looking at)")
     noiseless: bool = flag(True, doc="write the noiseless lensed-source and lens-light planes in shards")
-    mask_threshold: float = number(1.0, low=0, low_open=True,
+    mask_threshold: float = number(1.0, low=0, low_open=True, high=1e6,
                                    doc="mask pixels where the noiseless lensed source exceeds this many "
                                        "times the pixel's noise sigma")
 

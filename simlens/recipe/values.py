@@ -51,9 +51,9 @@ def check_number(origin: str, path: str, value: Any, meta: Mapping):
         raise RecipeError(origin, path, f"must be a number, got {shown(value)}",
                           f"a number in {range_text(meta)}")
     if meta.get("integer") and not float(value).is_integer():
-        raise RecipeError(origin, path, f"must be a whole number, got {value!r}", "an integer")
+        raise RecipeError(origin, path, f"must be a whole number, got {shown(value)}", "an integer")
     if not inside(float(value), meta):
-        raise RecipeError(origin, path, f"out of range: {value!r}", f"values in {range_text(meta)}")
+        raise RecipeError(origin, path, f"out of range: {shown(value)}", f"values in {range_text(meta)}")
     return int(value) if meta.get("integer") else float(value)
 
 
@@ -78,7 +78,7 @@ def check_text(origin: str, path: str, value: Any, meta: Mapping) -> str:
                           " or ".join(repr(c) for c in choices) if choices else "a quoted string")
     if choices and value not in choices:
         hint = difflib.get_close_matches(value, choices, n=1, cutoff=0.5)
-        raise RecipeError(origin, path, f"unknown value {value!r}" + (f"; did you mean {hint[0]!r}?" if hint else ""),
+        raise RecipeError(origin, path, f"unknown value {shown(value)}" + (f"; did you mean {hint[0]!r}?" if hint else ""),
                           ", ".join(repr(c) for c in choices))
     return value
 

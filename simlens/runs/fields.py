@@ -51,6 +51,7 @@ import numpy as np
 from astropy.io import fits
 from astropy.table import Table
 
+from ..errors import reported_as
 from ..populations.background import BackgroundModel, BackgroundObjects
 from ..cosmology import DistanceTable
 from ..imaging.observe import effective_psf_image, psf_profile
@@ -149,6 +150,11 @@ def objects_table(rows: list[dict], bands: tuple) -> Table:
 
 def render_field(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> ShardResult:
     """Render field ``spec.index`` (systems ``spec.first_system ...``) and write its files."""
+    with reported_as(f"field {spec.index} (systems {spec.first_system}-{spec.first_system + spec.n_systems - 1})"):
+        return _render_field(recipe, Path(run_folder), spec)
+
+
+def _render_field(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardResult:
     galsim.set_omp_threads(1)
     run_folder = Path(run_folder)
     settings, survey = recipe.field, recipe.survey

@@ -20,11 +20,12 @@ from typing import Any, Callable
 import numpy as np
 
 from .engines import resolve_engine, run_tasks
-from ..errors import SimlensError
+from ..errors import RunError
 from ..output.catalogue import write_catalogue
 from ..output.checksums import sha256_of
 from ..truth.sampler import PopulationSampler
 from ..recipe import Recipe
+from .resources import check_resources
 from .run_folder import RunFolder
 from ..truth.selection import describe_attrition, sum_attrition
 from .shards import read_truth_rows, render_shard, shard_plan
@@ -62,17 +63,37 @@ def default_output_folder(recipe: Recipe) -> Path:
 
 def run(recipe: Recipe, out: Path | str | None = None, *, overwrite: bool = False, workers: int = 1,
         engine: str = "auto", scheduler: str | None = None,
-        progress: Callable[[int, int], Any] | None = None) -> RunSummary:
+        progress: Callable[[int, int], Any] | None = None, check_machine: bool = True) -> RunSummary:
     """Render every system of ``recipe`` into the run folder ``out`` (default ``outputs/<name>``).
 
     ``workers``/``engine``/``scheduler`` choose where shards run (:mod:`simlens.engines`).
     ``progress(total, initial)`` may return a tqdm-like object; it gets ``update(n)`` per shard.
-    An unfinished run folder of the same recipe and seed is resumed.
+    An unfinished run folder of the same recipe and seed is resumed.  Before anything is written,
+    a run this machine cannot hold (memory, disk; :mod:`simlens.runs.resources`) is refused, unless
+    ``check_machine`` is false.
     """
     out = Path(out) if out is not None else default_output_folder(recipe)
-    resolve_engine(engine, workers, scheduler)  # check the choice before touching the disk
+    chosen = resolve_engine(engine, workers, scheduler)  # check the choice before touching the disk
+    if check_machine:
+        check_resources(recipe, out, local_workers=None if scheduler is not None else
+                        (1 if chosen == "serial" else workers))
     t_start = time.perf_counter()
     folder = RunFolder.open(out, recipe, overwrite=overwrite)
+    try:
+        summary = _run_open_folder(recipe, out, folder, workers, engine, scheduler, progress, t_start)
+    except KeyboardInterrupt:
+        folder.fail("interrupted", "interrupted by the user")
+        raise
+    except BaseException as exc:
+        folder.fail("failed", f"{type(exc).__name__}: {exc}")
+        raise
+    finally:
+        folder.release()
+    return summary
+
+
+def _run_open_folder(recipe: Recipe, out: Path, folder: RunFolder, workers: int, engine: str,
+                     scheduler: str | None, progress, t_start: float) -> RunSummary:
     plan = shard_plan(recipe)
     todo = [spec for spec in plan if spec.index not in folder.finished]
     done_systems = recipe.count - sum(spec.n_systems for spec in todo)
@@ -132,8 +153,8 @@ def run(recipe: Recipe, out: Path | str | None = None, *, overwrite: bool = Fals
                       median_arc_snr=float(np.median(summary_columns[reference])), selection=attrition)
 
 
-def _write_error(out: Path, exc: OSError) -> SimlensError:
+def _write_error(out: Path, exc: OSError) -> RunError:
     reason = exc.strerror or str(exc)
     hint = "free some space" if exc.errno == errno.ENOSPC else "make it writable"
-    return SimlensError(f"{out}: cannot write ({reason}{': ' + str(exc.filename) if exc.filename else ''}); "
+    return RunError(f"{out}: cannot write ({reason}{': ' + str(exc.filename) if exc.filename else ''}); "
                         f"finished shards are kept: {hint} and run the same command again to finish")

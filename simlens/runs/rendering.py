@@ -12,6 +12,7 @@ import dataclasses
 import time
 from typing import Iterator, Sequence
 
+from ..errors import reported_as
 from ..imaging.render import RenderedSystem, SystemRendering
 from ..truth.sampler import PopulationSampler
 from ..truth.selection import image_cut_results, needs_images
@@ -43,15 +44,17 @@ def rendered_systems(sampler: PopulationSampler, system_ids: Sequence[int], timi
         return image_cut_results(rendering.render(cut_bands, images=selection.min_images is not None), recipe)
 
     t0 = time.perf_counter()
-    systems = sampler.draw_many(system_ids, image_cuts=judge if needs_images(recipe) else None)
+    with reported_as(f"drawing systems {system_ids[0]}-{system_ids[-1]}" if len(system_ids) else "drawing"):
+        systems = sampler.draw_many(system_ids, image_cuts=judge if needs_images(recipe) else None)
     drawing = time.perf_counter() - t0
     timings["sampling"] = timings.get("sampling", 0.0) + drawing - sum(sum(r.timings.values()) for r in spent)
     for rendering in spent:
         if judged.get(rendering.system.system_id) is not rendering:  # a rejected candidate
             _add(timings, rendering.timings)
     for system in systems:
-        rendering = judged.pop(system.system_id, None) or SystemRendering(system, survey, reference)
-        rendered = rendering.render()
+        with reported_as(f"rendering system {system.system_id}"):
+            rendering = judged.pop(system.system_id, None) or SystemRendering(system, survey, reference)
+            rendered = rendering.render()
         _add(timings, rendering.timings)
         yield dataclasses.replace(rendered, system=system)
 

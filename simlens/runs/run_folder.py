@@ -11,13 +11,19 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import re
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
 
+try:
+    import fcntl
+except ImportError:  # pragma: no cover - not a POSIX system: runs go unlocked
+    fcntl = None
+
 from ..version import __version__
-from ..errors import SimlensError
+from ..errors import SimlensError, clip
 from ..output.atomic import atomic_path
 from ..output.checksums import sha256_of
 from ..output.ownership import confined
@@ -42,20 +48,67 @@ def _now() -> str:
     return datetime.now(timezone.utc).isoformat(timespec="seconds")
 
 
+def _lock(path: Path) -> int | None:
+    """Take the run folder's lock: an exclusive ``flock`` on the folder itself (so the lock writes
+    nothing into it), held until :meth:`RunFolder.release` or the process ends.  Returns the file
+    descriptor, or None where the file system has no such locks (the run goes on unlocked)."""
+    if fcntl is None:  # pragma: no cover
+        return None
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return None
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except BlockingIOError:
+        os.close(fd)
+        raise SimlensError(f"{path}: another simlens make is writing this run folder; wait for it to finish "
+                           f"(then run the same command to check or finish it), or choose another --out") from None
+    except OSError:
+        os.close(fd)
+        return None
+    return fd
+
+
 @dataclass
 class RunFolder:
     path: Path
     manifest: dict = field(default_factory=dict)
+    lock: int | None = None  # descriptor holding the folder's flock (simlens make only)
 
     # -- opening ---------------------------------------------------------------------------------
     @classmethod
     def open(cls, path: Path, recipe: Recipe, overwrite: bool = False) -> "RunFolder":
-        """Create a new run folder, or take up an unfinished one made by the same recipe and seed."""
+        """Create a new run folder, or take up an unfinished one made by the same recipe and seed.
+        The folder stays locked against other ``make`` processes until :meth:`release`."""
         path = Path(path)
         if path.exists() and not path.is_dir():
             raise SimlensError(f"{path}: exists and is not a folder; choose another --out")
+        try:
+            path.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise SimlensError(f"{path}: cannot create the run folder ({exc.strerror}); "
+                               f"choose a writable --out") from None
+        lock = _lock(path)
+        try:
+            folder = cls._open_locked(path, recipe, overwrite)
+        except BaseException:
+            if lock is not None:
+                os.close(lock)
+            raise
+        folder.lock = lock
+        return folder
+
+    def release(self) -> None:
+        """Let other processes open the folder again."""
+        if self.lock is not None:
+            os.close(self.lock)
+            self.lock = None
+
+    @classmethod
+    def _open_locked(cls, path: Path, recipe: Recipe, overwrite: bool) -> "RunFolder":
         manifest_path = path / MANIFEST
-        if path.exists() and any(path.iterdir()):
+        if any(path.iterdir()):
             if not manifest_path.is_file():
                 raise SimlensError(f"{path}: folder is not empty and holds no simlens run; simlens writes only "
                                    f"into an empty folder or its own run folder: choose another --out")
@@ -71,6 +124,9 @@ class RunFolder:
             else:
                 folder._clean_temporaries()
                 folder._drop_damaged_shards()
+                folder.manifest["status"] = "running"
+                folder.manifest.pop("failure", None)
+                folder.save()
                 return folder
         try:
             (path / ("fields" if recipe.field is not None else "shards")).mkdir(parents=True, exist_ok=True)
@@ -108,6 +164,17 @@ class RunFolder:
         self.manifest["status"] = "complete"
         self.manifest["finished_utc"] = _now()
         self.save()
+
+    def fail(self, status: str, reason: str) -> None:
+        """Mark an unfinished run as ``failed`` or ``interrupted`` (the same command resumes it)."""
+        if self.manifest.get("status") == "running":
+            self.manifest["status"] = status
+            self.manifest["failure"] = clip(reason, 400)
+            self.manifest["stopped_utc"] = _now()
+            try:
+                self.save()
+            except OSError:  # a full disk: the run stays marked running, and resumes all the same
+                pass
 
     def save(self) -> None:
         with atomic_path(self.path / MANIFEST) as tmp:

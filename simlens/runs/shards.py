@@ -16,6 +16,7 @@ import galsim
 import numpy as np
 from astropy.table import Table
 
+from ..errors import reported_as
 from ..output.checksums import sha256_of
 from ..output.columns import read_table
 from ..output.cutout_fits import write_cutout
@@ -78,8 +79,12 @@ def render_shard(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> Sha
 
     Parallelism is across shards, so GalSim's own OpenMP threads are set to one (several worker
     processes each running several threads would only contend for the cores)."""
+    with reported_as(f"shard {spec.index} (systems {spec.first_system}-{spec.first_system + spec.n_systems - 1})"):
+        return _render_shard(recipe, Path(run_folder), spec)
+
+
+def _render_shard(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardResult:
     galsim.set_omp_threads(1)
-    run_folder = Path(run_folder)
     sampler = PopulationSampler(recipe)
     survey, output = recipe.survey, recipe.output
     nb, n = len(survey.bands), survey.cutout_size

@@ -27,7 +27,7 @@ from typing import Sequence
 import numpy as np
 from astropy.table import Table
 
-from ..errors import SimlensError
+from ..errors import SimlensError, clip
 from .cutouts import (completeness_2d, completeness_by, default_columns, describe_tables, lens_labels, plot_tables,
                       wilson_interval, write_report)
 
@@ -45,7 +45,7 @@ def read_detections(path: str | Path) -> Table:
         fmt = {".fits": None, ".fit": None, ".ecsv": "ascii.ecsv"}.get(path.suffix.lower(), "ascii.csv")
         table = Table.read(path, format=fmt) if fmt else Table.read(path)
     except Exception as exc:  # astropy raises many kinds for unreadable tables
-        raise SimlensError(f"{path}: cannot be read as a table ({exc})") from None
+        raise SimlensError(f"{path}: cannot be read as a table ({clip(exc)})") from None
     names = set(table.colnames)
     pixels, sky = {"x_pixel", "y_pixel"} <= names, {"ra", "dec"} <= names
     missing = [c for c in ("field_id", "score") if c not in names]

@@ -30,7 +30,7 @@ from typing import Callable, Mapping, Sequence
 import numpy as np
 
 from ..cosmology import DistanceTable, sis_einstein_radius
-from ..errors import SimlensError
+from ..errors import RunError
 from ..lensing.lens_models import LENS_MODELS, TRUTH_DEFAULTS, build_deflector, multi_plane
 from ..lensing.caustics import CUT_ANGLES, _UNIT_CIRCLE, find_caustics, inside_polygon, isothermal_caustics, polygon_area
 from ..lensing.mass.base import isothermal_hessian, rotate_back
@@ -49,7 +49,7 @@ from .streams import SYSTEM_STREAMS, grid_cell, system_streams
 __all__ = ["PopulationSampler", "SelectionExhausted", "System", "offset_on_sky"]
 
 
-class SelectionExhausted(SimlensError):
+class SelectionExhausted(RunError):
     """No candidate of a system passed the selection within ``selection.max_candidates``."""
 
 
@@ -309,6 +309,8 @@ class PopulationSampler:
             clump_colors = {b: 0.0 if b == ref else v[f"{prefix}.{b}"] for b in band_names}
         n_clumps = int(round(v["source.clumps.count"]))
         clump_fraction = v["source.clumps.flux_fraction"] if n_clumps > 0 else 0.0
+        if clump_fraction == 0.0:  # clumps without light are no clumps
+            n_clumps = 0
         disk_mags = {b: anchor_mag + disk_colors[b] - 2.5 * math.log10(1.0 - clump_fraction) for b in band_names}
         clumps = ()
         if n_clumps > 0:
