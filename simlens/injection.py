@@ -70,8 +70,10 @@ def read_survey_image(path: str | Path, gain: float | None = None, zero_point: f
     if not path.is_file():
         raise SimlensError(f"{path}: no such image")
     try:
-        with warnings.catch_warnings(), fits.open(path) as hdul:
+        with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # astropy's warning on a truncated file precedes its error
+            hdul = fits.open(path)
+        with hdul:
             hdu = next((h for h in hdul if h.data is not None and getattr(h.data, "ndim", 0) == 2), None)
             if hdu is None:
                 raise SimlensError(f"{path}: no two-dimensional image HDU")

@@ -8,7 +8,7 @@ when written), the per-band planes of a system, and for a field run the field pl
 stamps it keeps.  The bytes per ray and the base of an imported simlens were measured (peak RSS
 of ``simlens make`` for cutouts of 64 to 512 pixels and supersampling 4 to 16; ``bench/bench_preflight.py``
 prints estimate / measured side by side) and rounded up; the estimate is meant as an upper bound
-within a factor of about two.
+within a factor of about 1.5 (measured 1.3 to 1.6).
 """
 
 from __future__ import annotations
@@ -26,8 +26,8 @@ from ..recipe import Recipe
 
 __all__ = ["ResourceEstimate", "estimate_resources", "available_memory", "free_disk", "check_resources", "size_text"]
 
-BASE_BYTES = 300 * 2**20  # an imported simlens with numpy, astropy, scipy and GalSim (measured ~160 MB)
-BYTES_PER_RAY = 256  # positions, deflections, source-plane samples and refinement (measured 155-215)
+BASE_BYTES = 200 * 2**20  # an imported simlens with numpy, astropy, scipy and GalSim (measured ~155 MiB)
+BYTES_PER_RAY = 192  # positions, deflections, source-plane samples and refinement (measured ~120-130)
 BYTES_PER_SYSTEM_ON_DISK = 8 * 2**10  # truth, image and catalogue rows (FITS + ECSV), measured ~6 KB
 FITS_BLOCK = 2880
 
@@ -85,7 +85,7 @@ def estimate_resources(recipe: Recipe) -> ResourceEstimate:
             f"the {lenses} rendered stamps a field keeps":
                 (lenses * nb * stamp**2 * 8 * 6, "field.lenses or field.lens_stamp_size"),
             f"the {settings.size}x{settings.size} field planes of {nb} band(s)":
-                (settings.size**2 * (8 * 3 + 4 * 2 * nb) * 2, "field.size"),
+                (settings.size**2 * (40 + 110 * nb), "field.size"),  # measured ~95 B per pixel and band
         }
         disk = n_fields * (nb * (settings.size**2 * 8 + 4 * FITS_BLOCK) + psf_bytes) + recipe.count * BYTES_PER_SYSTEM_ON_DISK
     else:
