@@ -26,7 +26,7 @@ from pathlib import Path
 import numpy as np
 
 from .version import __version__
-from .errors import RunError, SimlensError, SimlensWarning, clip
+from .errors import OUT_OF_MEMORY, RunError, SimlensError, SimlensWarning, clip
 from .recipe import load_recipe
 
 __all__ = ["main"]
@@ -310,8 +310,7 @@ def _one_line(exc: BaseException) -> str:
     if isinstance(exc, SimlensError):
         return clip(" ".join(str(exc).split()), 600)
     if isinstance(exc, MemoryError):
-        return ("out of memory; lower survey.supersampling, survey.cutout_size or output.shard_size, "
-                "or use fewer --workers")
+        return OUT_OF_MEMORY
     if isinstance(exc, OSError) and exc.strerror:
         where = f"{clip(exc.filename, 200)}: " if exc.filename else ""
         return f"{where}{exc.strerror}"

@@ -10,7 +10,10 @@ from __future__ import annotations
 
 from contextlib import contextmanager
 
-__all__ = ["SimlensError", "RecipeError", "RunError", "SimlensWarning", "clip", "reported_as"]
+__all__ = ["SimlensError", "RecipeError", "RunError", "SimlensWarning", "clip", "reported_as", "OUT_OF_MEMORY"]
+
+OUT_OF_MEMORY = ("out of memory; lower survey.supersampling, survey.cutout_size or output.shard_size, "
+                 "or use fewer --workers")
 
 
 def clip(text: str, limit: int = 80) -> str:
@@ -76,8 +79,7 @@ def reported_as(where: str):
     except (SimlensError, OSError):
         raise
     except MemoryError as exc:
-        raise RunError(f"{where}: out of memory; lower survey.supersampling, survey.cutout_size or "
-                       f"output.shard_size, or use fewer --workers") from exc
+        raise RunError(f"{where}: {OUT_OF_MEMORY}") from exc
     except Exception as exc:
         raise RunError(f"{where}: {type(exc).__name__}: {clip(exc, 200)} (an error inside simlens: "
                        f"please report it with the recipe; --debug shows the traceback)") from exc

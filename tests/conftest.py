@@ -143,6 +143,38 @@ PHYSICAL_RECIPE = textwrap.dedent("""
 """)
 
 
+# All the recipe's physics at once: stars plus halo, line of sight, subhalos, multipoles, quasars,
+# a second source plane, negatives and a flagged cut on images.
+FEATURES_RECIPE = PHYSICAL_RECIPE.replace("count = 6", "count = 20").replace("[lens.mass]\n", """[lens.line_of_sight]
+count = { choice = [0, 1, 2] }
+
+[lens.subhalos]
+count = { choice = [0, 3] }
+
+[lens.multipoles]
+m4_strength = { uniform = [-0.02, 0.02] }
+
+[lens.mass]
+model = "stars_and_halo"
+halo_mass = { log_uniform = [1e12, 1e13] }
+""").replace("[source.position]", """[source.quasar]
+magnitude = { uniform = [20.0, 23.0] }
+
+[source.second]
+redshift = { uniform = [2.0, 4.5] }
+magnitude = 24.0
+deflector_velocity_dispersion = { uniform = [0.0, 100.0] }
+
+[source.position]""").replace("[output]", """[negatives]
+fraction = 0.3
+
+[selection]
+min_arc_snr = 5.0
+enforce = false
+
+[output]""").replace("shard_size = 3", "shard_size = 10")
+
+
 @pytest.fixture
 def small_recipe_text() -> str:
     return SMALL_RECIPE

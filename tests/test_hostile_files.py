@@ -303,3 +303,22 @@ def test_the_manifest_lock_writes_nothing_into_the_folder(tmp_path):
     finally:
         folder.release()
     assert os.path.isdir(out)
+
+
+@pytest.mark.parametrize("damage", ["count is text", "shards is a list", "not JSON", "a JSON list"])
+def test_verify_and_make_refuse_a_damaged_manifest_in_one_line(damage, tmp_path, capsys):
+    recipe_file = tmp_path / "sharded.toml"
+    recipe_file.write_text(SHARDED)
+    out = tmp_path / "run"
+    assert main(["make", str(recipe_file), "--out", str(out), "--quiet"]) == 0
+    manifest_path = out / "manifest.json"
+    manifest = json.loads(manifest_path.read_text())
+    if damage == "count is text":
+        manifest["count"] = "eight"
+    elif damage == "shards is a list":
+        manifest["shards"] = ["../../etc/passwd"]
+    manifest_path.write_text({"not JSON": "{ nope", "a JSON list": "[1, 2]"}.get(damage, json.dumps(manifest)))
+    before = sha256(manifest_path)
+    one_line_error(capsys, ["verify", str(out)])
+    one_line_error(capsys, ["make", str(recipe_file), "--out", str(out), "--quiet", "--overwrite"])
+    assert sha256(manifest_path) == before

@@ -23,9 +23,12 @@ from simlens.cli import main
 from simlens.recipe import Recipe
 from simlens.recipe.schema import BandSettings, PsfSettings
 
-from .conftest import SMALL_RECIPE
+from .conftest import FEATURES_RECIPE, SMALL_RECIPE
 
-BASE = tomllib.loads(SMALL_RECIPE)
+# Two recipes the cases start from: the small test recipe, and one with every optional table
+# (stars plus halo, line of sight, subhalos, multipoles, quasar, second source, negatives, cuts).
+BASES = {"small": tomllib.loads(SMALL_RECIPE), "features": tomllib.loads(FEATURES_RECIPE)}
+BASE = BASES["small"]
 
 
 # ------------------------------------------------------------------------------------------------
@@ -66,8 +69,10 @@ def _is_distribution(d: dict) -> bool:
     return bool({"uniform", "log_uniform", "normal", "choice", "grid"} & set(d))
 
 
-def with_value(path: tuple, value) -> dict:
-    data = json.loads(json.dumps(BASE))
+def with_value(path: tuple, value, base: str = "small") -> dict:
+    data = json.loads(json.dumps(BASES[base]))
+    if path[0] == "field":  # a field run: a small field keeps the case quick
+        data["field"] = {"size": 256, "lenses": 2, "lens_stamp_size": 64}
     node = data
     for key in path[:-1]:
         node = node.setdefault(key, {})
@@ -105,12 +110,12 @@ def _inside_edge(bound: float, meta: dict, side: str):
     return float(bound)
 
 
-def generated_cases():
+def generated_cases(base: str):
     cases = []
     for path, meta in schema_keys():
         if path[-1] in ("rest_filter", "filter"):  # filter names are checked by loading them
             continue
-        name = ".".join(path)
+        name = f"{base}:" + ".".join(path)
         kind = meta["kind"]
         if kind in ("number", "parameter"):
             cases.append((f"{name}=text", path, "abc"))
@@ -141,10 +146,10 @@ def generated_cases():
     return cases
 
 
-CASES = generated_cases()
-# The default suite runs a fixed sample of the cases (a checksum of the label picks one in six,
-# spread over the whole schema); `pytest -m slow` runs all of them.
-SAMPLE = [c for c in CASES if zlib.crc32(c[0].encode()) % 6 == 0]
+CASES = [case + (base,) for base in BASES for case in generated_cases(base)]
+# The default suite runs a fixed sample of the cases (a checksum of the label picks one in eight
+# of the small recipe's and one in forty of the slower full-featured recipe's, spread over the schema); `pytest -m slow` runs all of them.
+SAMPLE = [c for c in CASES if zlib.crc32(c[0].encode()) % (8 if c[3] == "small" else 40) == 0]
 REST = [c for c in CASES if c not in SAMPLE]
 STRUCTURAL = {
     "empty file": b"",
@@ -203,8 +208,8 @@ def _case_ids(cases):
     return [c[0] for c in cases]
 
 
-def _write_case(tmp_path, path, value) -> Path | None:
-    data = with_value(path, value)
+def _write_case(tmp_path, path, value, base="small") -> Path | None:
+    data = with_value(path, value, base)
     if data is None:
         return None
     recipe_path = tmp_path / "case.toml"
@@ -227,9 +232,9 @@ def test_the_schema_gives_enough_cases():
     assert len(SAMPLE) >= 60 and len(STRUCTURAL) >= 10
 
 
-def _generated_case(label, path, value, tmp_path, capsys):
+def _generated_case(label, path, value, base, tmp_path, capsys):
     """Refused in one line with nothing written, or accepted and made."""
-    recipe_path = _write_case(tmp_path, path, value)
+    recipe_path = _write_case(tmp_path, path, value, base)
     assert recipe_path is not None
     if not _accepted(recipe_path):
         _assert_one_line_refusal(capsys, tmp_path, recipe_path, label)
@@ -238,15 +243,15 @@ def _generated_case(label, path, value, tmp_path, capsys):
     _make_finishes(capsys, tmp_path, recipe_path, label)
 
 
-@pytest.mark.parametrize("label, path, value", SAMPLE, ids=_case_ids(SAMPLE))
-def test_generated_case(label, path, value, tmp_path, capsys):
-    _generated_case(label, path, value, tmp_path, capsys)
+@pytest.mark.parametrize("label, path, value, base", SAMPLE, ids=_case_ids(SAMPLE))
+def test_generated_case(label, path, value, base, tmp_path, capsys):
+    _generated_case(label, path, value, base, tmp_path, capsys)
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("label, path, value", REST, ids=_case_ids(REST))
-def test_generated_case_all(label, path, value, tmp_path, capsys):
-    _generated_case(label, path, value, tmp_path, capsys)
+@pytest.mark.parametrize("label, path, value, base", REST, ids=_case_ids(REST))
+def test_generated_case_all(label, path, value, base, tmp_path, capsys):
+    _generated_case(label, path, value, base, tmp_path, capsys)
 
 
 @pytest.mark.parametrize("label", sorted(STRUCTURAL))

@@ -37,41 +37,14 @@ def test_every_feature_together_gives_finite_pixels(tmp_path):
 
     from simlens.recipe import parse_recipe
 
-    from .conftest import PHYSICAL_RECIPE
+    from .conftest import FEATURES_RECIPE
 
     sys.path.insert(0, str(BENCH))
     try:
         from sweep_robustness import check_run
     finally:
         sys.path.pop(0)
-    text = PHYSICAL_RECIPE.replace("count = 6", "count = 20").replace("[lens.mass]\n", """[lens.line_of_sight]
-count = { choice = [0, 1, 2] }
-
-[lens.subhalos]
-count = { choice = [0, 3] }
-
-[lens.multipoles]
-m4_strength = { uniform = [-0.02, 0.02] }
-
-[lens.mass]
-model = "stars_and_halo"
-halo_mass = { log_uniform = [1e12, 1e13] }
-""").replace("[source.position]", """[source.quasar]
-magnitude = { uniform = [20.0, 23.0] }
-
-[source.second]
-redshift = { uniform = [2.0, 4.5] }
-magnitude = 24.0
-deflector_velocity_dispersion = { uniform = [0.0, 100.0] }
-
-[source.position]""").replace("[output]", """[negatives]
-fraction = 0.3
-
-[selection]
-min_arc_snr = 5.0
-enforce = false
-
-[output]""").replace("shard_size = 3", "shard_size = 10")
+    text = FEATURES_RECIPE
     simlens.run(parse_recipe(text), tmp_path / "run")
     n, problems = check_run(tmp_path / "run")
     assert n == 20

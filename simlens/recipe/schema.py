@@ -279,7 +279,7 @@ class DeflectorPopulationSettings:
     velocity_dispersion_range: tuple = interval((100.0, 400.0), low=10.0, high=1500.0, unit="km/s",
                                                 doc="velocity dispersions")
     density_evolution: float = number(0.0, low=-10, high=10, doc="phi_*(z) = phi_*(0) (1 + z)^this")
-    sigma_evolution: float = number(0.0, low=-5, high=5, doc="sigma_*(z) = sigma_*(0) (1 + z)^this")
+    sigma_evolution: float = number(0.0, low=-1, high=1, doc="sigma_*(z) = sigma_*(0) (1 + z)^this")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -287,9 +287,9 @@ class LensLightScalingSettings:
     template: str = text("elliptical", choices=TEMPLATE_NAMES, doc="spectral template of the lens light")
     rest_filter: str = text("LSST_r", doc="rest-frame filter of the relations (r band)")
     faber_jackson_slope: float = number(4.0, low=1, high=8, doc="L ~ sigma^slope (Faber & Jackson 1976)")
-    faber_jackson_magnitude: float = number(-21.6, low=-30, high=-10, unit="mag",
+    faber_jackson_magnitude: float = number(-21.6, low=-25, high=-17, unit="mag",
                                             doc="rest-frame absolute magnitude (AB) at the reference sigma")
-    faber_jackson_sigma: float = number(200.0, low=10, high=1000, unit="km/s", doc="reference sigma")
+    faber_jackson_sigma: float = number(200.0, low=100, high=400, unit="km/s", doc="reference sigma")
     faber_jackson_scatter: float = number(0.4, low=0, high=3, unit="mag", doc="scatter in magnitude")
     plane_a: float = number(1.49, low=0, high=5, doc="fundamental plane: log R_e = a log sigma + b mu_e + c")
     plane_b: float = number(0.30, low=0.2, low_open=True, high=1.0, doc="fundamental plane b (mu_e in mag/arcsec^2)")

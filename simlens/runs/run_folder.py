@@ -260,8 +260,17 @@ def _load_manifest(path: Path) -> dict:
     except (OSError, ValueError) as exc:
         raise SimlensError(f"{path}: cannot be read as a simlens manifest ({exc}); "
                            f"simlens replaces only folders it can read as its own runs: choose another --out") from None
-    if manifest.get("format") != FORMAT:
-        raise SimlensError(f"{path}: not a manifest this simlens can resume (format {manifest.get('format')!r})")
+    if not isinstance(manifest, dict) or manifest.get("format") != FORMAT:
+        found = manifest.get("format") if isinstance(manifest, dict) else None
+        raise SimlensError(f"{path}: not a manifest this simlens can resume (format {clip(repr(found))})")
+    shards = manifest.get("shards", {})
+    sound = (all(isinstance(manifest.get(k), int) and manifest[k] >= 1 for k in ("count", "shard_size"))
+             and isinstance(shards, dict) and all(str(k).isdigit() and isinstance(v, dict)
+                                                  and isinstance(v.get("files", {}), dict) for k, v in shards.items())
+             and isinstance(manifest.get("truth", {}), dict))
+    if not sound:
+        raise SimlensError(f"{path}: a damaged simlens manifest (count, shard_size or shard entries are not "
+                           f"what simlens writes); make the run again into a new folder")
     return manifest
 
 
