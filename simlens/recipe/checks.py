@@ -15,6 +15,10 @@ from .values import shown
 
 __all__ = ["check_recipe"]
 
+# Field counts: the deepest surveys reach a few hundred galaxies per arcmin^2 (common practice:
+# Hubble Ultra Deep Field counts, from memory); far beyond that is a mistake, and a hang.
+MAX_OBJECTS_PER_ARCMIN2 = 2000.0
+
 _SAFE_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,99}$")
 
 
@@ -231,6 +235,14 @@ def _check_field(recipe: Recipe, needs_filters: list) -> None:
         raise RecipeError(origin, "field.lens_stamp_size", f"{f.lens_stamp_size} is smaller than the cutout "
                           f"({recipe.survey.cutout_size})", "at least survey.cutout_size")
     _require_band(origin, "field.galaxies.band", f.galaxies.band, recipe.survey.band_names)
+    for what, counts in (("galaxies", f.galaxies), ("stars", f.stars)):
+        # N(< m) = density 10^(slope (m - pivot)) at the faint end: what a field will hold
+        faint = counts.density * 10 ** (counts.slope * (counts.magnitude_range[1] - counts.pivot))
+        if faint > MAX_OBJECTS_PER_ARCMIN2:
+            raise RecipeError(origin, f"field.{what}", f"the counts give {faint:.3g} {what} per arcmin^2 brighter "
+                              f"than {counts.magnitude_range[1]:g} mag (density, pivot, slope)",
+                              f"at most {MAX_OBJECTS_PER_ARCMIN2:g} per arcmin^2; a fainter pivot, a lower density "
+                              f"or slope, or a brighter magnitude_range end")
     if f.galaxies.density > 0:
         _require_filters(recipe, "the background galaxies' template colours (or field.galaxies.density = 0)")
     if f.stars.density > 0:
