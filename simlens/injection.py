@@ -36,6 +36,7 @@ from astropy.wcs.utils import proj_plane_pixel_scales
 from scipy.signal import fftconvolve
 
 from .errors import SimlensError, SimlensWarning, clip
+from .user_tables import number_column, read_user_table
 from .output.atomic import atomic_path
 from .output.ownership import confined
 from .imaging.rays import ComponentImages, PixelGrid
@@ -118,27 +119,11 @@ def read_survey_image(path: str | Path, gain: float | None = None, zero_point: f
 def read_lens_catalogue(path: str | Path) -> Table:
     """Deflectors: ``ra``, ``dec`` (deg), ``z_lens``, ``velocity_dispersion`` (km/s); optional
     ``mass_q``, ``mass_angle`` (deg CCW from +x).  CSV, ECSV or FITS."""
-    path = Path(path)
-    if not path.is_file():
-        raise SimlensError(f"{path}: no such lens catalogue")
-    try:
-        table = Table.read(path, format="ascii.csv") if path.suffix.lower() == ".csv" else Table.read(path)
-    except Exception as exc:  # astropy raises many kinds for unreadable tables
-        raise SimlensError(f"{path}: cannot be read as a table ({type(exc).__name__}: {clip(exc)})") from None
-    missing = [c for c in ("ra", "dec", "z_lens", "velocity_dispersion") if c not in table.colnames]
-    if missing:
-        raise SimlensError(f"{path}: missing column(s) {', '.join(missing)} (a lens needs ra, dec, z_lens and "
-                           "velocity_dispersion; or pass --lenses auto to select lens galaxies in the image)")
-    if len(table) == 0:
-        raise SimlensError(f"{path}: holds no lenses")
+    table = read_user_table(path, "lens catalogue", ("ra", "dec", "z_lens", "velocity_dispersion"))
     for column, low, high, unit in _CATALOGUE_RANGES:
         if column not in table.colnames:
             continue
-        try:
-            values = np.asarray(table[column].filled(np.nan) if hasattr(table[column], "filled") else table[column],
-                                dtype=float)
-        except (TypeError, ValueError):
-            raise SimlensError(f"{path}: column {column} must hold numbers") from None
+        values = number_column(path, table, column, finite=False)
         bad = ~(np.isfinite(values) & (values >= low) & (values <= high)) | (values == 0) & (low == 0)
         if bad.any():
             row = int(np.flatnonzero(bad)[0])

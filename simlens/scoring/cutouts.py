@@ -27,7 +27,8 @@ import numpy as np
 from astropy.stats import binom_conf_interval
 from astropy.table import Table
 
-from ..errors import SimlensError, clip
+from ..errors import SimlensError
+from ..user_tables import number_column, read_user_table, whole_number_column
 
 __all__ = ["read_scores", "lens_labels", "roc_curve", "roc_area", "threshold_for_false_positive_rate",
            "completeness_by", "completeness_2d", "wilson_interval", "plot_tables", "describe_tables",
@@ -39,56 +40,11 @@ CONFIDENCE = 0.6827  # one-sigma binomial intervals
 
 def read_scores(path: str | Path) -> Table:
     """A finder's scores: a table with ``system_id`` and ``score`` columns (CSV, ECSV or FITS)."""
-    path = Path(path)
-    if not path.is_file():
-        raise SimlensError(f"{path}: no such scores file")
-    try:
-        if path.suffix.lower() in (".fits", ".fit", ".fz"):
-            table = Table.read(path)
-        elif path.suffix.lower() == ".ecsv":
-            table = Table.read(path, format="ascii.ecsv")
-        else:
-            table = Table.read(path, format="ascii.csv")
-    except Exception as exc:  # astropy raises many kinds for unreadable tables
-        raise SimlensError(f"{path}: cannot be read as a table ({clip(exc)})") from None
-    missing = [c for c in ("system_id", "score") if c not in table.colnames]
-    if missing:
-        raise SimlensError(f"{path}: needs columns system_id and score; missing {', '.join(missing)} "
-                           f"(found: {clip(', '.join(table.colnames))})")
-    if len(table) == 0:
-        raise SimlensError(f"{path}: holds no rows; give one score per system")
-    ids = _numbers(path, table, "system_id")
-    whole = np.isfinite(ids) & (ids == np.round(ids))
-    if not whole.all():
-        row = int(np.flatnonzero(~whole)[0])
-        raise SimlensError(f"{path}: system_id must be whole numbers; row {row + 1} has {ids[row]!r}")
-    ids = ids.astype(np.int64)
+    table = read_user_table(path, "scores file", ("system_id", "score"))
+    ids = whole_number_column(path, table, "system_id")
     if len(np.unique(ids)) != len(ids):
         raise SimlensError(f"{path}: system_id repeats; give one score per system")
-    scores = _numbers(path, table, "score")
-    if not np.all(np.isfinite(scores)):
-        rows = ", ".join(str(r + 1) for r in np.flatnonzero(~np.isfinite(scores))[:5])
-        raise SimlensError(f"{path}: score has non-finite values (rows {rows})")
-    return Table({"system_id": ids, "score": scores})
-
-
-def _numbers(path: Path, table: Table, column: str) -> np.ndarray:
-    """A column as floats; one line naming the first row that is not a number."""
-    values = table[column]
-    masked = getattr(values, "mask", None)
-    if masked is not None and np.any(masked):
-        row = int(np.flatnonzero(np.asarray(masked))[0])
-        raise SimlensError(f"{path}: {column} is empty in row {row + 1}")
-    try:
-        return np.asarray(values, dtype=float)
-    except (TypeError, ValueError):
-        for row, value in enumerate(values):
-            try:
-                float(value)
-            except (TypeError, ValueError):
-                raise SimlensError(f"{path}: {column} must be numbers; row {row + 1} has "
-                                   f"{clip(repr(value))}") from None
-        raise SimlensError(f"{path}: {column} must be numbers") from None
+    return Table({"system_id": ids, "score": number_column(path, table, "score")})
 
 
 def lens_labels(truth: Table) -> np.ndarray:

@@ -28,6 +28,7 @@ import numpy as np
 from astropy.table import Table
 
 from ..errors import SimlensError, clip
+from ..user_tables import number_column, read_user_table, whole_number_column
 from .cutouts import (completeness_2d, completeness_by, default_columns, describe_tables, lens_labels, plot_tables,
                       wilson_interval, write_report)
 
@@ -38,27 +39,15 @@ MATCH_RADIUS = 3.0  # arcsec (common practice: of the order of an Einstein radiu
 
 def read_detections(path: str | Path) -> Table:
     """A finder's detections (CSV, ECSV or FITS): field_id, x_pixel and y_pixel or ra and dec, score."""
-    path = Path(path)
-    if not path.is_file():
-        raise SimlensError(f"{path}: no such detections file")
-    try:
-        fmt = {".fits": None, ".fit": None, ".ecsv": "ascii.ecsv"}.get(path.suffix.lower(), "ascii.csv")
-        table = Table.read(path, format=fmt) if fmt else Table.read(path)
-    except Exception as exc:  # astropy raises many kinds for unreadable tables
-        raise SimlensError(f"{path}: cannot be read as a table ({clip(exc)})") from None
+    table = read_user_table(path, "detections file", ("field_id", "score"))
     names = set(table.colnames)
     pixels, sky = {"x_pixel", "y_pixel"} <= names, {"ra", "dec"} <= names
-    missing = [c for c in ("field_id", "score") if c not in names]
-    if missing or not (pixels or sky):
-        want = missing + ([] if pixels or sky else ["x_pixel and y_pixel (or ra and dec)"])
-        raise SimlensError(f"{path}: detections need field_id, score and a position; missing {', '.join(want)} "
-                           f"(found: {', '.join(table.colnames)})")
-    scores = np.asarray(table["score"], dtype=float)
-    if not np.all(np.isfinite(scores)):
-        raise SimlensError(f"{path}: score has non-finite values (rows {np.flatnonzero(~np.isfinite(scores))[:5]})")
-    columns = {"field_id": np.asarray(table["field_id"]).astype(np.int64), "score": scores}
+    if not (pixels or sky):
+        raise SimlensError(f"{path}: detections need a position; missing x_pixel and y_pixel (or ra and dec) "
+                           f"(found: {clip(', '.join(table.colnames))})")
+    columns = {"field_id": whole_number_column(path, table, "field_id"), "score": number_column(path, table, "score")}
     for name in (("x_pixel", "y_pixel") if pixels else ("ra", "dec")):
-        columns[name] = np.asarray(table[name], dtype=float)
+        columns[name] = number_column(path, table, name)
     return Table(columns)
 
 
