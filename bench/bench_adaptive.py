@@ -57,7 +57,7 @@ def sources(rng):
 def render(source, supersampling, **options):
     grid = PixelGrid(size=48, pixel_scale=0.2, supersampling=supersampling, padding=padding_for(0.7, 0.2))
     t0 = time.perf_counter()
-    rays, sampling = observation_rays(LENS, grid, 0.7)
+    rays, sampling = observation_rays(LENS, grid)
     components = ComponentImages(rays, sampling, **options)
     components.prepare_lensed(source)  # as render_system does
     scene = render_scene("r", rays, None, source, components)

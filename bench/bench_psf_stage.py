@@ -72,7 +72,7 @@ def main():
         references = [galsim.Convolve(galsim_profile(lens) + galsim_profile(src), psf_profile(b), gsparams=params)
                       .drawImage(nx=size, ny=size, scale=0.2).array for b in bands()]
         t1 = time.perf_counter()
-        rays, sampling = observation_rays(SIS(einstein_radius=1e-8), grid, max(FWHMS))
+        rays, sampling = observation_rays(SIS(einstein_radius=1e-8), grid)
         cache = ComponentImages(rays, sampling)
         lens_image, source_image = cache.render(lens, lensed=False), cache.render(src, lensed=True)
         scene = Scene("b", grid, lens_image, source_image, src.flux, sampling=sampling)

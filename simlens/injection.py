@@ -321,7 +321,7 @@ def _fine_kernel(kernel: np.ndarray, sampling: int) -> np.ndarray:
 
 
 def _lensed_source_pixels(scene, band: str, counts: float, grid: PixelGrid, kernel: np.ndarray,
-                          fwhm: float, adaptive: bool) -> np.ndarray:
+                          adaptive: bool) -> np.ndarray:
     """The lensed source of ``scene`` in ``band`` with ``counts`` in all (unlensed), through the
     effective PSF ``kernel`` (image pixels, odd sides), on the cutout of ``grid``: the rays and
     the source's samples are the renderer's (:func:`~simlens.imaging.render.observation_rays`,
@@ -331,7 +331,7 @@ def _lensed_source_pixels(scene, band: str, counts: float, grid: PixelGrid, kern
     kernel read at the offset from the sample to each pixel centre (no second pixel average)."""
     source = scene.source_light[band]
     source = source.with_flux(counts) if source.flux > 0 else source
-    rays, sampling = observation_rays(scene.deflector, grid, fwhm)
+    rays, sampling = observation_rays(scene.deflector, grid)
     components = ComponentImages(rays, sampling=sampling, adaptive=adaptive)
     components.prepare_lensed(source)
     samples = components.render(source, lensed=True)
@@ -406,7 +406,7 @@ def inject(image_path: str | Path, recipe: Recipe, lenses_path: str | Path, *, o
         grid = PixelGrid(size=size, pixel_scale=image.pixel_scale, supersampling=recipe.survey.supersampling,
                          padding=padding, lens_offset=offset)
         counts = 10 ** (-0.4 * (system.source_magnitude(band) - image.zero_point))
-        stamp = _lensed_source_pixels(build_scene(system), band, counts, grid, kernel, _recipe_fwhm(recipe, band),
+        stamp = _lensed_source_pixels(build_scene(system), band, counts, grid, kernel,
                                       recipe.survey.adaptive_supersampling)
         # the stamp's pixel (r, c) is image pixel (r0 + r, c0 + c)
         rs, cs = slice(max(r0, 0), min(r0 + size, ny)), slice(max(c0, 0), min(c0 + size, nx))

@@ -27,7 +27,7 @@ def observe_profile(conditions, lens_light, source, size=64, seed=5, supersampli
     grid = PixelGrid(size=size, pixel_scale=conditions.pixel_scale, supersampling=supersampling,
                      padding=padding_for(conditions.psf_fwhm, conditions.pixel_scale))
     # The production path: ray map and scene sampling as render_system chooses them.
-    rays, sampling = observation_rays(lens_mass or SIS(einstein_radius=1e-8), grid, conditions.psf_fwhm)
+    rays, sampling = observation_rays(lens_mass or SIS(einstein_radius=1e-8), grid)
     scene = render_scene(conditions.name, rays, lens_light, source, ComponentImages(rays, sampling))
     return observe_scene(scene, conditions, seed)
 
@@ -121,7 +121,8 @@ def test_arc_snr_matches_its_definition():
 
 def test_circular_convolution_equals_linear_convolution_inside_the_cutout():
     # scipy.signal.fftconvolve (linear, zero-padded) is the reference; the circular FFT used by the
-    # GalSim stage must agree on every pixel of the cutout, i.e. inside the padding.
+    # GalSim stage must agree on every pixel of the cutout, i.e. inside the padding, to single
+    # precision (it runs in float32, as the images are written; wrap-around would show at ~1e-3).
     from scipy.signal import fftconvolve
 
     from simlens.imaging.observe import _FFTConvolver, psf_kernel
@@ -133,7 +134,7 @@ def test_circular_convolution_equals_linear_convolution_inside_the_cutout():
     ours = _FFTConvolver(image.shape, kernel, exact_margin=grid.padding * grid.supersampling)(image)
     reference = fftconvolve(image, kernel, mode="same")
     m = grid.padding * grid.supersampling
-    np.testing.assert_allclose(ours[m:-m, m:-m], reference[m:-m, m:-m], rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(ours[m:-m, m:-m], reference[m:-m, m:-m], rtol=0, atol=2e-6 * reference.max())
 
 
 @pytest.mark.parametrize("profile", ["moffat", "kolmogorov"])

@@ -22,12 +22,24 @@ __all__ = ["LightProfile", "Sersic", "PointSource", "CompositeLight", "GaussianR
 
 SERSIC_INDEX_RANGE = (0.3, 8.0)
 
+# Where a lensed profile counts as faint (relative to its typical surface brightness: I_e for a
+# Sersic), the renderer samples it at the PSF stage's sampling alone (see imaging/rays.py).  For
+# an exponential disk this is 6.5 R_e, holding all but 0.01 % of the flux.
+FAINT_SURFACE_BRIGHTNESS = 1e-4
+
 
 def sersic_b(n: float) -> float:
     """``b_n`` such that the Sersic half-light radius encloses half the flux:
     ``gamma(2n, b_n) = Gamma(2n) / 2``, solved exactly with scipy's inverse regularised incomplete
     gamma function (Ciotti & Bertin 1999 give the asymptotic expansion used in the tests)."""
     return float(special.gammaincinv(2.0 * n, 0.5))
+
+
+def _floats(values) -> np.ndarray:
+    """``values`` as a float array: single-precision arrays stay single (the renderer samples smooth
+    image-plane light in float32), everything else becomes float64."""
+    values = np.asarray(values)
+    return values if values.dtype == np.float32 else values.astype(float, copy=False)
 
 
 class LightProfile:
@@ -40,6 +52,12 @@ class LightProfile:
 
     def with_flux(self, flux: float) -> "LightProfile":
         raise NotImplementedError
+
+    def near_light(self, x, y, reach) -> np.ndarray:
+        """True where a disc of radius ``reach`` (arcsec, an array like ``x``) around ``(x, y)`` may
+        hold light brighter than :data:`FAINT_SURFACE_BRIGHTNESS` of the profile's typical surface
+        brightness; the renderer samples only there at full resolution.  By default everywhere."""
+        return np.ones(np.broadcast(np.asarray(x), np.asarray(y), np.asarray(reach)).shape, bool)
 
     def scaled(self, factor: float) -> "LightProfile":
         """The same shape with ``factor`` times the flux."""
@@ -110,14 +128,25 @@ class Sersic(LightProfile):
     def elliptical_radius_squared(self, x, y) -> np.ndarray:
         """``R^2 = q x'^2 + y'^2 / q`` (arcsec^2) in the frame of the major axis."""
         c, s = math.cos(math.radians(self.angle)), math.sin(math.radians(self.angle))
-        dx = np.asarray(x, dtype=float) - self.center[0]
-        dy = np.asarray(y, dtype=float) - self.center[1]
+        dx = _floats(x) - self.center[0]
+        dy = _floats(y) - self.center[1]
         xp = c * dx + s * dy
         yp = c * dy - s * dx
         return self.q * (xp * xp) + (yp * yp) / self.q
 
     def elliptical_radius(self, x, y) -> np.ndarray:
         return np.sqrt(self.elliptical_radius_squared(x, y))
+
+    @property
+    def faint_radius(self) -> float:
+        """The elliptical radius beyond which ``I < FAINT_SURFACE_BRIGHTNESS * I_e``:
+        ``R_e (1 + ln(1 / FAINT_SURFACE_BRIGHTNESS) / b_n)^n``, from the Sersic law."""
+        return self.half_light_radius * (1.0 - math.log(FAINT_SURFACE_BRIGHTNESS) / self.b_n) ** self.sersic_index
+
+    def near_light(self, x, y, reach) -> np.ndarray:
+        # A disc of radius r around a point reaches elliptical radii at most r / sqrt(q) further.
+        limit = self.faint_radius + np.asarray(reach) / math.sqrt(self.q)
+        return self.elliptical_radius_squared(x, y) < limit * limit
 
     def surface_brightness(self, x, y) -> np.ndarray:
         if self.flux == 0.0:
@@ -274,6 +303,12 @@ class CompositeLight(LightProfile):
         for c in self.components[1:]:
             total = total + c.surface_brightness(x, y)
         return total
+
+    def near_light(self, x, y, reach) -> np.ndarray:
+        near = self.components[0].near_light(x, y, reach)
+        for c in self.components[1:]:
+            near = near | c.near_light(x, y, reach)
+        return near
 
     def with_flux(self, flux: float) -> "CompositeLight":
         current = self.flux

@@ -24,6 +24,7 @@ the effective PSF a user fits to stars in the image.
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
 
@@ -62,6 +63,28 @@ def convolution_sampling(supersampling: int) -> int:
     return CONVOLUTION_SAMPLING if supersampling % CONVOLUTION_SAMPLING == 0 else supersampling
 
 
+def _convolver(band: BandConditions, scale: float, size: int, margin: int) -> "_FFTConvolver":
+    """The convolution of ``size x size`` images with the band's PSF sampled every ``scale`` arcsec;
+    the last few are kept, so that systems sharing a seeing share the PSF's transform."""
+    return _shared_convolver((band.psf_profile, band.psf_fwhm, band.psf_beta), scale, size, margin)
+
+
+@functools.lru_cache(maxsize=16)
+def _shared_convolver(psf: tuple, scale: float, size: int, margin: int) -> "_FFTConvolver":
+    profile, fwhm, beta = psf
+    band = _PsfOnly(psf_profile=profile, psf_fwhm=fwhm, psf_beta=beta)
+    return _FFTConvolver((size, size), psf_kernel(band, scale), exact_margin=margin)
+
+
+@dataclass(frozen=True)
+class _PsfOnly:
+    """The PSF fields of a band's conditions (what psf_profile and psf_kernel read)."""
+
+    psf_profile: str
+    psf_fwhm: float
+    psf_beta: float
+
+
 def psf_kernel(band: BandConditions, scale: float) -> np.ndarray:
     """The PSF sampled every ``scale`` arcsec on an odd stamp of radius PSF_RADIUS_IN_FWHM FWHM
     (sum = the PSF's flux within the stamp), centred on its central sample."""
@@ -72,10 +95,15 @@ def psf_kernel(band: BandConditions, scale: float) -> np.ndarray:
 
 
 def _block_sum(image: np.ndarray, factor: int) -> np.ndarray:
+    """Sums of ``factor x factor`` blocks (by strided slices: several times faster than a reshaped sum)."""
     if factor == 1:
         return image
-    n = image.shape[0] // factor
-    return image.reshape(n, factor, n, factor).sum(axis=(1, 3))
+    total = image[0::factor, 0::factor].copy()
+    for i in range(factor):
+        for j in range(factor):
+            if i or j:
+                total += image[i::factor, j::factor]
+    return total
 
 
 EFFECTIVE_PSF_SUBSAMPLING = 8
@@ -94,24 +122,29 @@ def effective_psf_image(band: BandConditions, size: int = PSF_IMAGE_SIZE) -> np.
 
 
 class _FFTConvolver:
-    """Circular convolution of images of one shape with one kernel, by real FFTs at that shape.
+    """Circular convolution of images of one shape with one kernel, by real FFTs in single precision
+    (the images are written as float32) at the next fast size (``scipy.fft.next_fast_len``).
 
-    Wrap-around reaches only ``kernel half-width`` pixels in from each edge; the padding of the
-    scene is at least that wide (both are ``PSF_RADIUS_IN_FWHM`` FWHM), so the cropped cutout is
-    exactly the linear convolution, at about half the cost of zero-padding to the full size."""
+    The image is embedded in zeros at that size; wrap-around then reaches at most ``kernel
+    half-width`` pixels in from each edge of the image.  The padding of the scene is at least that
+    wide (both are ``PSF_RADIUS_IN_FWHM`` FWHM), so the cropped cutout is exactly the linear
+    convolution, at about half the cost of zero-padding to twice the size."""
 
     def __init__(self, shape: tuple[int, int], kernel: np.ndarray, exact_margin: int):
         kh, kw = kernel.shape
         if kh // 2 > exact_margin or kw // 2 > exact_margin:
             raise ValueError(f"PSF kernel half-width {kh // 2} exceeds the padding {exact_margin} (fine pixels)")
-        wrapped = np.zeros(shape)
+        self.shape = shape
+        self.fast_shape = tuple(scipy_fft.next_fast_len(n, real=True) for n in shape)
+        wrapped = np.zeros(self.fast_shape, np.float32)
         wrapped[:kh, :kw] = kernel
         wrapped = np.roll(wrapped, (-(kh // 2), -(kw // 2)), axis=(0, 1))  # kernel centre at [0, 0]
-        self.shape = shape
         self.kernel_ft = scipy_fft.rfft2(wrapped)
 
     def __call__(self, image: np.ndarray) -> np.ndarray:
-        return scipy_fft.irfft2(scipy_fft.rfft2(image) * self.kernel_ft, self.shape)
+        transform = scipy_fft.rfft2(image.astype(np.float32), self.fast_shape)  # zero-filled to the fast size
+        convolved = scipy_fft.irfft2(transform * self.kernel_ft, self.fast_shape)
+        return convolved[:self.shape[0], :self.shape[1]]  # float32
 
 
 @dataclass(frozen=True)
@@ -151,17 +184,16 @@ def observe_scene(scene: Scene, band: BandConditions, noise_seed: int) -> Observ
     if scene.sampling % sampling:
         raise ValueError(f"scene sampling {scene.sampling} is not a multiple of the convolution sampling {sampling}")
     to_convolution_grid = scene.sampling // sampling
-    kernel = psf_kernel(band, grid.pixel_scale / sampling)
-    size = grid.padded_size * sampling
-    convolve = _FFTConvolver((size, size), kernel, exact_margin=grid.padding * sampling)
+    convolve = _convolver(band, grid.pixel_scale / sampling, grid.padded_size * sampling, grid.padding * sampling)
+    first, last = grid.padding * sampling, (grid.padding + grid.size) * sampling
 
     def to_pixels(fine: np.ndarray) -> np.ndarray:
         convolved = convolve(_block_sum(fine, to_convolution_grid))
-        return grid.crop(_block_sum(convolved, sampling))
+        return _block_sum(convolved[first:last, first:last], sampling).astype(float)
 
     lens = to_pixels(scene.lens_light)
     source = to_pixels(scene.lensed_source)
-    # FFT round-off can leave values of order -1e-16 of the peak; clip before Poisson noise.
+    # FFT round-off can leave values of order -1e-7 of the peak; clip before Poisson noise.
     lens = np.clip(lens, 0.0, None)
     source = np.clip(source, 0.0, None)
     image = galsim.Image(lens + source, scale=band.pixel_scale, dtype=np.float64)

@@ -6,11 +6,14 @@ at the 1-based FITS reference pixel ``CRPIX = (N + 1) / 2``.  Pixel ``(row, col)
 ``x = (col - (N - 1) / 2) s`` and ``y = (row - (N - 1) / 2) s`` arcsec; arrays are indexed
 ``[row, col] = [y, x]``.  For even ``N`` the lens centre lies on a pixel corner.
 
-The scene is computed on a *padded, supersampled* grid: ``padding`` extra pixels on every side (so
-that the PSF can spread light from outside the cutout into it) and ``supersampling^2`` rays per
-pixel.  The deflection is achromatic, so the ray map is computed once per system and reused for all
-bands.  Each fine pixel gets ``surface_brightness(beta) * fine_pixel_area`` (the midpoint rule),
-which conserves surface brightness (lensing changes the solid angle, not the surface brightness).
+The scene is computed on a *padded* grid: ``padding`` extra pixels on every side (so that the PSF
+can spread light from outside the cutout into it), at the PSF stage's sampling (2 samples per pixel
+side by default).  Lensed light is sampled by one ray per pixel everywhere, by ``supersampling^2``
+rays per pixel where the lensed source has light, and adaptively by more where it varies within a
+pixel (:class:`ComponentImages`).  The deflection is achromatic, so the rays are traced once per
+system and reused for all bands.  Each ray carries ``surface_brightness(beta)`` times its share of
+the pixel's area (the midpoint rule), which conserves surface brightness (lensing changes the solid
+angle, not the surface brightness).
 """
 
 from __future__ import annotations
@@ -98,53 +101,36 @@ class PixelGrid:
 
 @dataclass(frozen=True)
 class RayMap:
-    """Image-plane positions of rays and where they land in the source plane (arcsec).
+    """Rays through the whole padded field, ``sampling`` per pixel side, and where they land in the
+    source plane (arcsec, lens frame; arrays indexed ``[row, col]``).
 
-    ``x, y, beta_x, beta_y`` cover the *inner* region at full supersampling: the padded field less
-    ``inset`` pixels on every side (``inset = 0``: the whole field).  When ``inset > 0`` the whole
-    padded field is also traced more coarsely, ``outer_sampling`` rays per pixel side, in ``outer``
-    (``(x, y, beta_x, beta_y)``): light there reaches the cutout only through the PSF's wings."""
+    These rays sample every lensed profile everywhere (the renderer traces one per pixel).  Where a
+    lensed profile has light it traces the grid's full supersampling, and more where the light
+    varies within a pixel (:class:`ComponentImages`), from ``mass``."""
 
     grid: PixelGrid
     x: np.ndarray
     y: np.ndarray
     beta_x: np.ndarray
     beta_y: np.ndarray
-    inset: int = 0
-    outer: tuple | None = None
-    outer_sampling: int | None = None
-    mass: MassModel | None = None  # kept for adaptive refinement (more rays where needed)
+    sampling: int
+    mass: MassModel | None = None  # kept for tracing more rays where a source has light
 
     @property
     def axes(self) -> tuple[np.ndarray, np.ndarray]:
-        """Image-plane x and y coordinates (lens frame) of the full-resolution rays."""
-        k = self.inset * self.grid.supersampling
-        axis = self.grid.fine_axis()
-        return self.grid.in_lens_frame(axis[k:axis.size - k] if k else axis)
+        """Image-plane x and y coordinates (lens frame) of the rays along each axis."""
+        return self.grid.in_lens_frame(self.grid.sample_axis(self.sampling))
 
 
-def trace_rays(mass: MassModel, grid: PixelGrid, outer_sampling: int | None = None,
-               margin: int | None = None) -> RayMap:
-    """Shoot one ray through each fine pixel centre: ``beta = theta - alpha(theta)``.
-
-    With ``outer_sampling`` (dividing the supersampling) and ``margin`` (pixels), only the cutout
-    plus ``margin`` pixels on each side is traced at full supersampling, and the rest of the padded
-    field at ``outer_sampling`` rays per pixel side."""
-    inset = 0
-    if outer_sampling is not None and margin is not None and margin < grid.padding:
-        if grid.supersampling % outer_sampling:
-            raise ValueError(f"outer_sampling {outer_sampling} must divide the supersampling {grid.supersampling}")
-        inset = grid.padding - margin
-    k = inset * grid.supersampling
-    axis = grid.fine_axis()
-    x, y = np.meshgrid(*grid.in_lens_frame(axis[k:axis.size - k] if k else axis))
+def trace_rays(mass: MassModel, grid: PixelGrid, sampling: int | None = None) -> RayMap:
+    """Shoot one ray through each sample centre of the padded field, ``sampling`` per pixel side
+    (default: the grid's supersampling; otherwise a divisor of it): ``beta = theta - alpha(theta)``."""
+    sampling = sampling or grid.supersampling
+    if grid.supersampling % sampling:
+        raise ValueError(f"sampling {sampling} must divide the supersampling {grid.supersampling}")
+    x, y = np.meshgrid(*grid.in_lens_frame(grid.sample_axis(sampling)))
     beta_x, beta_y = mass.ray_shoot(x, y)
-    outer = None
-    if inset:
-        ox, oy = np.meshgrid(*grid.in_lens_frame(grid.sample_axis(outer_sampling)))
-        outer = (ox, oy) + tuple(mass.ray_shoot(ox, oy))
-    return RayMap(grid=grid, x=x, y=y, beta_x=beta_x, beta_y=beta_y, inset=inset, outer=outer,
-                  outer_sampling=outer_sampling if inset else None, mass=mass)
+    return RayMap(grid=grid, x=x, y=y, beta_x=beta_x, beta_y=beta_y, sampling=sampling, mass=mass)
 
 
 @dataclass(frozen=True)
@@ -199,17 +185,19 @@ def deposit_points(image: np.ndarray, grid: PixelGrid, points: tuple, sampling: 
 
 
 # Image-plane (unlensed) components are re-integrated around their centres, where cuspy profiles
-# (Sersic n ~ 4 holds ~10 % of its light inside 0.1 R_e) defeat the midpoint rule: the fine pixels
-# within CENTRE_REFINE_HALF_WIDTH of the centre get CENTRE_REFINE_FACTOR^2 sub-samples each.
-CENTRE_REFINE_HALF_WIDTH = 4
-CENTRE_REFINE_FACTOR = 8
+# (Sersic n ~ 4 holds ~10 % of its light inside 0.1 R_e) defeat the midpoint rule: the samples
+# within CENTRE_REFINE_HALF_WIDTH samples of the centre are averaged over CENTRE_REFINE_PER_PIXEL
+# sub-samples per pixel side.
+CENTRE_REFINE_HALF_WIDTH = 8
+CENTRE_REFINE_PER_PIXEL = 32
 
 
-def refine_centre(unit: np.ndarray, profile: LightProfile, axes: tuple, scale: float) -> None:
+def refine_centre(unit: np.ndarray, profile: LightProfile, axes: tuple, scale: float, sampling: int) -> None:
     """Replace the samples around ``profile.center`` by sub-sampled averages (in place); ``axes``
-    hold the sample centres along the x and y axes of ``unit`` and ``scale`` their spacing (arcsec)."""
+    hold the sample centres along the x and y axes of ``unit``, ``scale`` their spacing (arcsec)
+    and ``sampling`` their number per pixel side."""
     x_axis, y_axis = axes
-    n, h, m = x_axis.size, CENTRE_REFINE_HALF_WIDTH, CENTRE_REFINE_FACTOR
+    n, h, m = x_axis.size, CENTRE_REFINE_HALF_WIDTH, -(-CENTRE_REFINE_PER_PIXEL // sampling)
     cx = int(round((profile.center[0] - x_axis[0]) / scale))
     cy = int(round((profile.center[1] - y_axis[0]) / scale))
     r0, r1 = max(cy - h, 0), min(cy + h + 1, n)
@@ -233,124 +221,214 @@ ADAPTIVE_FACTOR = 4
 ADAPTIVE_TOLERANCE = 0.03
 
 
+def _window_extrema(samples: np.ndarray, sampling: int) -> tuple[np.ndarray, np.ndarray]:
+    """The least and greatest of ``samples`` (``sampling`` per pixel side) over each pixel and its
+    eight neighbours: two pixel images."""
+    extrema = []
+    for pair in (np.minimum, np.maximum):
+        per_pixel = samples
+        for axis in (0, 1):  # over each pixel's samples, then one pixel each way (edges repeat)
+            a = np.moveaxis(per_pixel, axis, 0)
+            reduced = a[0::sampling].copy()
+            for k in range(1, sampling):
+                pair(reduced, a[k::sampling], out=reduced)
+            wide = reduced.copy()
+            pair(wide[1:], reduced[:-1], out=wide[1:])
+            pair(wide[:-1], reduced[1:], out=wide[:-1])
+            per_pixel = np.moveaxis(wide, 0, axis)
+        extrema.append(per_pixel)
+    return extrema[0], extrema[1]
+
+
+@dataclass(frozen=True)
+class PixelRays:
+    """``per_side^2`` rays through each of some pixels of the padded field: ``rows, cols`` index
+    the pixels, ``beta_x, beta_y`` (shape ``(pixels, per_side, per_side)``, ``[pixel, row, col]``)
+    are where the rays land in the source plane."""
+
+    rows: np.ndarray
+    cols: np.ndarray
+    per_side: int
+    beta_x: np.ndarray
+    beta_y: np.ndarray
+
+    @property
+    def size(self) -> int:
+        return int(self.rows.size)
+
+
 class ComponentImages:
     """Unit-flux images of light components on one ray map, computed once and reused.
 
     Shapes are achromatic (bands differ only in each component's flux), so a system's bands share
-    every evaluation of a profile: the cache key is the component with its flux set to 1.
-    Unlensed components are refined around their centres (:func:`refine_centre`).  With ``sampling``
-    below the ray grid's supersampling, each unit image is block-summed to it once, so that the
-    bands' linear combinations and the PSF stage work on the smaller arrays."""
+    every evaluation of a profile: the cache key is the component with its flux set to 1.  Every
+    image has the ray map's sampling (the PSF stage's).  A lensed component is sampled by
+
+    1. the ray map's rays, everywhere;
+    2. the grid's full supersampling in the pixels whose source-plane footprint may reach the
+       component's light (:meth:`~simlens.imaging.light.LightProfile.near_light`; the footprint
+       is the spread of the rays of the pixel and its eight neighbours): elsewhere it is fainter
+       than ``FAINT_SURFACE_BRIGHTNESS`` of its typical brightness and smooth on the rays' scale;
+    3. with ``adaptive``, ADAPTIVE_FACTOR times more rays per side in the pixels whose
+       full-supersampling rays disagree (see ADAPTIVE_TOLERANCE).
+
+    Unlensed components are sampled at the rays' image-plane positions and refined around their
+    centres (:func:`refine_centre`)."""
 
     def __init__(self, ray_map: RayMap, sampling: int | None = None, adaptive: bool = False):
         ss = ray_map.grid.supersampling
-        sampling = sampling or ss
-        if ss % sampling:
-            raise ValueError(f"sampling {sampling} must divide the supersampling {ss}")
-        if ray_map.outer is not None and sampling != ray_map.outer_sampling:
-            raise ValueError(f"a ray map traced at {ray_map.outer_sampling} rays per pixel outside the "
-                             f"cutout renders at that sampling, not {sampling}")
-        if adaptive and ray_map.mass is None:
-            raise ValueError("adaptive sampling needs a ray map that keeps its mass model (trace_rays does)")
+        sampling = sampling or ray_map.sampling
+        if ss % sampling or sampling % ray_map.sampling:
+            raise ValueError(f"sampling {sampling} must divide the supersampling {ss} and be a multiple of "
+                             f"the ray map's {ray_map.sampling} rays per pixel side")
+        if (adaptive or ray_map.sampling != ss) and ray_map.mass is None:
+            raise ValueError("tracing more rays where a source has light needs a ray map that keeps its "
+                             "mass model (trace_rays does)")
         self.ray_map = ray_map
         self.sampling = sampling
+        self._positions = None  # image-plane sample positions at ``sampling``, for unlensed components
         self.adaptive = adaptive
-        self.refined_pixels = 0  # how many pixel refinements were made (for benchmarks)
+        self.detailed_pixels = 0  # pixels sampled at full supersampling (for benchmarks)
+        self.refined_pixels = 0  # pixels refined adaptively (for benchmarks)
         self._cache: dict = {}
-        self._fine: dict = {}  # unit-flux lensed components at full resolution, from prepare_lensed
-        self._shared_refinement = None  # (flagged pixels, their rays) from prepare_lensed
+        self._shared = None  # (full-supersampling rays, adaptive rays) from prepare_lensed
+        self._samples: dict = {}  # unit component -> (its ray-map image, its full-supersampling samples)
 
-    def _reduce(self, fine: np.ndarray) -> np.ndarray:
-        factor = self.ray_map.grid.supersampling // self.sampling
-        if factor == 1:
-            return fine
-        n = fine.shape[0] // factor
-        return fine.reshape(n, factor, n, factor).sum(axis=(1, 3))
+    # -- rays -----------------------------------------------------------------------------------
+    def _pixel_rays(self, rows: np.ndarray, cols: np.ndarray, per_side: int) -> PixelRays:
+        """``per_side^2`` rays through each pixel ``(rows, cols)`` of the padded field, traced."""
+        rm, grid = self.ray_map, self.ray_map.grid
+        offsets = ((np.arange(per_side) + 0.5) / per_side - 0.5) * grid.pixel_scale
+        ox, oy = grid.lens_offset
+        cx = (cols + 0.5 - 0.5 * grid.padded_size) * grid.pixel_scale - ox
+        cy = (rows + 0.5 - 0.5 * grid.padded_size) * grid.pixel_scale - oy
+        gx, gy = np.broadcast_arrays(cx[:, None, None] + offsets[None, None, :],
+                                     cy[:, None, None] + offsets[None, :, None])
+        if rows.size == 0:
+            return PixelRays(rows, cols, per_side, gx.astype(float), gy.astype(float))
+        bx, by = rm.mass.ray_shoot(gx, gy)
+        return PixelRays(rows, cols, per_side, bx, by)
 
-    def _unit_image(self, profile: LightProfile, lensed: bool) -> np.ndarray:
+    def _footprints(self):
+        """Per pixel of the padded field: the centre and radius (arcsec) of a disc in the source plane
+        holding the rays of the pixel and of its eight neighbours."""
         rm = self.ray_map
-        grid = rm.grid
-        x, y = (rm.beta_x, rm.beta_y) if lensed else (rm.x, rm.y)
-        inner = self._fine.pop(profile, None) if lensed else None
-        if inner is None:
-            inner = profile.surface_brightness(x, y) * grid.fine_pixel_area
-        if not lensed and hasattr(profile, "center"):
-            refine_centre(inner, profile, rm.axes, grid.fine_scale)
-        refinement = None
-        if lensed and self.adaptive:
-            refinement = self._shared_refinement or self._trace_refinement(self._flag(inner))
-        inner = self._reduce(inner)
-        if refinement is not None and refinement[0][0].size:
-            self._refine(inner, profile, refinement)
-        if rm.outer is None:
-            return inner
-        ox, oy, obx, oby = rm.outer
-        scale = grid.pixel_scale / self.sampling
-        image = profile.surface_brightness(*((obx, oby) if lensed else (ox, oy))) * scale * scale
-        k = rm.inset * self.sampling
-        image[k:image.shape[0] - k, k:image.shape[1] - k] = inner
+        (x0, x1), (y0, y1) = (_window_extrema(beta, rm.sampling) for beta in (rm.beta_x, rm.beta_y))
+        return 0.5 * (x0 + x1), 0.5 * (y0 + y1), 0.5 * np.hypot(x1 - x0, y1 - y0)
+
+    def _detail_rays(self, parts) -> PixelRays | None:
+        """Full-supersampling rays through the pixels that may see the light of ``parts``; None when
+        the ray map itself has the full supersampling."""
+        ss = self.ray_map.grid.supersampling
+        if self.ray_map.sampling == ss:
+            return None
+        cx, cy, radius = self._footprints()
+        near = np.zeros(cx.shape, bool)
+        for part in parts:
+            near |= part.near_light(cx, cy, radius)
+        rows, cols = np.nonzero(near)
+        self.detailed_pixels = max(self.detailed_pixels, int(rows.size))
+        return self._pixel_rays(rows, cols, ss)
+
+    def _adaptive_rays(self, fine: np.ndarray, detail: PixelRays | None) -> PixelRays:
+        """ADAPTIVE_FACTOR times more rays per side through the pixels whose full-supersampling
+        samples ``fine`` (shape ``(pixels, ss, ss)``: of ``detail``'s pixels, or of every pixel)
+        disagree."""
+        ss = self.ray_map.grid.supersampling
+        flat = fine.reshape(fine.shape[0], ss * ss)
+        spread = (flat.max(axis=1) - flat.min(axis=1)) * ss * ss if flat.size else flat.sum(axis=1)
+        peak = flat.sum(axis=1).max() if flat.size else 0.0
+        flagged = np.nonzero(spread > ADAPTIVE_TOLERANCE * peak)[0] if peak > 0 else np.empty(0, int)
+        if detail is not None:
+            rows, cols = detail.rows[flagged], detail.cols[flagged]
+        else:
+            rows, cols = np.divmod(flagged, self.ray_map.grid.padded_size)
+        return self._pixel_rays(rows, cols, ss * ADAPTIVE_FACTOR)
+
+    # -- samples --------------------------------------------------------------------------------
+    def _coarse(self, profile: LightProfile, lensed: bool) -> np.ndarray:
+        """``profile`` at this image's sampling: lensed, from the ray map's rays (each ray's counts
+        shared evenly among the samples of its patch); unlensed, at the samples' own positions."""
+        rm, s = self.ray_map, self.sampling
+        scale = rm.grid.pixel_scale / s
+        if lensed:
+            f = s // rm.sampling
+            image = profile.surface_brightness(rm.beta_x, rm.beta_y) * scale * scale
+            return np.repeat(np.repeat(image, f, axis=0), f, axis=1) if f > 1 else image
+        if self._positions is None:
+            axes = rm.grid.in_lens_frame(rm.grid.sample_axis(s))
+            self._positions = axes, np.meshgrid(*(a.astype(np.float32) for a in axes))  # smooth light: single precision
+        axes, (x, y) = self._positions
+        image = profile.surface_brightness(x, y) * scale * scale
+        if hasattr(profile, "center"):
+            refine_centre(image, profile, axes, scale, s)
         return image
 
-    def _flag(self, fine: np.ndarray):
-        """Pixels (row, col indices of the full-resolution region) whose rays disagree."""
-        ss = self.ray_map.grid.supersampling
-        n = fine.shape[0] // ss
-        blocks = fine.reshape(n, ss, n, ss)
-        spread = (blocks.max(axis=(1, 3)) - blocks.min(axis=(1, 3))) * ss * ss
-        peak = blocks.sum(axis=(1, 3)).max()
-        if peak <= 0:
-            return np.empty(0, int), np.empty(0, int)
-        return np.nonzero(spread > ADAPTIVE_TOLERANCE * peak)
+    @staticmethod
+    def _values(profile: LightProfile, rays: PixelRays) -> np.ndarray:
+        """Counts per ray of ``profile`` on ``rays`` (shape ``(pixels, per_side, per_side)``)."""
+        return profile.surface_brightness(rays.beta_x, rays.beta_y) * (1.0 / rays.per_side) ** 2
+
+    def _all_pixels(self, image: np.ndarray) -> np.ndarray:
+        """An image at the full supersampling as ``(pixels, ss, ss)`` blocks, pixels in row order."""
+        n, s = self.ray_map.grid.padded_size, self.sampling
+        return image.reshape(n, s, n, s).transpose(0, 2, 1, 3).reshape(n * n, s, s)
+
+    def _replace(self, image: np.ndarray, rays: PixelRays, values: np.ndarray) -> None:
+        """Set the pixels of ``rays`` in ``image`` to ``values`` summed down to the image's sampling."""
+        if not rays.size:
+            return
+        n, s = self.ray_map.grid.padded_size, self.sampling
+        k = rays.per_side // s
+        blocks = values.reshape(-1, s, k, s, k).sum(axis=(2, 4)) * self.ray_map.grid.pixel_scale ** 2
+        image.reshape(n, s, n, s)[rays.rows, :, rays.cols, :] = blocks
 
     def prepare_lensed(self, source: LightProfile) -> None:
-        """Flag the pixels to refine once, from the whole lensed ``source`` (all its components), and
-        trace their rays once; every lensed component is then refined on those pixels.  Call before
-        rendering a system's bands (``render_system`` does); without it each component is flagged
-        and traced on its own."""
-        if not self.adaptive:
-            return
-        rm, grid = self.ray_map, self.ray_map.grid
-        parts = source.components if hasattr(source, "components") else (source,)
-        total = np.zeros_like(rm.beta_x)
-        for part in parts:
-            if part.flux > 0 and not isinstance(part, PointSource):
-                unit = part.with_flux(1.0)
-                fine = self._fine.get(unit)
-                if fine is None:  # kept for _unit_image, which would evaluate the same rays again
-                    fine = unit.surface_brightness(rm.beta_x, rm.beta_y) * grid.fine_pixel_area
-                    self._fine[unit] = fine
-                total += part.flux * fine
-        self._shared_refinement = self._trace_refinement(self._flag(total))
+        """Choose the pixels sampled at full supersampling, and those refined adaptively, once from the
+        whole lensed ``source`` (all its components), and trace their rays once; every lensed
+        component is then sampled on those pixels.  Call before rendering a system's bands
+        (``render_system`` does); without it each component chooses its own pixels."""
+        parts = [p for p in (source.components if hasattr(source, "components") else (source,))
+                 if p.flux > 0 and not isinstance(p, PointSource)]
+        units = [p.with_flux(1.0) for p in parts]
+        detail = self._detail_rays(units) if units else None
+        adaptive = None
+        if self.adaptive and units:
+            for unit in units:  # kept for _unit_image, which would evaluate the same rays again
+                coarse = self._coarse(unit, True)
+                self._samples[unit] = (coarse, None if detail is None else self._values(unit, detail))
+            total = sum(p.flux * self._full_samples(u) for p, u in zip(parts, units))
+            adaptive = self._adaptive_rays(total, detail)
+        self._shared = (detail, adaptive)
 
-    def _trace_refinement(self, flagged):
-        """The rays of the flagged pixels, ADAPTIVE_FACTOR times more per side."""
-        rm, grid = self.ray_map, self.ray_map.grid
-        rows, cols = flagged
-        per_side = grid.supersampling * ADAPTIVE_FACTOR
-        offsets = ((np.arange(per_side) + 0.5) / per_side - 0.5) * grid.pixel_scale
-        to_centre = 0.5 * (grid.pixel_scale - grid.fine_scale)  # from a pixel's first ray to its centre
-        x_axis, y_axis = rm.axes
-        cx = x_axis[0] + to_centre + cols * grid.pixel_scale
-        cy = y_axis[0] + to_centre + rows * grid.pixel_scale
-        gx = cx[:, None, None] + offsets[None, None, :]
-        gy = cy[:, None, None] + offsets[None, :, None]
-        gx, gy = np.broadcast_arrays(gx, gy)
-        if rows.size == 0:
-            return flagged, (gx, gy)
-        return flagged, rm.mass.ray_shoot(gx, gy)
+    def _full_samples(self, unit: LightProfile) -> np.ndarray:
+        """The samples of ``unit`` at full supersampling kept by prepare_lensed, ``(pixels, ss, ss)``."""
+        coarse, values = self._samples[unit]
+        return self._all_pixels(coarse) if values is None else values
 
-    def _refine(self, reduced: np.ndarray, profile: LightProfile, refinement) -> None:
-        """Replace the flagged pixels by the average over their refined rays (in place)."""
-        grid, s = self.ray_map.grid, self.sampling
-        (rows, cols), (bx, by) = refinement
-        per_side = grid.supersampling * ADAPTIVE_FACTOR
-        sub_area = (grid.pixel_scale / per_side) ** 2
-        sb = profile.surface_brightness(bx, by) * sub_area  # (n, per_side, per_side) as [row, col]
-        k = per_side // s
-        blocks = sb.reshape(-1, s, k, s, k).sum(axis=(2, 4))
-        for index, (r, c) in enumerate(zip(rows, cols)):
-            reduced[r * s:(r + 1) * s, c * s:(c + 1) * s] = blocks[index]
-        self.refined_pixels += int(rows.size)
+    def _unit_image(self, profile: LightProfile, lensed: bool) -> np.ndarray:
+        if not lensed:
+            return self._coarse(profile, lensed)
+        coarse, values = self._samples.pop(profile, (None, None))
+        image = self._coarse(profile, lensed) if coarse is None else coarse
+        detail, adaptive = self._shared if self._shared is not None else (self._detail_rays((profile,)), None)
+        if detail is not None:
+            values = self._values(profile, detail) if values is None else values
+        if self.adaptive and adaptive is None:  # flagged from this component alone
+            adaptive = self._adaptive_rays(self._all_pixels(image) if detail is None else values, detail)
+        if detail is not None:
+            self._replace(image, detail, values)
+        if adaptive is not None and adaptive.size:
+            self._replace(image, adaptive, self._values(profile, adaptive))
+            self.refined_pixels += adaptive.size
+        return image
+
+    def _cached(self, unit: LightProfile, lensed: bool) -> np.ndarray:
+        key = (unit, lensed)
+        image = self._cache.get(key)
+        if image is None:
+            image = self._cache[key] = self._unit_image(unit, lensed)
+        return image
 
     def render(self, profile: LightProfile | None, lensed: bool) -> np.ndarray:
         """Counts per sample of ``profile`` (source plane if ``lensed``, else image plane)."""
@@ -361,14 +439,8 @@ class ComponentImages:
         for part in parts:
             if part.flux == 0 or isinstance(part, PointSource):
                 continue
-            key = (part.with_flux(1.0), lensed)
-            unit = self._cache.get(key)
-            if unit is None:
-                unit = self._unit_image(key[0], lensed)
-                self._cache[key] = unit
-            total += part.flux * unit
+            total += part.flux * self._cached(part.with_flux(1.0), lensed)
         return total
-
 
 def render_scene(band: str, ray_map: RayMap, lens_light: LightProfile | None, source: LightProfile,
                  components: ComponentImages | None = None, lensed_points: tuple = ()) -> Scene:

@@ -55,18 +55,11 @@ def pixel_grid_for(system: System, survey: SurveySettings) -> PixelGrid:
                      supersampling=survey.supersampling, padding=padding_for(fwhm_max, survey.pixel_scale))
 
 
-# Rays at full supersampling reach this many PSF FWHM beyond the cutout; farther out (in the padding)
-# light only enters the cutout through the PSF's wings and is traced at the PSF stage's sampling.
-FULL_RESOLUTION_MARGIN_IN_FWHM = 1.0
-
-
-def observation_rays(mass, grid: PixelGrid, fwhm_max: float):
-    """The ray map a system is rendered with, and the sampling of its scenes (see raytrace.py)."""
-    sampling = convolution_sampling(grid.supersampling)
-    margin = int(math.ceil(FULL_RESOLUTION_MARGIN_IN_FWHM * fwhm_max / grid.pixel_scale))
-    if sampling == grid.supersampling:
-        return trace_rays(mass, grid), sampling
-    return trace_rays(mass, grid, outer_sampling=sampling, margin=margin), sampling
+def observation_rays(mass, grid: PixelGrid):
+    """The ray map a system is rendered with, one ray per pixel (see
+    :class:`~simlens.imaging.rays.ComponentImages` for where more rays are traced), and the
+    sampling of its scenes, the PSF stage's."""
+    return trace_rays(mass, grid, 1), convolution_sampling(grid.supersampling)
 
 
 # Nested meshes around the singular centre (half-sizes in Einstein radii, 50 steps each): as a
@@ -112,8 +105,7 @@ class SystemRendering:
         self.grid = pixel_grid_for(system, survey)
         self.scene = scene = build_scene(system)
         self.mass = scene.deflector
-        fwhm_max = max(b.psf_fwhm for b in system.bands)
-        self.rays, sampling = observation_rays(self.mass, self.grid, fwhm_max)
+        self.rays, sampling = observation_rays(self.mass, self.grid)
         t1 = time.perf_counter()
         self.timings["ray_tracing"] = t1 - t0
 
@@ -126,7 +118,7 @@ class SystemRendering:
         self.components.prepare_lensed(scene.source_light[reference_band])  # refine where the whole source needs it
         self.second = None
         if system.second_source is not None:  # its own ray map, through its own deflectors
-            rays2, sampling2 = observation_rays(scene.second_deflector, self.grid, fwhm_max)
+            rays2, sampling2 = observation_rays(scene.second_deflector, self.grid)
             self.second = ComponentImages(rays2, sampling=sampling2, adaptive=survey.adaptive_supersampling)
             self.second.prepare_lensed(scene.second_source_light[reference_band])
         self.timings["adaptive_refinement"] = time.perf_counter() - t2

@@ -1,9 +1,10 @@
 """Pre-flight: how much memory one worker and how much disk a run will need, before anything is
 written, and a refusal when the machine does not have it.
 
-The memory model counts the largest arrays of one unit of work: the ray grid of one cutout (or
-field stamp) at full supersampling out to one PSF FWHM beyond it and at the convolution sampling
-out to the PSF's reach, the shard's image cubes (kept until the shard is written, and copied once
+The memory model counts the largest arrays of one unit of work: the rays of one cutout (or field
+stamp) at the convolution sampling out to the PSF's reach, and at full supersampling over as many
+pixels as the cutout has (the renderer traces those only where the lensed source has light, in
+practice a fraction of the cutout), the shard's image cubes (kept until the shard is written, and copied once
 when written), the per-band planes of a system, and for a field run the field planes and the
 stamps it keeps.  The bytes per ray and the base of an imported simlens were measured (peak RSS
 of ``simlens make`` for cutouts of 64 to 512 pixels and supersampling 4 to 16; ``bench/bench_preflight.py``
@@ -21,7 +22,6 @@ from pathlib import Path
 
 from ..errors import SimlensError
 from ..imaging.observe import PSF_IMAGE_SIZE, PSF_RADIUS_IN_FWHM, convolution_sampling
-from ..imaging.render import FULL_RESOLUTION_MARGIN_IN_FWHM
 from ..recipe import Recipe
 
 __all__ = ["ResourceEstimate", "estimate_resources", "available_memory", "free_disk", "check_resources", "size_text"]
@@ -60,12 +60,11 @@ def _ray_bytes(recipe: Recipe, side: int) -> int:
     survey = recipe.survey
     fwhm_max = max(band.psf.fwhm.support[1] for band in survey.bands)
     reach = math.ceil(PSF_RADIUS_IN_FWHM * fwhm_max / survey.pixel_scale)
-    margin = math.ceil(FULL_RESOLUTION_MARGIN_IN_FWHM * fwhm_max / survey.pixel_scale)
     s = survey.supersampling
     c = convolution_sampling(s)
-    rays = ((side + 2 * min(margin, reach)) * s) ** 2
+    rays = ((side + 2 * reach) * c) ** 2
     if c != s:
-        rays += ((side + 2 * reach) * c) ** 2
+        rays += (side * s) ** 2
     return rays * BYTES_PER_RAY
 
 
