@@ -21,18 +21,36 @@ Five lines::
     image = rendered.band("r").image
 """
 
+from importlib import import_module
+
 from .version import __version__
-
 from .errors import RecipeError, SimlensError
-from .runs.pipeline import run
-from .truth.record import System
-from .truth.sampler import PopulationSampler
-from .recipe import Recipe, load_recipe, parse_recipe
-from .imaging.render import RenderedSystem, render_system
-from .runs.loader import iter_batches
-from .runs.run_folder import verify_run
-from .scoring.cutouts import score_run
 
-__all__ = ["__version__", "SimlensError", "RecipeError", "Recipe", "load_recipe", "parse_recipe",
-           "PopulationSampler", "System", "render_system", "RenderedSystem", "run", "iter_batches", "verify_run",
-           "score_run"]
+# The public names and the modules that define them.  They load on first use, so that `import
+# simlens` (and the command line) costs nothing until a stage is needed.
+_PUBLIC = {
+    "Recipe": ".recipe", "load_recipe": ".recipe", "parse_recipe": ".recipe",
+    "PopulationSampler": ".truth.sampler", "System": ".truth.record",
+    "render_system": ".imaging.render", "RenderedSystem": ".imaging.render",
+    "run": ".runs.pipeline", "iter_batches": ".runs.loader", "verify_run": ".runs.run_folder",
+    "score_run": ".scoring.cutouts",
+}
+_SUBPACKAGES = ("recipe", "populations", "truth", "lensing", "imaging", "output", "runs", "scoring",
+                "mass", "cosmology", "injection", "gallery", "user_tables", "cli")
+
+__all__ = ["__version__", "SimlensError", "RecipeError", *_PUBLIC]
+
+
+def __getattr__(name: str):
+    if name in _PUBLIC:
+        value = getattr(import_module(_PUBLIC[name], __name__), name)
+    elif name in _SUBPACKAGES:
+        value = import_module(f".{name}", __name__)
+    else:
+        raise AttributeError(f"module 'simlens' has no attribute {name!r}")
+    globals()[name] = value
+    return value
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_PUBLIC) | set(_SUBPACKAGES))

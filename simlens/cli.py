@@ -23,11 +23,11 @@ import traceback
 import warnings
 from pathlib import Path
 
-import numpy as np
-
 from .version import __version__
 from .errors import OUT_OF_MEMORY, RunError, SimlensError, SimlensWarning, clip
-from .recipe import load_recipe
+
+# Each command imports what it needs when it runs, so that `simlens --help` and a mistyped option
+# answer at once (numpy, scipy, astropy and GalSim take about a second to load).
 
 __all__ = ["main"]
 
@@ -35,6 +35,7 @@ __all__ = ["main"]
 def _make(args) -> int:
     from tqdm import tqdm
 
+    from .recipe import load_recipe
     from .runs.pipeline import default_output_folder, run
 
     recipe = load_recipe(args.recipe).with_overrides(count=args.n, seed=args.seed)
@@ -70,6 +71,9 @@ def _verify(args) -> int:
 
 
 def _check(args) -> int:
+    import numpy as np
+
+    from .recipe import load_recipe
     from .truth.sampler import PopulationSampler
 
     recipe = load_recipe(args.recipe).with_overrides(count=args.n, seed=args.seed)
@@ -173,6 +177,7 @@ def _gallery(args) -> int:
 
 
 def _inject(args) -> int:
+    from .recipe import load_recipe
     from .injection import inject
 
     recipe = load_recipe(args.recipe).with_overrides(seed=args.seed)

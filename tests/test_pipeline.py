@@ -150,3 +150,24 @@ def test_subhalos_are_recorded_in_the_truth(small_recipe_text, tmp_path):
         assert len(mine) == row["n_subhalos"]
         assert np.sum(mine["mass"]) == pytest.approx(row["subhalo_mass_total"])
     assert subhalos["mass"].unit == "solMass"
+
+
+def test_import_and_help_load_no_heavy_library():
+    # `import simlens` and `simlens --help` must not load numpy, scipy, astropy or GalSim (about a
+    # second together); the public names load their stage on first use.  Checked in a fresh
+    # interpreter, by the modules it holds (no timing: the machine is noisy).
+    import subprocess
+    import sys
+
+    heavy = ("numpy", "scipy", "astropy", "galsim")
+    code = ("import sys, contextlib, io, simlens\n"
+            "from simlens.cli import main\n"
+            "with contextlib.redirect_stdout(io.StringIO()):\n"
+            "    try:\n        main(['--help'])\n    except SystemExit:\n        pass\n"
+            f"print(','.join(m for m in {heavy!r} if m in sys.modules))\n"
+            "simlens.load_recipe, simlens.mass.SIE\n"
+            f"print(','.join(m for m in {heavy!r} if m in sys.modules))\n")
+    before, after = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                                   check=True).stdout.splitlines()
+    assert before == ""
+    assert "numpy" in after.split(",")  # the stage loaded on use
