@@ -1,3 +1,3 @@
 """The simlens version (one place: pyproject.toml reads it from here)."""
 
-__version__ = "0.4.1"
+__version__ = "0.4.2"

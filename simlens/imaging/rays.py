@@ -192,16 +192,18 @@ CENTRE_REFINE_HALF_WIDTH = 8
 CENTRE_REFINE_PER_PIXEL = 32
 
 
-def refine_centre(unit: np.ndarray, profile: LightProfile, axes: tuple, scale: float, sampling: int) -> None:
-    """Replace the samples around ``profile.center`` by sub-sampled averages (in place); ``axes``
-    hold the sample centres along the x and y axes of ``unit``, ``scale`` their spacing (arcsec)
-    and ``sampling`` their number per pixel side."""
+def refine_centre(unit: np.ndarray, profile: LightProfile, axes: tuple, scale: float, sampling: int,
+                  half_width: int = CENTRE_REFINE_HALF_WIDTH, per_pixel: int = CENTRE_REFINE_PER_PIXEL) -> None:
+    """Replace the samples within ``half_width`` samples of ``profile.center`` by averages over
+    ``per_pixel`` sub-samples per pixel side (in place); ``axes`` hold the sample centres along the
+    x and y axes of ``unit``, ``scale`` their spacing (arcsec) and ``sampling`` their number per
+    pixel side."""
     x_axis, y_axis = axes
-    n, h, m = x_axis.size, CENTRE_REFINE_HALF_WIDTH, -(-CENTRE_REFINE_PER_PIXEL // sampling)
+    n_x, n_y, h, m = x_axis.size, y_axis.size, half_width, -(-per_pixel // sampling)
     cx = int(round((profile.center[0] - x_axis[0]) / scale))
     cy = int(round((profile.center[1] - y_axis[0]) / scale))
-    r0, r1 = max(cy - h, 0), min(cy + h + 1, n)
-    c0, c1 = max(cx - h, 0), min(cx + h + 1, n)
+    r0, r1 = max(cy - h, 0), min(cy + h + 1, n_y)
+    c0, c1 = max(cx - h, 0), min(cx + h + 1, n_x)
     if r0 >= r1 or c0 >= c1:
         return
     offsets = ((np.arange(m) + 0.5) / m - 0.5) * scale

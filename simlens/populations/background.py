@@ -27,7 +27,9 @@ object); :mod:`simlens.field` draws them with GalSim.
 from __future__ import annotations
 
 import math
+import dataclasses
 from dataclasses import dataclass
+from functools import lru_cache
 from pathlib import Path
 
 import numpy as np
@@ -77,6 +79,11 @@ class BackgroundObjects:
     def __len__(self) -> int:
         return int(self.x.size)
 
+    def subset(self, keep: np.ndarray) -> "BackgroundObjects":
+        """The objects where the boolean array ``keep`` is true."""
+        arrays = {f.name: getattr(self, f.name)[keep] for f in dataclasses.fields(self) if f.name != "magnitudes"}
+        return BackgroundObjects(magnitudes={b: np.asarray(m)[keep] for b, m in self.magnitudes.items()}, **arrays)
+
     def rows(self, field_id: int, wcs) -> list[dict]:
         """One row per object for the field's objects table (sky positions through ``wcs``)."""
         ra, dec = wcs.wcs_pix2world(self.x, self.y, 0) if len(self) else (np.empty(0), np.empty(0))
@@ -91,6 +98,16 @@ class BackgroundObjects:
                         "angle": float(self.angle[k]), "temperature": float(self.temperature[k])})
             rows.append(row)
         return rows
+
+
+@lru_cache(maxsize=32)
+def black_body_offsets(filter_name: str, base_folder: str) -> np.ndarray:
+    """AB magnitude offsets of black bodies at STAR_TEMPERATURE_GRID through one filter (kept: every
+    field of a run needs the same)."""
+    filt = load_filter(filter_name, base_folder)
+    offsets = np.array([ab_magnitude_offset(Template.black_body(t), filt) for t in STAR_TEMPERATURE_GRID])
+    offsets.flags.writeable = False
+    return offsets
 
 
 class BackgroundModel:
@@ -120,8 +137,7 @@ class BackgroundModel:
                        for kind, template in (("early", "elliptical"), ("late", "spiral"))}
         self._star_colours = {}
         if self.stars.density > 0:
-            offsets = {b: np.array([ab_magnitude_offset(Template.black_body(t), load_filter(f, base))
-                                    for t in STAR_TEMPERATURE_GRID]) for b, f in filters.items()}
+            offsets = {b: black_body_offsets(f, base) for b, f in filters.items()}
             self._star_colours = {b: offsets[b] - offsets[self.reference] for b in self.bands}
 
     @property

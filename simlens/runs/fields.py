@@ -11,12 +11,16 @@ For one field:
 2. *Lenses.*  The field is cut into cells of ``lens_stamp_size`` pixels; each lens gets its own
    cell (drawn without replacement) and a whole-pixel place inside it, so no two stamps overlap.
    Each system is selected and rendered as in a cutout run, on a stamp of ``lens_stamp_size``
-   pixels (lens light beyond the stamp is dropped), and its noiseless lens light and lensed source
-   are added to the field.  The lens centre is the stamp centre: 0-based pixel
+   pixels, and its noiseless lens light and lensed source are added to the field; the lens
+   galaxy's light beyond its stamp is added from its Sersic profile, drawn as the background is
+   (:func:`lens_light_beyond_stamps`), so bright lenses end in no square edge.  The lens centre is the stamp centre: 0-based pixel
    ``(x0 + (s - 1) / 2, y0 + (s - 1) / 2)``.
-3. *Background.*  Galaxies and stars from number counts (:mod:`simlens.background`), drawn by
-   GalSim (profile convolved with the band's PSF and the pixel) at their sub-pixel positions.  They
-   are not lensed; galaxies are kept away from the lenses (``lens_clearance``).
+3. *Background.*  Galaxies and stars from number counts (:mod:`simlens.populations.background`)
+   at their sub-pixel positions, not lensed; galaxies are kept away from the lenses
+   (``lens_clearance``).  The many faint ones are sampled together on one grid per band and
+   convolved with the PSF once (:mod:`simlens.imaging.many_objects`); objects bright enough that
+   the PSF wings beyond that kernel would show above the noise are drawn one by one by GalSim
+   (profile convolved with the band's PSF and the pixel, stamps sized to the noise).
 4. *Noise.*  ``galsim.CCDNoise`` over the whole field (sky, Poisson of all the light, read noise),
    sky-subtracted, as in the cutouts.
 
@@ -54,6 +58,8 @@ from astropy.table import Table
 from ..errors import reported_as
 from ..populations.background import BackgroundModel, BackgroundObjects
 from ..cosmology import DistanceTable
+from ..imaging.light import Sersic
+from ..imaging.many_objects import draw_beyond, draw_together, drawn_together, light_reach
 from ..imaging.observe import effective_psf_image, psf_profile
 from ..output.atomic import atomic_path
 from ..output.checksums import sha256_of
@@ -126,6 +132,37 @@ def _draw_objects(image: galsim.Image, objects: BackgroundObjects, band) -> None
         overlap = stamp.bounds & image.bounds
         if overlap.isDefined():
             image[overlap] += stamp[overlap]
+
+
+def lens_light_beyond_stamps(galaxies: list, bands: tuple, size: int, stamp: int, scale: float) -> list[np.ndarray]:
+    """The light of lens galaxies beyond their stamps (one ``size x size`` image per band, ADU).
+    ``galaxies`` holds ``(x0, y0, shape, fluxes)``: a stamp's lower-left pixel, the galaxy at its
+    centre (a :class:`~simlens.imaging.light.Sersic`) and its flux per band.  Each galaxy is drawn
+    where it reaches past its stamp (:func:`~simlens.imaging.many_objects.draw_beyond`), its own
+    stamp left empty (the stamp holds that light)."""
+    images = [np.zeros((size, size)) for _ in bands]
+    for x0, y0, shape, fluxes in galaxies:
+        extra = int(np.ceil(light_reach(shape, bands, scale) - stamp / 2))
+        if extra <= 0:
+            continue
+        side, ox, oy = stamp + 2 * extra, x0 - extra, y0 - extra
+        c0, c1, r0, r1 = max(ox, 0), min(ox + side, size), max(oy, 0), min(oy + side, size)
+        for image, local in zip(images, draw_beyond(shape, fluxes, bands, side, scale, half_width=stamp / 2)):
+            image[r0:r1, c0:c1] += local[r0 - oy:r1 - oy, c0 - ox:c1 - ox]
+    return images
+
+
+def lens_galaxies(lenses: list, bands: tuple) -> list:
+    """``(x0, y0, shape, fluxes)`` of each lens's galaxy, for :func:`lens_light_beyond_stamps`."""
+    out = []
+    for x0, y0, rendered in lenses:
+        system = rendered.system
+        fluxes = [band.counts_from_magnitude(system.lens_magnitudes[band.name]) for band in bands]
+        if max(fluxes) > 0:
+            out.append((x0, y0, Sersic(flux=max(fluxes), half_light_radius=system.lens_half_light_radius,
+                                       sersic_index=system.lens_sersic_index, q=system.lens_q,
+                                       angle=system.lens_angle), fluxes))
+    return out
 
 
 def region_text(rows: list[dict], title: str) -> str:
@@ -204,6 +241,10 @@ def _render_field(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
     h["NSTAR"] = (int(np.count_nonzero(objects.kind == "star")), "stars (OBJECTS rows)")
     h["BANDS"] = (",".join(survey.band_names), "bands in HDU order")
     hdus = [primary]
+    together = drawn_together(objects, conditions)
+    alone = objects.subset(~together)
+    drawn = draw_together(objects.subset(together), conditions, size, scale)
+    beyond = lens_light_beyond_stamps(lens_galaxies(lenses, conditions), conditions, size, stamp, scale)
     timings["background"] += time.perf_counter() - t2
     for b, band in enumerate(conditions):
         t3 = time.perf_counter()
@@ -214,8 +255,9 @@ def _render_field(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
             window = (slice(y0, y0 + stamp), slice(x0, x0 + stamp))
             scene[window] += observed.lens_light + observed.lensed_source
             sources[window] += observed.lensed_source
+        scene += drawn[b] + beyond[b]
         image = galsim.Image(scene, scale=scale)
-        _draw_objects(image, objects, band)
+        _draw_objects(image, alone, band)
         timings["background"] += time.perf_counter() - t3
         t4 = time.perf_counter()
         np.clip(image.array, 0.0, None, out=image.array)  # FFT ringing of order 1e-16 of a peak
