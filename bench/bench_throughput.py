@@ -38,7 +38,7 @@ from astropy.table import Table
 from scipy import fft as scipy_fft
 
 import simlens
-from simlens.imaging.observe import convolution_sampling, psf_profile
+from simlens.imaging.observe import psf_profile
 from simlens.imaging.render import SystemRendering
 from simlens.imaging.scene import build_scene
 from simlens.lensing.mass import SIE
@@ -150,7 +150,8 @@ def floor_per_system(recipe, systems) -> tuple[float, dict]:
         traced = rendering.rays.x.size + components.detailed_pixels * ss * ss
         traced += components.refined_pixels * (4 * ss) ** 2  # refined once for the one lensed component
         rays += traced * per_ray
-        samples += (traced + rendering.rays.x.size) * per_sample  # the source on every ray, the lens on the grid
+        # the source on every traced ray, the lens light once on the padded grid at the PSF stage's sampling
+        samples += (traced + (grid.padded_size * s) ** 2) * per_sample
         m = scipy_fft.next_fast_len(grid.padded_size * s, real=True)
         image = rng.random((m, m)).astype(np.float32)
         kernel = scipy_fft.rfft2(image)

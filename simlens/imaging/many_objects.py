@@ -233,7 +233,7 @@ class _Planes:
         s, size, margin = self.sampling, self.size, self.margin
         if self.empty:
             return np.zeros((size, size))
-        # at one sample per pixel the kernel carries the pixel response; finer planes get it from the block sum
-        convolved = _convolver(band, self.step, self.n, margin * s, with_pixel=False)(self.planes[b])
+        # each sample stands for its cell's mean (the pixel response comes from the block sum)
+        convolved = _convolver(band, self.step, self.n, margin * s)(self.planes[b])
         first, last = margin * s, (margin + size) * s
         return _block_sum(convolved[first:last, first:last], s).astype(float)

@@ -63,18 +63,17 @@ def convolution_sampling(supersampling: int) -> int:
     return CONVOLUTION_SAMPLING if supersampling % CONVOLUTION_SAMPLING == 0 else supersampling
 
 
-def _convolver(band: BandConditions, scale: float, size: int, margin: int, with_pixel: bool = False) -> "_FFTConvolver":
-    """The convolution of ``size x size`` images with the band's PSF sampled every ``scale`` arcsec
-    (``with_pixel``: the PSF convolved with a pixel of that size); the last few are kept, so that
-    systems sharing a seeing share the PSF's transform."""
-    return _shared_convolver((band.psf_profile, band.psf_fwhm, band.psf_beta), scale, size, margin, with_pixel)
+def _convolver(band: BandConditions, scale: float, size: int, margin: int) -> "_FFTConvolver":
+    """The convolution of ``size x size`` images with the band's PSF sampled every ``scale`` arcsec;
+    the last few are kept, so that systems sharing a seeing share the PSF's transform."""
+    return _shared_convolver((band.psf_profile, band.psf_fwhm, band.psf_beta), scale, size, margin)
 
 
 @functools.lru_cache(maxsize=16)
-def _shared_convolver(psf: tuple, scale: float, size: int, margin: int, with_pixel: bool) -> "_FFTConvolver":
+def _shared_convolver(psf: tuple, scale: float, size: int, margin: int) -> "_FFTConvolver":
     profile, fwhm, beta = psf
     band = _PsfOnly(psf_profile=profile, psf_fwhm=fwhm, psf_beta=beta)
-    return _FFTConvolver((size, size), psf_kernel(band, scale, with_pixel), exact_margin=margin)
+    return _FFTConvolver((size, size), psf_kernel(band, scale), exact_margin=margin)
 
 
 @dataclass(frozen=True)
@@ -86,13 +85,12 @@ class _PsfOnly:
     psf_beta: float
 
 
-def psf_kernel(band: BandConditions, scale: float, with_pixel: bool = False) -> np.ndarray:
-    """The PSF (``with_pixel``: convolved with a square pixel of side ``scale``) sampled every
-    ``scale`` arcsec on an odd stamp of radius PSF_RADIUS_IN_FWHM FWHM (sum = the PSF's flux within
-    the stamp), centred on its central sample."""
+def psf_kernel(band: BandConditions, scale: float) -> np.ndarray:
+    """The PSF sampled every ``scale`` arcsec on an odd stamp of radius PSF_RADIUS_IN_FWHM FWHM
+    (sum = the PSF's flux within the stamp), centred on its central sample."""
     half = int(math.ceil(PSF_RADIUS_IN_FWHM * band.psf_fwhm / scale))
     n = 2 * half + 1
-    image = psf_profile(band).drawImage(nx=n, ny=n, scale=scale, method="auto" if with_pixel else "no_pixel")
+    image = psf_profile(band).drawImage(nx=n, ny=n, scale=scale, method="no_pixel")
     return image.array.astype(float)
 
 
