@@ -63,17 +63,51 @@ def convolution_sampling(supersampling: int) -> int:
     return CONVOLUTION_SAMPLING if supersampling % CONVOLUTION_SAMPLING == 0 else supersampling
 
 
-def _convolver(band: BandConditions, scale: float, size: int, margin: int) -> "_FFTConvolver":
-    """The convolution of ``size x size`` images with the band's PSF sampled every ``scale`` arcsec;
-    the last few are kept, so that systems sharing a seeing share the PSF's transform."""
-    return _shared_convolver((band.psf_profile, band.psf_fwhm, band.psf_beta), scale, size, margin)
+def _convolver(band: BandConditions, scale: float, shape, margin: int) -> "_FFTConvolver":
+    """The convolution of images of ``shape`` (a side, or ``(rows, columns)``) with the band's PSF
+    sampled every ``scale`` arcsec; the last few are kept, so that systems sharing a seeing share
+    the PSF's transform."""
+    shape = (shape, shape) if np.ndim(shape) == 0 else tuple(shape)
+    return _shared_convolver((band.psf_profile, band.psf_fwhm, band.psf_beta), scale, shape, margin)
 
 
-@functools.lru_cache(maxsize=16)
-def _shared_convolver(psf: tuple, scale: float, size: int, margin: int) -> "_FFTConvolver":
+@functools.lru_cache(maxsize=32)
+def _shared_convolver(psf: tuple, scale: float, shape: tuple, margin: int) -> "_FFTConvolver":
     profile, fwhm, beta = psf
     band = _PsfOnly(psf_profile=profile, psf_fwhm=fwhm, psf_beta=beta)
-    return _FFTConvolver((size, size), psf_kernel(band, scale), exact_margin=margin)
+    return _FFTConvolver(shape, psf_kernel(band, scale), exact_margin=margin)
+
+
+# A compact component (a lensed source) is convolved on the box holding its light, widened by the
+# kernel's reach, rather than on the whole padded field: the box holds every sample above
+# LIGHT_BOX_THRESHOLD of the brightest, and is used only if the light outside it is at most
+# LIGHT_BOX_LOSS of the total (else the whole field is convolved).  Box sides are rounded up to
+# LIGHT_BOX_STEP samples, so that systems share the convolvers.
+LIGHT_BOX_THRESHOLD = 1e-7
+LIGHT_BOX_LOSS = 1e-6
+LIGHT_BOX_STEP = 32
+
+
+def _light_box(plane: np.ndarray, margin: int) -> tuple[slice, slice] | None:
+    """The box of ``plane`` to convolve (see LIGHT_BOX_THRESHOLD), or None for the whole plane."""
+    peak = float(plane.max())
+    if not peak > 0:
+        return None
+    rows = np.flatnonzero((plane > LIGHT_BOX_THRESHOLD * peak).any(axis=1))
+    cols = np.flatnonzero((plane > LIGHT_BOX_THRESHOLD * peak).any(axis=0))
+    box = []
+    for hits, n in ((rows, plane.shape[0]), (cols, plane.shape[1])):
+        if hits.size == 0:
+            return None
+        lo, hi = int(hits[0]) - margin, int(hits[-1]) + 1 + margin  # the light and the kernel's reach
+        side = -(-(hi - lo) // LIGHT_BOX_STEP) * LIGHT_BOX_STEP
+        if lo < 0 or hi > n or side >= n:  # (light near the field's edge would wrap into the box)
+            return None
+        start = min(max(lo - (side - (hi - lo)) // 2, 0), n - side)
+        box.append(slice(start, start + side))
+    total = float(plane.sum(dtype=np.float64))
+    inside = float(plane[box[0], box[1]].sum(dtype=np.float64))
+    return (box[0], box[1]) if total - inside <= LIGHT_BOX_LOSS * total else None
 
 
 @dataclass(frozen=True)
@@ -184,15 +218,22 @@ def observe_scene(scene: Scene, band: BandConditions, noise_seed: int) -> Observ
     if scene.sampling % sampling:
         raise ValueError(f"scene sampling {scene.sampling} is not a multiple of the convolution sampling {sampling}")
     to_convolution_grid = scene.sampling // sampling
-    convolve = _convolver(band, grid.pixel_scale / sampling, grid.padded_size * sampling, grid.padding * sampling)
+    scale, margin = grid.pixel_scale / sampling, grid.padding * sampling
     first, last = grid.padding * sampling, (grid.padding + grid.size) * sampling
 
-    def to_pixels(fine: np.ndarray) -> np.ndarray:
-        convolved = convolve(_block_sum(fine, to_convolution_grid))
+    def to_pixels(fine: np.ndarray, compact: bool = False) -> np.ndarray:
+        plane = _block_sum(fine, to_convolution_grid)
+        box = _light_box(plane, margin) if compact else None
+        if box is None:
+            convolved = _convolver(band, scale, plane.shape, margin)(plane)
+        else:
+            part = plane[box]
+            convolved = np.zeros(plane.shape, np.float32)
+            convolved[box] = _convolver(band, scale, part.shape, margin)(part)
         return _block_sum(convolved[first:last, first:last], sampling).astype(float)
 
     lens = to_pixels(scene.lens_light)
-    source = to_pixels(scene.lensed_source)
+    source = to_pixels(scene.lensed_source, compact=True)
     # FFT round-off can leave values of order -1e-7 of the peak; clip before Poisson noise.
     lens = np.clip(lens, 0.0, None)
     source = np.clip(source, 0.0, None)
