@@ -7,7 +7,9 @@ in one run of this script, and checks the files are identical:
   dask        a Dask LocalCluster of --workers single-threaded processes
 Prints wall times, the parallel efficiency  t_serial / (workers * t_processes)  and the Dask
 overhead  t_dask / t_processes - 1.  Start-up (worker processes, imports) is included: it is part of
-what a user waits for.  Run: python bench/bench_parallel.py [--n 200] [--workers 2]
+what a user waits for.  The load average is printed first, with a warning when the machine is not
+idle (other work then takes cores from the parallel runs, not from the serial one).
+Run: python bench/bench_parallel.py [--n 200] [--workers 2]
 """
 
 from __future__ import annotations
@@ -15,6 +17,7 @@ from __future__ import annotations
 import argparse
 import dataclasses
 import hashlib
+import os
 import shutil
 import tempfile
 import time
@@ -35,6 +38,9 @@ def main():
     parser.add_argument("--shard-size", type=int, default=10)
     parser.add_argument("--no-dask", action="store_true", help="compare serial and processes only")
     args = parser.parse_args()
+    load = os.getloadavg()
+    print("load average (1, 5, 15 min):", ", ".join(f"{v:.2f}" for v in load), f"on {os.cpu_count()} cores"
+          + ("" if load[0] < 0.3 else "  -- not idle: the parallel figures below are pessimistic"))
     recipe = simlens.load_recipe(Path(__file__).parents[1] / "recipes" / "demo.toml").with_overrides(count=args.n)
     recipe = dataclasses.replace(recipe, output=dataclasses.replace(recipe.output, shard_size=args.shard_size,
                                                                      per_system_files=False))

@@ -169,7 +169,9 @@ def _gallery(args) -> int:
     rows = select_systems(truth, args.where or (), missed, args.threshold, args.sort, args.descending)
     rows = rows[: args.n]
     files = population_plots(run_dir) if args.population else []
-    files += contact_sheets(run_dir, rows, name=args.name, bands=args.bands)
+    panels = [p.strip() for p in args.panels.split(",") if p.strip()] if args.panels else None
+    files += contact_sheets(run_dir, rows, name=args.name, bands=args.bands, panels=panels, smooth=args.smooth,
+                            stretch_scale=args.stretch_scale, q=args.q)
     print(f"{len(rows)} systems drawn")
     for f in files:
         print(f"  wrote {f}")
@@ -271,6 +273,15 @@ def build_parser() -> argparse.ArgumentParser:
     gallery.add_argument("--n", type=int, default=36, help="at most this many systems (default 36)")
     gallery.add_argument("--bands", nargs=3, metavar=("RED", "GREEN", "BLUE"), help="bands for R, G, B")
     gallery.add_argument("--name", default="gallery", help="file stem in RUN_DIR/gallery/ (default: gallery)")
+    gallery.add_argument("--panels", metavar="LIST",
+                         help="comma-separated panels per system: observed, subtracted (minus the noiseless lens light), "
+                              "source (the noiseless lensed source); default: all the run's planes allow")
+    gallery.add_argument("--smooth", type=float, metavar="FWHM",
+                         help="FWHM (arcsec) of the Gaussian smoothing the subtracted panel (default: the PSF's; 0: none)")
+    gallery.add_argument("--stretch-scale", type=float, default=1.0,
+                         help="multiply each panel's asinh linear range (below 1 shows fainter structure; default 1)")
+    gallery.add_argument("--q", type=float, help="asinh softening Q for every panel (default: 8 observed, 3 subtracted, "
+                                                 "8 source)")
     gallery.add_argument("--population", action="store_true", help="also plot the population's distributions")
     gallery.set_defaults(func=_gallery)
     return parser

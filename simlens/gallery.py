@@ -1,8 +1,22 @@
 """Pictures of a run: contact sheets of colour composites and plots of the population.
 
-Contact sheets show each selected system as a colour composite of three bands (the asinh stretch of
-Lupton et al. 2004, via ``astropy.visualization.make_lupton_rgb``; fewer bands are repeated) with
-its key truth under it.  Systems are chosen by simple truth cuts (``"arc_snr_r < 10"``; no code is
+A contact sheet shows each selected system as up to three colour composites of three bands
+(reddest as R to bluest as B; fewer bands are repeated), side by side, with its key truth under
+them:
+
+- ``observed``: the cutout as the survey sees it;
+- ``subtracted``: the cutout minus the noiseless lens light (the arcs as a finder must find them);
+- ``source``: the noiseless lensed source alone.
+
+Every band is divided by its own pixel noise sigma (measured on the cutout's noise: the image less
+its noiseless planes), so the noise looks alike in all three channels and a panel's brightness reads
+as signal-to-noise.  The subtracted panel is smoothed by a Gaussian of the PSF's FWHM (the matched
+filter of an unresolved feature; arcs in a 1-sigma mask average 1.4-3.6 sigma a pixel, too faint to
+stand out pixel by pixel).  Each panel is the asinh stretch of Lupton et al. (2004), via
+``astropy.visualization.make_lupton_rgb``, its linear range a fraction of the panel's
+99.5th-percentile brightness, its softening and black level set per panel (``PANEL_STRETCH``).
+The segmentation mask (the reference band's MASK plane) is drawn as a contour on the subtracted and
+source panels.  Systems are chosen by simple truth cuts (``"arc_snr_r < 10"``; no code is
 evaluated), optionally restricted to the lenses a finder missed, and sorted by a truth column.
 """
 
@@ -21,7 +35,14 @@ from astropy.table import Table
 from .errors import SimlensError
 from .runs.loader import shard_files
 
-__all__ = ["parse_cut", "select_systems", "contact_sheets", "population_plots"]
+__all__ = ["parse_cut", "select_systems", "contact_sheets", "panel_images", "population_plots", "PANELS",
+           "PANEL_STRETCH"]
+
+PANELS = ("observed", "subtracted", "source")
+PANEL_TITLES = {"observed": "observed", "subtracted": "lens subtracted, smoothed", "source": "lensed source (noiseless)"}
+# Per panel: the asinh stretch's linear range as a fraction of the panel's 99.5th-percentile
+# brightness, its softening Q, and the black level (in noise sigma).
+PANEL_STRETCH = {"observed": (0.5, 8.0, -1.0), "subtracted": (1.0, 3.0, -1.0), "source": (0.2, 8.0, 0.0)}
 
 _OPERATORS = {"<=": operator.le, ">=": operator.ge, "==": operator.eq, "!=": operator.ne,
               "<": operator.lt, ">": operator.gt}
@@ -65,16 +86,65 @@ def select_systems(truth: Table, cuts: Sequence[str] = (), missed: Table | None 
     return chosen
 
 
-def _images_of(run_dir: Path, ids: np.ndarray) -> dict:
-    """``system_id -> (bands, ny, nx)`` observed images, read from the shards."""
+def _planes_of(run_dir: Path, ids: np.ndarray) -> dict:
+    """``system_id -> {plane: (bands, ny, nx)}`` of the IMAGES, LENS, SOURCE and MASK planes the
+    shards hold (the noiseless ones only if the run wrote them), and ``"pixel_scale"`` (arcsec)."""
     from astropy.io import fits
 
     wanted, out = set(int(i) for i in ids), {}
     for path in shard_files(run_dir):
         with fits.open(path, memmap=True) as hdul:
             first, n = int(hdul[0].header["FIRSTID"]), int(hdul[0].header["NSYSTEM"])
+            names = [name for name in ("IMAGES", "LENS", "SOURCE", "MASK") if name in hdul]
             for i in sorted(wanted & set(range(first, first + n))):
-                out[i] = np.array(hdul["IMAGES"].data[i - first], dtype=float)
+                out[i] = {name: np.array(hdul[name].data[i - first], dtype=float) for name in names}
+                out[i]["pixel_scale"] = float(hdul[0].header["PIXSCALE"])
+    return out
+
+
+def noise_sigma(planes: dict) -> np.ndarray:
+    """Per-band pixel noise sigma of one cutout: the standard deviation of the image less its
+    noiseless planes, or (without them) 1.4826 times the median absolute deviation of the image."""
+    image = planes["IMAGES"]
+    if "LENS" in planes and "SOURCE" in planes:
+        return np.maximum((image - planes["LENS"] - planes["SOURCE"]).std(axis=(1, 2)), 1e-30)
+    median = np.median(image, axis=(1, 2), keepdims=True)
+    return np.maximum(1.4826 * np.median(np.abs(image - median), axis=(1, 2)), 1e-30)
+
+
+def _smoothed(cube: np.ndarray, sigma_pixels: float) -> np.ndarray:
+    from scipy import ndimage
+
+    return np.array([ndimage.gaussian_filter(band, sigma_pixels, mode="nearest") for band in cube]) if sigma_pixels > 0 else cube
+
+
+def panel_images(planes: dict, index: Sequence[int], panels: Sequence[str] = PANELS, smooth_pixels: float = 0.0,
+                 stretch_scale: float = 1.0, q: float | None = None) -> dict:
+    """``panel -> (ny, nx, 3)`` RGB image (floats in [0, 1]) of one cutout's ``planes`` (see
+    :func:`_planes_of`), with the bands ``index`` as R, G, B (the module docstring says how);
+    ``smooth_pixels`` is the Gaussian sigma by which the subtracted panel is smoothed."""
+    from astropy.visualization import make_lupton_rgb
+
+    bands = list(index)
+    out = {}
+    for panel in panels:
+        if panel not in PANELS:
+            raise SimlensError(f"unknown gallery panel {panel!r}; choose from {', '.join(PANELS)}")
+        if panel == "source":  # noiseless: in units of the cutout's noise, but no noise to measure
+            channels = planes["SOURCE"][bands] / noise_sigma(planes)[bands, None, None]
+        else:
+            signal = planes["IMAGES"] - (planes["LENS"] if panel == "subtracted" else 0.0)
+            smooth = smooth_pixels if panel == "subtracted" else 0.0
+            noise = {"IMAGES": _smoothed(planes["IMAGES"], smooth)}
+            if "LENS" in planes and "SOURCE" in planes:
+                noise.update(LENS=_smoothed(planes["LENS"], smooth), SOURCE=_smoothed(planes["SOURCE"], smooth))
+            channels = _smoothed(signal, smooth)[bands] / noise_sigma(noise)[bands, None, None]
+        fraction, softening, minimum = PANEL_STRETCH[panel]
+        top = float(np.percentile(channels.mean(axis=0), 99.5))
+        linear = max(stretch_scale * fraction * top, 1e-12 if panel == "source" else 1.0)
+        with np.errstate(invalid="ignore", divide="ignore"):  # (astropy divides by zero where a pixel is black)
+            rgb = make_lupton_rgb(*channels, minimum=minimum, stretch=linear, Q=softening if q is None else q)
+        out[panel] = rgb / 255.0
     return out
 
 
@@ -97,15 +167,18 @@ def _caption(row, band: str) -> str:
     return "  ".join(first) + "\n" + "  ".join(second)
 
 
-def contact_sheets(run_dir: str | Path, rows: Table, name: str = "gallery", per_page: int = 36,
-                   columns: int = 6, bands: Sequence[str] | None = None, stretch: float = 0.5,
-                   q: float = 8.0) -> list[str]:
-    """PNG contact sheets of ``rows`` (truth rows of the run) in ``run_dir/gallery/``."""
+def contact_sheets(run_dir: str | Path, rows: Table, name: str = "gallery", per_page: int = 24,
+                   columns: int = 4, bands: Sequence[str] | None = None, panels: Sequence[str] | None = None,
+                   smooth: float | None = None, stretch_scale: float = 1.0, q: float | None = None) -> list[str]:
+    """PNG contact sheets of ``rows`` (truth rows of the run) in ``run_dir/gallery/``: ``columns``
+    systems a row, each as its ``panels`` (default: all the run's planes allow).  ``smooth`` is the
+    FWHM (arcsec) of the Gaussian that smooths the subtracted panel (default: the system's PSF FWHM
+    in the reference band; 0: none); ``stretch_scale`` multiplies every panel's linear range and
+    ``q`` replaces its softening (see PANEL_STRETCH)."""
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
-    from astropy.visualization import make_lupton_rgb
 
     run_dir = Path(run_dir)
     manifest = json.loads((run_dir / "manifest.json").read_text(encoding="utf-8"))
@@ -118,29 +191,48 @@ def contact_sheets(run_dir: str | Path, rows: Table, name: str = "gallery", per_
         bands.append(bands[-1])
     if len(rows) == 0:
         raise SimlensError("no system passes the cuts; nothing to draw")
-    images = _images_of(run_dir, np.asarray(rows["system_id"]))
+    for panel in panels or ():
+        if panel not in PANELS:
+            raise SimlensError(f"unknown gallery panel {panel!r}; choose from {', '.join(PANELS)}")
+    planes = _planes_of(run_dir, np.asarray(rows["system_id"]))
+    held = set.intersection(*(set(p) for p in planes.values()))
+    possible = [p for p in PANELS if p == "observed" or {"LENS", "SOURCE"} <= held]
+    if panels and set(panels) - set(possible):
+        raise SimlensError(f"panels {', '.join(sorted(set(panels) - set(possible)))} need the noiseless LENS and "
+                           "SOURCE planes, which this run did not write (recipe [output] noiseless = true)")
+    panels = list(panels or possible)
     index = [run_bands.index(b) for b in bands[:3]]
+    reference_index = run_bands.index(reference)
     out = run_dir / "gallery"
     out.mkdir(parents=True, exist_ok=True)
-    files = []
+    files, width = [], len(panels)
     for page in range(math.ceil(len(rows) / per_page)):
         chunk = rows[page * per_page:(page + 1) * per_page]
         n_rows = math.ceil(len(chunk) / columns)
-        fig, axes = plt.subplots(n_rows, columns, figsize=(1.9 * columns, 2.35 * n_rows + 0.4), squeeze=False)
+        fig, axes = plt.subplots(n_rows, columns * width, figsize=(1.7 * columns * width + 0.1 * columns, 2.2 * n_rows + 0.5),
+                                 squeeze=False)
         for ax in axes.flat:
             ax.axis("off")
-        for ax, row in zip(axes.flat, chunk):
-            cube = images[int(row["system_id"])]
-            # red, green, blue = the reddest to the bluest band; a common scale for all three
-            scale = max(np.percentile(cube[index], 99.5), 1e-9)
-            rgb = make_lupton_rgb(*(cube[k] / scale for k in index), stretch=stretch, Q=q)
-            ax.imshow(rgb, origin="lower")
-            ax.text(0.5, -0.03, _caption(row, reference), transform=ax.transAxes, ha="center", va="top",
-                    fontsize=6)
-        fig.suptitle(f"{manifest.get('simlens_run', '')}: {', '.join(bands[:3])} as R, G, B "
-                     f"(page {page + 1})", fontsize=8)
-        fig.subplots_adjust(left=0.01, right=0.99, top=1 - 0.35 / fig.get_figheight(), bottom=0.05,
-                            wspace=0.05, hspace=0.35)
+        for k, row in enumerate(chunk):
+            system = planes[int(row["system_id"])]
+            fwhm = _number(row, f"psf_fwhm_{reference}") if smooth is None else smooth
+            sigma_pixels = fwhm / (2.0 * math.sqrt(2.0 * math.log(2.0))) / system["pixel_scale"] if fwhm > 0 else 0.0
+            images = panel_images(system, index, panels, smooth_pixels=sigma_pixels, stretch_scale=stretch_scale, q=q)
+            row_axes = axes[k // columns, (k % columns) * width:(k % columns + 1) * width]
+            for ax, panel in zip(row_axes, panels):
+                ax.imshow(images[panel], origin="lower")
+                if panel != "observed" and "MASK" in system and system["MASK"][reference_index].any():
+                    ax.contour(system["MASK"][reference_index], levels=[0.5], colors="#00e5ff", linewidths=0.5)
+                if k < columns:
+                    ax.set_title(PANEL_TITLES[panel], fontsize=6, pad=2)
+            row_axes[width // 2].text(0.5, -0.03, _caption(row, reference), transform=row_axes[width // 2].transAxes,
+                                      ha="center", va="top", fontsize=6)
+        smoothing = "the PSF" if smooth is None else (f'{smooth:g}"' if smooth > 0 else "nothing")
+        fig.suptitle(f"{manifest.get('simlens_run', '')}: {', '.join(bands[:3])} as R, G, B, each band in units of its "
+                     f"noise sigma, asinh stretches; subtracted panels smoothed by {smoothing}; contour: the "
+                     f"{reference} mask (page {page + 1})", fontsize=7)
+        fig.subplots_adjust(left=0.005, right=0.995, top=1 - 0.45 / fig.get_figheight(), bottom=0.04,
+                            wspace=0.04, hspace=0.4)
         path = out / f"{name}_{page + 1:03d}.png"
         fig.savefig(path, dpi=110)
         plt.close(fig)

@@ -151,3 +151,42 @@ def test_gallery_and_population_plots_are_written(tmp_path, capsys):
     files = sorted(p.name for p in (tmp_path / "run" / "gallery").iterdir())
     assert files == ["gallery_001.png", "population.png"]
     assert main(["gallery", str(tmp_path / "run"), "--where", "einstein_radius > 99"]) == 2
+
+
+@pytest.fixture(scope="module")
+def gallery_run(tmp_path_factory):
+    """Twelve physical systems on 48-pixel cutouts, noiseless planes written."""
+    out = tmp_path_factory.mktemp("gallery") / "run"
+    text = PHYSICAL_RECIPE.replace("count = 6", "count = 12").replace("cutout_size = 32", "cutout_size = 48")
+    simlens.run(parse_recipe(text), out)
+    return out
+
+
+def test_arcs_stand_out_in_the_lens_subtracted_panels(gallery_run):
+    from scipy import ndimage
+
+    from simlens.gallery import _planes_of, panel_images
+
+    truth = Table.read(gallery_run / "truth.fits")
+    bright = truth[truth["arc_snr_r"] > 20]
+    assert len(bright) >= 2
+    planes = _planes_of(gallery_run, np.asarray(bright["system_id"]))
+    for row in bright:
+        system = planes[int(row["system_id"])]
+        # as the gallery draws it by default: r, g, g as R, G, B, smoothed by a Gaussian of the PSF's FWHM
+        sigma = row["psf_fwhm_r"] / (2 * math.sqrt(2 * math.log(2))) / system["pixel_scale"]
+        panel = panel_images(system, [1, 0, 0], ["subtracted"], smooth_pixels=sigma)["subtracted"]
+        brightness = panel.mean(axis=2)
+        mask = system["MASK"][1].astype(bool)  # the r-band segmentation mask
+        background = ~ndimage.binary_dilation(mask, iterations=3)
+        # issue 13's criterion: inside the mask the composite exceeds the background by 5 of its pixel scatter
+        contrast = (brightness[mask].mean() - brightness[background].mean()) / brightness[background].std()
+        assert contrast >= 5, (int(row["system_id"]), float(row["arc_snr_r"]), contrast)
+
+
+def test_gallery_panels_and_their_options(gallery_run, capsys):
+    assert main(["gallery", str(gallery_run), "--n", "5", "--panels", "observed,subtracted", "--stretch-scale", "0.5",
+                 "--smooth", "0", "--name", "two"]) == 0
+    assert (gallery_run / "gallery" / "two_001.png").is_file()
+    assert main(["gallery", str(gallery_run), "--panels", "observed,sky"]) == 2
+    assert "unknown gallery panel 'sky'" in capsys.readouterr().err

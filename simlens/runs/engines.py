@@ -57,7 +57,7 @@ def run_tasks(function: Callable, tasks: Sequence, *, engine: str = "auto", work
             yield function(task)
     elif engine == "processes":
         context = multiprocessing.get_context("forkserver")
-        context.set_forkserver_preload(["simlens.shard"])
+        context.set_forkserver_preload(["simlens.runs.shards"])
         pool = ProcessPoolExecutor(max_workers=min(workers, len(tasks)), mp_context=context)
         try:
             futures = [pool.submit(function, task) for task in tasks]

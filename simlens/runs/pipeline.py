@@ -28,7 +28,7 @@ from ..recipe import Recipe
 from .resources import check_resources
 from .run_folder import RunFolder
 from ..truth.selection import describe_attrition, sum_attrition
-from .shards import read_truth_rows, render_shard, shard_plan
+from .shards import describe_truth_rows, read_truth_rows, render_shard, shard_plan
 
 __all__ = ["RunSummary", "run", "default_output_folder"]
 
@@ -117,15 +117,16 @@ def _run_open_folder(recipe: Recipe, out: Path, folder: RunFolder, workers: int,
             bar.close()
     reference = f"arc_snr_{recipe.reference_band}"
     try:
-        summary_columns = write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i]), len(plan), out, "truth",
-                                          keep=("n_images", "einstein_radius", reference))
-        write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i], "SUBHALOS"), len(plan), out, "subhalos")
-        write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i], "IMAGE_TRUTH"), len(plan), out, "images")
-        write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i], "LINE_OF_SIGHT"), len(plan), out,
-                        "line_of_sight")
+        def catalogue(stem: str, table: str, keep=()):
+            return write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i], table), len(plan), out, stem,
+                                   keep=keep, describe_part=lambda i: describe_truth_rows(out, recipe, plan[i], table))
+
+        summary_columns = catalogue("truth", "TRUTH", keep=("n_images", "einstein_radius", reference))
+        catalogue("subhalos", "SUBHALOS")
+        catalogue("images", "IMAGE_TRUTH")
+        catalogue("line_of_sight", "LINE_OF_SIGHT")
         if fields:
-            write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i], "OBJECTS"), len(plan), out,
-                            "field_objects")
+            catalogue("field_objects", "OBJECTS")
     except OSError as exc:
         raise _write_error(out, exc) from None
     seconds = time.perf_counter() - t_start
