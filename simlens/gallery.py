@@ -11,8 +11,8 @@ them:
 Every band is divided by its own pixel noise sigma (measured on the cutout's noise: the image less
 its noiseless planes), so the noise looks alike in all three channels and a panel's brightness reads
 as signal-to-noise.  The subtracted panel is smoothed by a Gaussian of the PSF's FWHM (the matched
-filter of an unresolved feature; arcs in a 1-sigma mask average 1.4-3.6 sigma a pixel, too faint to
-stand out pixel by pixel).  Each panel is the asinh stretch of Lupton et al. (2004), via
+filter of an unresolved feature: most pixels of an arc's 1-sigma mask are too faint to stand out
+one by one; the README gives the measured contrast).  Each panel is the asinh stretch of Lupton et al. (2004), via
 ``astropy.visualization.make_lupton_rgb``, its linear range a fraction of the panel's
 99.5th-percentile brightness, its softening and black level set per panel (``PANEL_STRETCH``).
 The segmentation mask (the reference band's MASK plane) is drawn as a contour on the subtracted and

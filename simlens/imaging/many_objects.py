@@ -1,7 +1,7 @@
 """Many unlensed objects drawn together: one image per band, convolved with the PSF once.
 
-A field holds thousands of faint galaxies and stars.  Drawing each with GalSim costs about 4 ms a
-band; here every object's light is instead sampled on shared planes, one per band, which are
+A field holds thousands of faint galaxies and stars, too many to draw one by one with GalSim;
+here every object's light is instead sampled on shared planes, one per band, which are
 convolved once with the band's PSF and summed to pixels, as a cutout's scene is
 (:mod:`simlens.imaging.observe`).  A fine plane at the PSF stage's sampling
 (:data:`~simlens.imaging.observe.CONVOLUTION_SAMPLING` per pixel side) holds the stars and the small
