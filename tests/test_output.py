@@ -173,7 +173,13 @@ def test_streamed_catalogue_equals_the_stacked_table(tmp_path):
     parts = [Table({"system_id": [0, 1], "name": ["a", "bb"], "x": [0.5, 1.5] * u.arcsec, "ok": [True, False]}),
              Table({"system_id": [2], "name": ["cccccc"], "x": [2.5] * u.arcsec, "ok": [True]}),
              Table({"system_id": [3, 4, 5], "name": ["d", "e", "f"], "x": [3.5, 4.5, 5.5] * u.arcsec, "ok": [False] * 3})]
-    kept = write_catalogue(lambda i: parts[i], len(parts), tmp_path, "cat", keep=("x",))
+    from simlens.output.columns import table_hdu
+
+    sources = []
+    for i, part in enumerate(parts):  # as shards hold them: one binary table each
+        fits.HDUList([fits.PrimaryHDU(), table_hdu(part, "TRUTH")]).writeto(tmp_path / f"p{i}.fits")
+        sources.append(tmp_path / f"p{i}.fits")
+    kept = write_catalogue(sources, "TRUTH", tmp_path, "cat", keep=("x",))
     whole = vstack(parts)
     for name in ("cat.fits", "cat.ecsv"):
         back = Table.read(tmp_path / name)
@@ -196,9 +202,33 @@ def test_catalogue_text_columns_of_different_widths_per_shard(tmp_path):
     parts = [Table({"system_id": [0, 1], "label": ["lens", "ring_galaxy"], "x": [1.0, 2.0]}),
              Table({"system_id": [2], "label": ["tidal_features"], "x": [3.0]})]
     for i, part in enumerate(parts):
-        part.write(tmp_path / f"p{i}.fits")
-    write_catalogue(lambda i: Table.read(tmp_path / f"p{i}.fits"), 2, tmp_path, "cat")
+        fits.HDUList([fits.PrimaryHDU(), fits.BinTableHDU(part, name="TRUTH")]).writeto(tmp_path / f"p{i}.fits")
+    write_catalogue([tmp_path / "p0.fits", tmp_path / "p1.fits"], "TRUTH", tmp_path, "cat")
     for name in ("cat.fits", "cat.ecsv"):
         table = Table.read(tmp_path / name)
         assert [str(v) for v in table["label"]] == ["lens", "ring_galaxy", "tidal_features"]
         assert list(table["x"]) == [1.0, 2.0, 3.0]
+
+
+def test_catalogue_reads_raw_records_as_astropy_reads_them(tmp_path):
+    # The catalogue reads the shards' raw FITS records; astropy's own reader (Table.read) is the
+    # reference for logicals, blank-padded text, NaNs and empty strings (masked), big-endian numbers.
+    from astropy.table import vstack
+
+    from simlens.output.catalogue import write_catalogue
+    from simlens.output.columns import table_hdu
+
+    parts = [Table({"system_id": [0, 1], "name": ["a", ""], "x": [np.nan, 1.5], "n": [3, 4], "ok": [True, False]}),
+             Table({"system_id": [2], "name": ["cccccc "], "x": [2.5], "n": [5], "ok": [True]})]
+    sources = []
+    for i, part in enumerate(parts):
+        fits.HDUList([fits.PrimaryHDU(), table_hdu(part, "SUBHALOS")]).writeto(tmp_path / f"p{i}.fits")
+        sources.append(tmp_path / f"p{i}.fits")
+    write_catalogue(sources, "SUBHALOS", tmp_path, "cat")
+    reference = vstack([Table.read(path, hdu="SUBHALOS") for path in sources])
+    for name in ("cat.fits", "cat.ecsv"):
+        back = Table.read(tmp_path / name)
+        for col in reference.colnames:
+            fill = np.nan if reference[col].dtype.kind == "f" else ("" if reference[col].dtype.kind in "US" else 0)
+            expected = np.ma.filled(reference[col], fill)
+            np.testing.assert_array_equal(np.ma.filled(back[col], fill), expected, err_msg=f"{name} {col}")

@@ -1,28 +1,36 @@
-"""The run's catalogues (truth, subhalos) assembled from the shards with bounded memory.
+"""The run's catalogues (truth, subhalos, ...) assembled from one table of every shard, with
+bounded memory.
 
-Tables are streamed in chunks of whole shards (at least CHUNK_ROWS rows, or all that remain): the
-ECSV file gets its header once and then each chunk's data lines; the FITS file gets one
-binary-table header with the total row count (and string columns as wide as the widest shard's,
-found from the shards' headers alone where the caller can) and then each chunk's fixed-size rows,
-padded to the FITS block size.  Memory stays at about one chunk's table whatever the number of
-systems (bench/bench_memory.py); the per-table costs of astropy are paid once per chunk, not once
-per shard (the catalogues are written by the parent process, after the workers).
+The shards' tables are found from their headers (read here as the FITS standard lays them out),
+read as raw records with numpy (no astropy Table or HDU per shard: building them cost the parent's
+assembly a quarter of a serial run) and gathered in chunks of whole shards (at least CHUNK_ROWS
+rows, or all that remain).  Each chunk becomes one astropy Table, its columns converted as astropy reads them (text, logicals, native
+byte order) and carrying the first shard's units and descriptions; the ECSV file gets its header
+once and then each chunk's data lines, the FITS file one binary-table header with the total row
+count (string columns as wide as the widest shard's, found from the headers) and then each
+chunk's fixed-size rows, padded to the FITS block size.  Memory stays at about one chunk's table
+whatever the number of systems (bench/bench_memory.py).  A table with scaled, null-flagged,
+multi-dimensional or variable-length columns, which raw records would misread, is read through
+astropy shard by shard instead.
 """
 
 from __future__ import annotations
 
 import io
+import math
+import re
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable, Sequence
+from typing import Sequence
 
 import numpy as np
 from astropy.io import fits
-from astropy.table import Table, vstack
+from astropy.table import Column, MaskedColumn, Table, vstack
 
-from .columns import table_hdu
+from .columns import read_table, table_hdu
 from .atomic import atomic_path
 
-__all__ = ["write_catalogue"]
+__all__ = ["write_catalogue", "table_layout", "TableLayout"]
 
 BLOCK = 2880
 CHUNK_ROWS = 20_000
@@ -35,66 +43,162 @@ def _with_widths(table: Table, widths: dict) -> Table:
     return table
 
 
-def _string_widths(table: Table) -> dict:
-    """Character widths of the text columns (unicode, or bytes as FITS tables are read back)."""
+
+# FITS binary-table formats read as raw records (the FITS standard, table 18); others go through astropy
+_RAW_FORMATS = {"L": "i1", "B": "u1", "I": ">i2", "J": ">i4", "K": ">i8", "E": ">f4", "D": ">f8", "C": ">c8", "M": ">c16"}
+_TFORM = re.compile(r"^\s*(\d*)([A-Z])(.*)$")
+
+
+@dataclass(frozen=True)
+class TableLayout:
+    """Where one binary table of a FITS file lies and how its rows are laid out: ``dtype`` is None
+    where raw records would not read as astropy reads them (scaled, null-flagged, multi-dimensional
+    or variable-length columns)."""
+
+    path: Path
+    rows: int
+    offset: int  # bytes from the start of the file to the table's data
+    dtype: np.dtype | None
+    widths: dict  # text columns: characters
+
+    def records(self) -> np.ndarray:
+        with open(self.path, "rb") as stream:
+            stream.seek(self.offset)
+            data = stream.read(self.rows * self.dtype.itemsize)
+        return np.frombuffer(data, self.dtype, count=self.rows).copy()
+
+
+def _card_value(text: str):
+    text = text.strip()
+    if text.startswith("'"):
+        end = 1
+        while True:  # a quote is doubled inside a string
+            end = text.index("'", end)
+            if text[end:end + 2] != "''":
+                return text[1:end].replace("''", "'").rstrip()
+            end += 2
+    return text.split("/", 1)[0].strip()
+
+
+def table_layout(path: Path, extname: str) -> TableLayout:
+    """The layout of the binary table ``extname`` of the FITS file ``path``, read from the headers
+    (2880-byte blocks of 80-character cards; each data unit's size from BITPIX, NAXISn, PCOUNT and
+    GCOUNT, as the FITS standard defines it)."""
+    with open(path, "rb") as stream:
+        offset = 0
+        while True:
+            cards, ended = {}, False
+            while not ended:
+                block = stream.read(BLOCK)
+                if len(block) < BLOCK:
+                    raise ValueError(f"{path}: no binary table {extname!r}")
+                offset += BLOCK
+                for i in range(0, BLOCK, 80):
+                    card = block[i:i + 80].decode("ascii", "replace")
+                    if card[:8].rstrip() == "END":
+                        ended = True
+                        break
+                    if card[8:10] == "= ":
+                        cards[card[:8].rstrip()] = _card_value(card[10:])
+            naxis = int(cards.get("NAXIS", 0))
+            elements = math.prod(int(cards[f"NAXIS{k}"]) for k in range(1, naxis + 1)) if naxis else 0
+            size = abs(int(cards["BITPIX"])) // 8 * int(cards.get("GCOUNT", 1)) * (int(cards.get("PCOUNT", 0)) + elements)
+            if cards.get("XTENSION") == "BINTABLE" and cards.get("EXTNAME") == extname:
+                return _layout(path, cards, offset)
+            offset += size + (-size) % BLOCK
+            stream.seek(offset)
+
+
+def _layout(path: Path, cards: dict, offset: int) -> TableLayout:
+    fields, widths = [], {}
+    raw = not any(key.startswith(("TSCAL", "TZERO", "TNULL", "TDIM")) for key in cards)
+    for k in range(1, int(cards["TFIELDS"]) + 1):
+        name, match = cards[f"TTYPE{k}"], _TFORM.match(cards[f"TFORM{k}"])
+        repeat, code = int(match.group(1) or 1), match.group(2)
+        if code == "A":
+            widths[name] = repeat
+            fields.append((name, f"S{repeat}"))
+        elif code in _RAW_FORMATS and not match.group(3):
+            fields.append((name, _RAW_FORMATS[code], (repeat,)) if repeat > 1 else (name, _RAW_FORMATS[code]))
+        else:
+            raw = False
+    dtype = np.dtype(fields) if raw else None
+    if dtype is not None and dtype.itemsize != int(cards["NAXIS1"]):
+        dtype = None
+    return TableLayout(path=Path(path), rows=int(cards["NAXIS2"]), offset=offset, dtype=dtype, widths=widths)
+
+
+def _as_astropy_reads(raw: np.ndarray, template: Table) -> Table:
+    """A Table of raw FITS records converted as astropy's FITS reader converts them (logicals to
+    booleans, text stripped of trailing blanks and decoded, native byte order, NaNs and empty
+    strings masked), with the units, descriptions and formats of ``template`` (a shard's table read
+    by astropy)."""
+    columns = []
+    for name in template.colnames:
+        like, values, mask = template[name], raw[name], None
+        kind = like.dtype.kind
+        if kind == "b":
+            values = values == ord("T")  # FITS logicals are stored as the bytes 'T' and 'F'
+        elif kind in "US":
+            values = np.char.rstrip(values)
+            mask = values == b""
+            if kind == "U":
+                values = np.char.decode(values, "ascii")
+        else:
+            values = values.astype(like.dtype.newbyteorder("="))
+            if kind in "fc":
+                mask = np.isnan(values)
+        common = dict(name=name, unit=like.unit, description=like.description, format=like.format, meta=like.meta)
+        if mask is not None and mask.any():
+            columns.append(MaskedColumn(values, mask=mask, fill_value=np.nan if kind in "fc" else "", **common))
+        else:
+            columns.append(Column(values, **common))
+    return Table(columns, meta=template.meta)
+
+
+def _read_chunk(layouts: Sequence[TableLayout], hdu: str, template: Table) -> list:
+    """The tables of one chunk: one Table from the raw records of all, or one Table per shard
+    through astropy where a layout cannot be read raw."""
+    if any(layout.dtype is None for layout in layouts):
+        return [read_table(layout.path, hdu) for layout in layouts]
+    records = [layout.records() for layout in layouts]
     widths = {}
-    for name in table.colnames:
-        dtype = table[name].dtype
-        if dtype.kind == "U":
-            widths[name] = int(dtype.itemsize // 4)
-        elif dtype.kind == "S":
-            widths[name] = int(dtype.itemsize)
-    return widths
+    for layout in layouts:
+        for name, width in layout.widths.items():
+            widths[name] = max(widths.get(name, 1), width)
+    dtype = [(name, f"S{widths[name]}" if name in widths else records[0].dtype[name]) for name in records[0].dtype.names]
+    return [_as_astropy_reads(np.concatenate([record.astype(dtype) for record in records]), template)]
 
 
-def write_catalogue(read_part: Callable[[int], Table], n_parts: int, folder: Path, stem: str,
-                    keep: Sequence[str] = (), describe_part: Callable[[int], tuple] | None = None) -> dict:
-    """Write ``stem.fits`` and ``stem.ecsv`` from ``read_part(0 .. n_parts - 1)``; return the columns
-    named in ``keep``, concatenated (for summaries).  ``describe_part(i)`` gives part i's row count
-    and string widths (``{column: characters}``) without reading it (default: from ``read_part``)."""
+def write_catalogue(sources: Sequence[Path], hdu: str, folder: Path, stem: str, keep: Sequence[str] = ()) -> dict:
+    """Write ``stem.fits`` and ``stem.ecsv`` from table ``hdu`` of each FITS file in ``sources`` (in
+    that order); return the columns named in ``keep``, concatenated (for summaries)."""
     folder = Path(folder)
-    describe_part = describe_part or (lambda i: _row_count_and_widths(read_part(i)))
+    layouts = [table_layout(path, hdu) for path in sources]  # pass 1, headers only
     widths: dict = {}
-    n_rows = 0
-    for i in range(n_parts):  # pass 1: row count and string widths
-        rows, part_widths = describe_part(i)
-        n_rows += rows
-        for name, width in part_widths.items():
+    for layout in layouts:
+        for name, width in layout.widths.items():
             widths[name] = max(widths.get(name, 0), width)
+    n_rows = sum(layout.rows for layout in layouts)
+    template = read_table(sources[0], hdu) if sources else None
     kept = {name: [] for name in keep}
     with atomic_path(folder / f"{stem}.fits") as fits_tmp, atomic_path(folder / f"{stem}.ecsv") as ecsv_tmp:
         with open(fits_tmp, "wb") as fits_out, open(ecsv_tmp, "w", encoding="utf-8") as ecsv_out:
             fits_out.write(fits.PrimaryHDU().header.tostring().encode("ascii"))
-            written, pending, pending_rows, row_bytes = 0, [], 0, 0
-            for i in range(n_parts):  # pass 2: stream, a chunk at a time
-                part = _with_widths(read_part(i), widths)
-                for name in keep:  # a copy: a view would keep the whole shard's table alive
-                    kept[name].append(np.array(part[name], copy=True))
-                pending.append(part)
-                pending_rows += len(part)
-                if pending_rows < CHUNK_ROWS and i < n_parts - 1:
-                    continue
-                chunk = pending[0] if len(pending) == 1 else vstack(pending, join_type="exact",
-                                                                     metadata_conflicts="silent")
+            written, start, row_bytes = 0, 0, 0
+            while start < len(layouts):  # pass 2: a chunk of whole shards at a time
+                stop, rows = start, 0
+                while stop < len(layouts) and (rows < CHUNK_ROWS or stop == start):
+                    rows += layouts[stop].rows
+                    stop += 1
+                parts = [_with_widths(part, widths) for part in _read_chunk(layouts[start:stop], hdu, template)]
+                chunk = parts[0] if len(parts) == 1 else vstack(parts, join_type="exact", metadata_conflicts="silent")
+                for name in keep:  # a copy: a view would keep the whole chunk's table alive
+                    kept[name].append(np.array(chunk[name], copy=True))
                 row_bytes = _write_chunk(chunk, first=written == 0, n_rows=n_rows, fits_out=fits_out, ecsv_out=ecsv_out)
-                written, pending, pending_rows = written + 1, [], 0
-            data_size = row_bytes * n_rows
-            fits_out.write(b"\0" * ((-data_size) % BLOCK))
+                written, start = written + 1, stop
+            fits_out.write(b"\0" * ((-row_bytes * n_rows) % BLOCK))
     return {name: (np.concatenate(parts) if parts else np.empty(0)) for name, parts in kept.items()}
-
-
-def _row_count_and_widths(table: Table) -> tuple[int, dict]:
-    return len(table), _string_widths(table)
-
-
-def header_row_count_and_widths(header: fits.Header) -> tuple[int, dict]:
-    """A binary table's row count and string widths from its header alone (TFORMn ``wA``)."""
-    widths = {}
-    for k in range(1, int(header["TFIELDS"]) + 1):
-        form = str(header[f"TFORM{k}"]).strip()
-        if form.endswith("A"):
-            widths[str(header[f"TTYPE{k}"])] = int(form[:-1] or 1)
-    return int(header["NAXIS2"]), widths
 
 
 def _write_chunk(chunk: Table, first: bool, n_rows: int, fits_out, ecsv_out) -> int:

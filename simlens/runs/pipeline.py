@@ -28,7 +28,7 @@ from ..recipe import Recipe
 from .resources import check_resources
 from .run_folder import RunFolder
 from ..truth.selection import describe_attrition, sum_attrition
-from .shards import describe_truth_rows, read_truth_rows, render_shard, shard_plan
+from .shards import render_shard, shard_path, shard_plan
 
 __all__ = ["RunSummary", "run", "default_output_folder"]
 
@@ -117,9 +117,10 @@ def _run_open_folder(recipe: Recipe, out: Path, folder: RunFolder, workers: int,
             bar.close()
     reference = f"arc_snr_{recipe.reference_band}"
     try:
+        shards = [out / shard_path(recipe, spec.index) for spec in plan]
+
         def catalogue(stem: str, table: str, keep=()):
-            return write_catalogue(lambda i: read_truth_rows(out, recipe, plan[i], table), len(plan), out, stem,
-                                   keep=keep, describe_part=lambda i: describe_truth_rows(out, recipe, plan[i], table))
+            return write_catalogue(shards, table, out, stem, keep=keep)
 
         summary_columns = catalogue("truth", "TRUTH", keep=("n_images", "einstein_radius", reference))
         catalogue("subhalos", "SUBHALOS")

@@ -14,13 +14,9 @@ from pathlib import Path
 
 import galsim
 import numpy as np
-from astropy.io import fits
-from astropy.table import Table
 
 from ..errors import reported_as
-from ..output.catalogue import header_row_count_and_widths
 from ..output.checksums import sha256_of
-from ..output.columns import read_table
 from ..output.cutout_fits import write_cutout
 from ..output.shard_fits import write_shard
 from ..output.truth import (image_rows, image_table, line_of_sight_rows, line_of_sight_table, subhalo_rows,
@@ -142,12 +138,3 @@ def _render_shard(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
     timings["writing"] += time.perf_counter() - t2
     return ShardResult(spec=spec, files=checksums, timings=timings, selection=attrition)
 
-
-def read_truth_rows(run_folder: Path, recipe: Recipe, spec: ShardSpec, table: str = "TRUTH") -> Table:
-    return read_table(Path(run_folder) / shard_path(recipe, spec.index), table)
-
-
-def describe_truth_rows(run_folder: Path, recipe: Recipe, spec: ShardSpec, table: str = "TRUTH") -> tuple[int, dict]:
-    """Row count and string widths of a shard's table, from its header (see ``write_catalogue``)."""
-    with fits.open(Path(run_folder) / shard_path(recipe, spec.index), memmap=False) as hdul:
-        return header_row_count_and_widths(hdul[table].header)
