@@ -34,7 +34,7 @@ from ..populations.background import BackgroundObjects
 from ..truth.conditions import BandConditions
 from .light import Sersic
 from .observe import CONVOLUTION_SAMPLING, PSF_RADIUS_IN_FWHM, _block_sum, _convolver, padding_for, psf_profile
-from .rays import refine_centre
+from .rays import cloud_in_cell, refine_centre
 
 __all__ = ["draw_together", "draw_beyond", "drawn_together", "light_reach", "stamp_radius", "EDGE_NOISE_FRACTION"]
 
@@ -106,13 +106,12 @@ def draw_together(objects: BackgroundObjects, bands: tuple[BandConditions, ...],
     large = galaxy & (minor_axis >= LARGE_HALF_LIGHT_PIXELS * pixel_scale)
     fine = _Planes(len(bands), size, margin, pixel_scale, CONVOLUTION_SAMPLING)
     coarse = _Planes(len(bands), size, margin, pixel_scale, 1)
-    faint = WING_SURFACE_BRIGHTNESS * min(b.background_sigma for b in bands) / pixel_scale**2  # ADU / arcsec^2
     for k in np.flatnonzero(galaxy):
         profile = Sersic(flux=float(brightest[k]), half_light_radius=float(objects.half_light_radius[k]),
                          sersic_index=float(objects.sersic_index[k]), q=float(objects.q[k]),
                          angle=float(objects.angle[k]))
         band_fluxes = [flux[k] for flux in fluxes]
-        reach = stamp_radius(profile, faint) / math.sqrt(profile.q)  # arcsec: the major axis reaches R / sqrt(q)
+        reach = light_reach(profile, bands, pixel_scale) * pixel_scale  # arcsec
         if not large[k]:
             stamp = fine.stamp(profile, objects.x[k], objects.y[k], reach)
             fine.add(stamp, band_fluxes, 1.0 / stamp[0].sum())
@@ -217,15 +216,8 @@ class _Planes:
         """Add point sources by cloud-in-cell weights (flux-conserving)."""
         if not np.size(x):
             return
-        fx, fy = self.sample_index(x), self.sample_index(y)
-        ix, iy = np.floor(fx).astype(int), np.floor(fy).astype(int)
-        wx, wy = fx - ix, fy - iy
-        for dy, weight_y in ((0, 1 - wy), (1, wy)):
-            for dx, weight_x in ((0, 1 - wx), (1, wx)):
-                r, c = iy + dy, ix + dx
-                inside = (r >= 0) & (r < self.n) & (c >= 0) & (c < self.n)
-                for plane, flux in zip(self.planes, fluxes):
-                    np.add.at(plane, (r[inside], c[inside]), (flux * weight_x * weight_y)[inside])
+        for plane, flux in zip(self.planes, fluxes):
+            cloud_in_cell(plane, self.sample_index(x), self.sample_index(y), flux)
         self.empty = False
 
     def image(self, b: int, band: BandConditions) -> np.ndarray:

@@ -164,24 +164,34 @@ class Scene:
         return (self.lensed_source_flux - self.lensed_point_flux) / self.source_flux_unlensed
 
 
+def cloud_in_cell(image: np.ndarray, fx, fy, flux) -> None:
+    """Add point fluxes at fractional sample indices ``(fx, fy)`` (column, row; arrays) to ``image``
+    by cloud-in-cell weights: flux-conserving, and a point at a sample's centre lands in that sample
+    alone.  Weight outside the image is dropped."""
+    fx, fy, flux = (np.atleast_1d(np.asarray(v, float)) for v in (fx, fy, flux))
+    ix, iy = np.floor(fx).astype(int), np.floor(fy).astype(int)
+    wx, wy = fx - ix, fy - iy
+    for dy, weight_y in ((0, 1 - wy), (1, wy)):
+        for dx, weight_x in ((0, 1 - wx), (1, wx)):
+            r, c = iy + dy, ix + dx
+            weight = flux * weight_x * weight_y
+            inside = (r >= 0) & (r < image.shape[0]) & (c >= 0) & (c < image.shape[1]) & (weight != 0)
+            np.add.at(image, (r[inside], c[inside]), weight[inside])
+
+
 def deposit_points(image: np.ndarray, grid: PixelGrid, points: tuple, sampling: int | None = None) -> None:
     """Add point sources to an image of the padded field with ``sampling`` samples per pixel side
-    (default: the ray grid's) by cloud-in-cell weights: flux-conserving, and a point at a sample's
-    centre lands in that sample alone.  Points outside the padded field are dropped."""
+    (default: the ray grid's) by cloud-in-cell weights (:func:`cloud_in_cell`).  Points outside the
+    padded field are dropped."""
+    if not points:
+        return
     sampling = sampling or grid.supersampling
     n = grid.padded_size * sampling
     scale = grid.pixel_scale / sampling
     ox, oy = grid.lens_offset  # points are in the lens frame
-    for p in points:
-        fx = (p.center[0] + ox) / scale + 0.5 * n - 0.5
-        fy = (p.center[1] + oy) / scale + 0.5 * n - 0.5
-        ix, iy = int(np.floor(fx)), int(np.floor(fy))
-        wx, wy = fx - ix, fy - iy
-        for dy, wy_ in ((0, 1 - wy), (1, wy)):
-            for dx, wx_ in ((0, 1 - wx), (1, wx)):
-                r, c = iy + dy, ix + dx
-                if 0 <= r < n and 0 <= c < n and wx_ * wy_ > 0:
-                    image[r, c] += p.flux * wx_ * wy_
+    x = np.array([p.center[0] for p in points], float)
+    y = np.array([p.center[1] for p in points], float)
+    cloud_in_cell(image, (x + ox) / scale + 0.5 * n - 0.5, (y + oy) / scale + 0.5 * n - 0.5, [p.flux for p in points])
 
 
 # Image-plane (unlensed) components are re-integrated around their centres, where cuspy profiles
