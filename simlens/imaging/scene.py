@@ -19,7 +19,7 @@ from ..lensing.multiplane import MultiPlaneLens
 from ..truth.record import System
 from .light import CompositeLight, LightProfile, Sersic
 
-__all__ = ["Scene", "build_scene", "CLUMP_SERSIC_INDEX"]
+__all__ = ["Scene", "build_scene", "lens_galaxy", "CLUMP_SERSIC_INDEX"]
 
 CLUMP_SERSIC_INDEX = 0.5  # Gaussian clumps
 
@@ -53,11 +53,16 @@ def build_scene(system: System) -> Scene:
                  second_source_light={b: _second_source_light(system, b) for b in names} if second else None)
 
 
+def lens_galaxy(system: System, band: str) -> Sersic:
+    """The lens galaxy's own light in ``band`` (counts), without any look-alike features."""
+    return Sersic(flux=system.band(band).counts_from_magnitude(system.lens_magnitudes[band]),
+                  half_light_radius=system.lens_half_light_radius,
+                  sersic_index=system.lens_sersic_index, q=system.lens_q, angle=system.lens_angle)
+
+
 def _lens_light(system: System, band: str) -> LightProfile:
     conditions = system.band(band)
-    galaxy = Sersic(flux=conditions.counts_from_magnitude(system.lens_magnitudes[band]),
-                    half_light_radius=system.lens_half_light_radius,
-                    sersic_index=system.lens_sersic_index, q=system.lens_q, angle=system.lens_angle)
+    galaxy = lens_galaxy(system, band)
     if not system.extra_light:
         return galaxy
     return CompositeLight((galaxy,) + tuple(shape.with_flux(conditions.counts_from_magnitude(mags[band]))

@@ -13,7 +13,8 @@ For one field:
    Each system is selected and rendered as in a cutout run, on a stamp of ``lens_stamp_size``
    pixels, and its noiseless lens light and lensed source are added to the field; the lens
    galaxy's light beyond its stamp is added from its Sersic profile, drawn as the background is
-   (:func:`lens_light_beyond_stamps`), so bright lenses end in no square edge.  The lens centre is the stamp centre: 0-based pixel
+   (:func:`lens_light_beyond_stamps`), so bright lenses end in no square edge.  The lens centre is
+   the stamp centre: 0-based pixel
    ``(x0 + (s - 1) / 2, y0 + (s - 1) / 2)``.
 3. *Background.*  Galaxies and stars from number counts (:mod:`simlens.populations.background`)
    at their sub-pixel positions, not lensed; galaxies are kept away from the lenses
@@ -58,7 +59,7 @@ from astropy.table import Table
 from ..errors import reported_as
 from ..populations.background import BackgroundModel, BackgroundObjects
 from ..cosmology import DistanceTable
-from ..imaging.light import Sersic
+from ..imaging.scene import lens_galaxy
 from ..imaging.many_objects import draw_beyond, draw_together, drawn_together, light_reach
 from ..imaging.observe import effective_psf_image, psf_profile
 from ..output.atomic import atomic_path
@@ -156,12 +157,10 @@ def lens_galaxies(lenses: list, bands: tuple) -> list:
     """``(x0, y0, shape, fluxes)`` of each lens's galaxy, for :func:`lens_light_beyond_stamps`."""
     out = []
     for x0, y0, rendered in lenses:
-        system = rendered.system
-        fluxes = [band.counts_from_magnitude(system.lens_magnitudes[band.name]) for band in bands]
+        light = [lens_galaxy(rendered.system, band.name) for band in bands]
+        fluxes = [profile.flux for profile in light]
         if max(fluxes) > 0:
-            out.append((x0, y0, Sersic(flux=max(fluxes), half_light_radius=system.lens_half_light_radius,
-                                       sersic_index=system.lens_sersic_index, q=system.lens_q,
-                                       angle=system.lens_angle), fluxes))
+            out.append((x0, y0, light[int(np.argmax(fluxes))], fluxes))
     return out
 
 
