@@ -93,8 +93,8 @@ def _light_box(plane: np.ndarray, margin: int) -> tuple[slice, slice] | None:
     peak = float(plane.max())
     if not peak > 0:
         return None
-    rows = np.flatnonzero((plane > LIGHT_BOX_THRESHOLD * peak).any(axis=1))
-    cols = np.flatnonzero((plane > LIGHT_BOX_THRESHOLD * peak).any(axis=0))
+    bright = plane > LIGHT_BOX_THRESHOLD * peak
+    rows, cols = np.flatnonzero(bright.any(axis=1)), np.flatnonzero(bright.any(axis=0))
     box = []
     for hits, n in ((rows, plane.shape[0]), (cols, plane.shape[1])):
         if hits.size == 0:
