@@ -41,6 +41,7 @@ from .output.atomic import atomic_path
 from .output.ownership import confined
 from .imaging.rays import ComponentImages, PixelGrid
 from .imaging.render import observation_rays
+from .truth.seeing import psf_fwhm_range
 from .imaging.scene import build_scene
 from .cosmology import DistanceTable
 from .truth.sampler import PopulationSampler
@@ -276,8 +277,8 @@ def empirical_psf(data: np.ndarray, fwhm_pixels: float, size: int = 25, exclude=
 
 def _recipe_fwhm(recipe: Recipe, band: str) -> float:
     """A typical PSF FWHM of the recipe's band (arcsec): the middle of its range."""
-    low, high = recipe.survey.band(band).psf.fwhm.support
-    return 0.5 * (float(low) + float(high))
+    low, high = psf_fwhm_range(recipe, band)
+    return 0.5 * (low + high)
 
 
 def _psf_kernel(psf_path: str | Path | None, recipe: Recipe, band: str, pixel_scale: float,

@@ -71,6 +71,12 @@ class Filter:
     wavelength: np.ndarray
     throughput: np.ndarray
 
+    @property
+    def mean_wavelength(self) -> float:
+        """The throughput-weighted mean wavelength (nm), ``int lambda T dlambda / int T dlambda``."""
+        return float(_trapezoid(self.wavelength * self.throughput, self.wavelength)
+                     / _trapezoid(self.throughput, self.wavelength))
+
 
 @lru_cache(maxsize=64)
 def load_filter(spec: str, base_folder: str = ".") -> Filter:

@@ -65,6 +65,16 @@ def _check_survey(recipe: Recipe) -> None:
     if not survey.band_names:
         raise RecipeError(recipe.origin, "survey.bands", "is missing", "at least one [survey.bands.NAME] table")
     _require_band(recipe.origin, "survey.reference_band", survey.reference_band, survey.band_names)
+    for band in survey.bands:
+        path = f"survey.bands.{band.name}.psf.fwhm"
+        if survey.seeing is None and band.psf.fwhm is None:
+            raise RecipeError(recipe.origin, path, "required", "the band's PSF FWHM in arcsec, or one [survey.seeing] "
+                                                               "table for all bands")
+        if survey.seeing is not None and band.psf.fwhm is not None:
+            raise RecipeError(recipe.origin, path, "is given together with [survey.seeing]",
+                              "either each band's psf.fwhm or [survey.seeing], not both")
+    if survey.seeing is not None:
+        _require_filters(recipe, "[survey.seeing] (each band's FWHM follows its filter's mean wavelength)")
 
 
 def _check_colours(recipe: Recipe) -> None:

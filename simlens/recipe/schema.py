@@ -141,7 +141,8 @@ def band_colors(*, doc: str = ""):
 class PsfSettings:
     profile: str = text("moffat", choices=("moffat", "kolmogorov"),
                         doc="PSF shape: Moffat (with beta) or Kolmogorov")
-    fwhm: Parameter = parameter(low=0.01, high=10, unit="arcsec", doc="PSF full width at half maximum")
+    fwhm: Parameter = parameter(optional=True, low=0.01, high=10, unit="arcsec",
+                                doc="PSF full width at half maximum (required unless [survey.seeing] is given)")
     beta: Parameter = parameter(3.0, low=1.1, low_open=True, high=50, doc="Moffat beta (ignored for kolmogorov)")
 
 
@@ -163,6 +164,18 @@ class BandSettings:
 
 
 @dataclass(frozen=True, kw_only=True)
+class SeeingSettings:
+    fwhm: Parameter = parameter(low=0.01, high=10, unit="arcsec",
+                                doc="PSF FWHM at `wavelength`, drawn once per system for all bands")
+    wavelength: float = number(500.0, low=100, high=5000, unit="nm", doc="wavelength at which `fwhm` is given")
+    exponent: float = number(-0.2, low=-1.0, high=1.0,
+                             doc="each band's FWHM scales as (its mean wavelength / `wavelength`)^exponent; "
+                                 "-1/5 for Kolmogorov turbulence")
+    band_scatter: float = number(0.0, low=0.0, high=0.5,
+                                 doc="fractional Gaussian scatter of each band's FWHM about that law")
+
+
+@dataclass(frozen=True, kw_only=True)
 class SurveySettings:
     name: str = text("unnamed survey", doc="survey name, copied to outputs")
     pixel_scale: float = number(low=0.005, high=5, unit="arcsec/pixel", doc="pixel scale")
@@ -173,6 +186,9 @@ class SurveySettings:
                                                   "the lensed source varies within them")
     reference_band: str = text(optional=True, doc="band in which magnitudes are given (default: first)")
     bands: tuple = field(default=(), metadata=dict(kind="bands", doc="one table per band"))
+    seeing: SeeingSettings = table(SeeingSettings, optional=True,
+                                   doc="one seeing for all bands, scaled with wavelength (instead of each "
+                                       "band's psf.fwhm)")
 
     def band(self, name: str) -> BandSettings:
         for b in self.bands:

@@ -23,6 +23,7 @@ from pathlib import Path
 from ..errors import SimlensError
 from ..imaging.observe import PSF_IMAGE_SIZE, PSF_RADIUS_IN_FWHM, convolution_sampling
 from ..recipe import Recipe
+from ..truth.seeing import psf_fwhm_range
 
 __all__ = ["ResourceEstimate", "estimate_resources", "available_memory", "free_disk", "check_resources", "size_text"]
 
@@ -58,7 +59,7 @@ def size_text(n: float) -> str:
 def _ray_bytes(recipe: Recipe, side: int) -> int:
     """The rays of one stamp of ``side`` pixels (simlens.imaging.render.observation_rays)."""
     survey = recipe.survey
-    fwhm_max = max(band.psf.fwhm.support[1] for band in survey.bands)
+    fwhm_max = max(psf_fwhm_range(recipe, band.name)[1] for band in survey.bands)
     reach = math.ceil(PSF_RADIUS_IN_FWHM * fwhm_max / survey.pixel_scale)
     s = survey.supersampling
     c = convolution_sampling(s)

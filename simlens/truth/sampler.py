@@ -44,6 +44,7 @@ from ..recipe import Recipe
 from ..recipe.distributions import Fixed, Grid
 from .conditions import BandConditions
 from .record import Clump, LineOfSightGalaxy, SecondSource, Subhalo, System
+from .seeing import band_fwhm, seeing_factors
 from .streams import SYSTEM_STREAMS, grid_cell, system_streams
 
 __all__ = ["PopulationSampler", "SelectionExhausted", "System", "offset_on_sky"]
@@ -90,10 +91,12 @@ class PopulationSampler:
                                    if not isinstance(p, (Fixed, Grid))]
         self._grid_shape = recipe.grid_shape
         # (band, ((BandConditions field, parameter key path), ...)) for the conditions of each system
-        self._band_keys = [(b, tuple((name, f"survey.bands.{b.name}.{path}") for name, path in (
-            ("zero_point", "zero_point"), ("sky_brightness", "sky_brightness"), ("exposure_time", "exposure_time"),
-            ("gain", "gain"), ("read_noise", "read_noise"), ("psf_fwhm", "psf.fwhm"), ("psf_beta", "psf.beta"))))
-            for b in recipe.survey.bands]
+        # (with [survey.seeing] the FWHM comes from simlens.truth.seeing instead of psf.fwhm)
+        own = ("zero_point", "sky_brightness", "exposure_time", "gain", "read_noise") + (
+            () if recipe.survey.seeing is not None else ("psf.fwhm",)) + ("psf.beta",)
+        self._band_keys = [(b, tuple((path.replace("psf.", "psf_"), f"survey.bands.{b.name}.{path}") for path in own))
+                           for b in recipe.survey.bands]
+        self._seeing_factors = seeing_factors(recipe)
         base = str(Path(recipe.origin).parent) if recipe.origin != "<recipe>" else "."
         filters = {b.name: b.filter for b in recipe.survey.bands if b.filter is not None}
         lens, source = recipe.lens, recipe.source
@@ -329,9 +332,11 @@ class PopulationSampler:
             quasar_mags = {b: v["source.quasar.magnitude"] + colours[b] for b in band_names}
 
         # -- observing conditions ------------------------------------------------------------
+        fwhm = (band_fwhm(recipe, self._seeing_factors, v["survey.seeing.fwhm"], streams["seeing"])
+                if recipe.survey.seeing is not None else {})
         bands = self.conditions or tuple(
             BandConditions(name=b.name, pixel_scale=recipe.survey.pixel_scale, psf_profile=b.psf.profile,
-                           **{name: v[key] for name, key in keys})
+                           **{name: v[key] for name, key in keys}, **({"psf_fwhm": fwhm[b.name]} if fwhm else {}))
             for b, keys in self._band_keys)
 
         # -- a second source plane ------------------------------------------------------------

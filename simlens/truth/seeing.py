@@ -1,0 +1,59 @@
+"""One seeing for all bands, scaled with wavelength (the recipe's ``[survey.seeing]``).
+
+Atmospheric seeing narrows towards the red: for Kolmogorov turbulence the FWHM scales as
+``lambda^(-1/5)`` (common practice; e.g. Roddier 1981, Progress in Optics 19, 281).  With a
+``[survey.seeing]`` table one FWHM is drawn per system at ``wavelength`` and each band's is
+
+    FWHM_band = FWHM (lambda_band / wavelength)^exponent (1 + band_scatter N(0, 1)),
+
+``lambda_band`` the throughput-weighted mean wavelength of the band's filter and N(0, 1) a
+standard normal of the system's ``seeing`` stream, one per band in survey order (drawn only when
+``band_scatter`` > 0).  Without the table each band draws its own ``psf.fwhm``.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from ..populations.photometry import load_filter
+from ..recipe import Recipe
+
+__all__ = ["seeing_factors", "band_fwhm", "psf_fwhm_range", "FWHM_LIMITS", "SCATTER_REACH"]
+
+FWHM_LIMITS = (0.01, 10.0)  # arcsec: the range of psf.fwhm in the recipe schema
+SCATTER_REACH = 4.0  # the scatter's reach (sigma) in the ranges given to resource estimates
+
+
+def seeing_factors(recipe: Recipe) -> dict[str, float]:
+    """``band -> (lambda_band / wavelength)^exponent`` of ``[survey.seeing]`` (empty without it)."""
+    seeing = recipe.survey.seeing
+    if seeing is None:
+        return {}
+    base = str(Path(recipe.origin).parent) if recipe.origin != "<recipe>" else "."
+    return {b.name: (load_filter(b.filter, base).mean_wavelength / seeing.wavelength) ** seeing.exponent
+            for b in recipe.survey.bands}
+
+
+def band_fwhm(recipe: Recipe, factors: dict, seeing_fwhm: float, rng) -> dict[str, float]:
+    """Each band's PSF FWHM (arcsec) from the drawn ``seeing_fwhm`` (see the module docstring)."""
+    scatter = recipe.survey.seeing.band_scatter
+    out = {}
+    for band in recipe.survey.bands:
+        wobble = 1.0 + scatter * float(rng.standard_normal()) if scatter > 0 else 1.0
+        out[band.name] = float(np.clip(seeing_fwhm * factors[band.name] * wobble, *FWHM_LIMITS))
+    return out
+
+
+def psf_fwhm_range(recipe: Recipe, band: str) -> tuple[float, float]:
+    """The range a band's PSF FWHM can take (arcsec): its ``psf.fwhm``'s support, or the seeing's
+    scaled to the band, widened by SCATTER_REACH times the band scatter."""
+    seeing = recipe.survey.seeing
+    if seeing is None:
+        low, high = recipe.survey.band(band).psf.fwhm.support
+        return float(low), float(high)
+    factor = seeing_factors(recipe)[band]
+    low, high = (float(v) * factor for v in seeing.fwhm.support)
+    spread = SCATTER_REACH * seeing.band_scatter
+    return max(low * (1.0 - spread), FWHM_LIMITS[0]), min(high * (1.0 + spread), FWHM_LIMITS[1])
