@@ -1,12 +1,15 @@
-"""One seeing for all bands, scaled with wavelength ([survey.seeing], simlens.truth.seeing).
+"""Survey PSFs: one seeing for all bands scaled with wavelength ([survey.seeing],
+simlens.truth.seeing), and a drawn PSF ellipticity (psf.ellipticity).
 
 References: Kolmogorov turbulence gives a seeing FWHM proportional to lambda^(-1/5) (common practice;
 e.g. Roddier 1981); GalSim's Bandpass.effective_wavelength (the throughput-weighted mean wavelength)
-for each filter; GalSim's Image.calculateFWHM to measure the PSF the renderer convolves with.
+for each filter; GalSim's Image.calculateFWHM and FindAdaptiveMom (adaptive moments) to measure the
+PSF the renderer convolves with.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import numpy as np
@@ -83,3 +86,25 @@ def test_seeing_and_band_fwhm_are_one_or_the_other():
         parse_recipe(seeing_recipe().split("\n[survey.seeing]")[0])
     with pytest.raises(RecipeError, match="filter"):
         parse_recipe(seeing_recipe().replace('filter = "LSST_i"\n', ''))
+
+
+def test_a_drawn_psf_ellipticity_is_the_shape_galsim_measures():
+    import galsim
+
+    from simlens.imaging.observe import effective_psf_image, psf_kernel
+
+    text = PHYSICAL_RECIPE.replace("fwhm = 0.8 }", "fwhm = 0.8, ellipticity = 0.08, ellipticity_angle = 30.0 }")
+    recipe = parse_recipe(text)
+    system = PopulationSampler(recipe).draw(0)
+    r, g = system.band("r"), system.band("g")
+    # g (cos 2a, sin 2a) with |g| = 0.08 at 30 degrees; the g band is round
+    assert (r.psf_g1, r.psf_g2) == pytest.approx((0.04, 0.08 * math.sin(math.radians(60.0))), abs=1e-12)
+    assert (g.psf_g1, g.psf_g2) == (0.0, 0.0)
+    # GalSim's adaptive moments of the PSF the renderer convolves with (finely sampled): that shear
+    shape = galsim.Image(psf_kernel(r, 0.02), scale=0.02).FindAdaptiveMom().observed_shape
+    assert (shape.g1, shape.g2) == pytest.approx((r.psf_g1, r.psf_g2), abs=1e-3)
+    # and the written effective PSF (with the pixel, which dilutes it a little)
+    written = galsim.Image(effective_psf_image(r), scale=0.2).FindAdaptiveMom().observed_shape
+    assert written.g / 0.08 == pytest.approx(1.0, abs=0.1) and written.beta.deg == pytest.approx(30.0, abs=1.0)
+    # the stamp reaches 5 FWHM along the major axis
+    assert psf_kernel(r, 0.02).shape[0] > psf_kernel(dataclasses.replace(r, psf_g1=0.0, psf_g2=0.0), 0.02).shape[0]

@@ -33,7 +33,8 @@ from scipy import special
 from ..populations.background import BackgroundObjects
 from ..truth.conditions import BandConditions
 from .light import Sersic
-from .observe import CONVOLUTION_SAMPLING, PSF_RADIUS_IN_FWHM, _block_sum, _convolver, padding_for, psf_profile
+from .observe import (CONVOLUTION_SAMPLING, PSF_RADIUS_IN_FWHM, _block_sum, _convolver, major_axis_fwhm, padding_for,
+                      psf_profile)
 from .rays import cloud_in_cell, refine_centre
 
 __all__ = ["draw_together", "draw_beyond", "drawn_together", "light_reach", "stamp_radius", "EDGE_NOISE_FRACTION"]
@@ -66,7 +67,7 @@ def drawn_together(objects: BackgroundObjects, bands: tuple[BandConditions, ...]
     EDGE_NOISE_FRACTION of one pixel's noise sigma in every band (no visible edge)."""
     together = np.ones(len(objects), bool)
     for band in bands:
-        edge = PSF_RADIUS_IN_FWHM * band.psf_fwhm
+        edge = PSF_RADIUS_IN_FWHM * major_axis_fwhm(band)
         per_pixel = psf_profile(band).xValue(galsim.PositionD(edge, 0.0)) * band.pixel_scale**2  # of unit flux
         flux = band.counts_from_magnitude(np.asarray(objects.magnitudes[band.name], float))
         together &= per_pixel * flux <= EDGE_NOISE_FRACTION * band.background_sigma
@@ -98,7 +99,7 @@ def draw_together(objects: BackgroundObjects, bands: tuple[BandConditions, ...],
                   pixel_scale: float) -> list[np.ndarray]:
     """The noiseless images (ADU, ``size x size`` pixels, one per band) of ``objects`` (0-based
     pixel positions), PSF and pixel response applied."""
-    margin = padding_for(max(b.psf_fwhm for b in bands), pixel_scale)
+    margin = padding_for(max(major_axis_fwhm(b) for b in bands), pixel_scale)
     fluxes = [band.counts_from_magnitude(np.asarray(objects.magnitudes[band.name], float)) for band in bands]
     brightest = np.max(fluxes, axis=0) if fluxes else np.zeros(0)
     galaxy = (objects.kind == "galaxy") & (brightest > 0)
@@ -142,7 +143,7 @@ def draw_beyond(shape: Sersic, fluxes: list, bands: tuple[BandConditions, ...], 
     """One galaxy of ``shape`` with total ``fluxes`` (one per band) at the centre of ``size x size``
     images (one per band), drawn as :func:`draw_together` draws a large galaxy but only outside the
     central square of ``half_width`` pixels (left zero): a field lens's light beyond its stamp."""
-    margin = padding_for(max(b.psf_fwhm for b in bands), pixel_scale)
+    margin = padding_for(max(major_axis_fwhm(b) for b in bands), pixel_scale)
     fine = _Planes(len(bands), size, margin, pixel_scale, CONVOLUTION_SAMPLING)
     coarse = _Planes(len(bands), size, margin, pixel_scale, 1)
     centre = 0.5 * (size - 1)

@@ -35,7 +35,7 @@ from scipy import fft as scipy_fft
 from .rays import Scene
 from ..truth.conditions import BandConditions
 
-__all__ = ["psf_profile", "psf_kernel", "effective_psf_image", "ObservedBand", "observe_scene",
+__all__ = ["psf_profile", "psf_kernel", "major_axis_fwhm", "effective_psf_image", "ObservedBand", "observe_scene",
            "padding_for", "PSF_RADIUS_IN_FWHM"]
 
 PSF_RADIUS_IN_FWHM = 5.0
@@ -46,10 +46,20 @@ PSF_IMAGE_SIZE = 25  # pixels per side of the PSF image written with each cutout
 def psf_profile(band: BandConditions) -> galsim.GSObject:
     """The band's atmospheric+optical PSF as a GalSim profile (unit flux)."""
     if band.psf_profile == "moffat":
-        return galsim.Moffat(beta=band.psf_beta, fwhm=band.psf_fwhm)
-    if band.psf_profile == "kolmogorov":
-        return galsim.Kolmogorov(fwhm=band.psf_fwhm)
-    raise ValueError(f"unknown PSF profile {band.psf_profile!r}; use 'moffat' or 'kolmogorov'")
+        profile = galsim.Moffat(beta=band.psf_beta, fwhm=band.psf_fwhm)
+    elif band.psf_profile == "kolmogorov":
+        profile = galsim.Kolmogorov(fwhm=band.psf_fwhm)
+    else:
+        raise ValueError(f"unknown PSF profile {band.psf_profile!r}; use 'moffat' or 'kolmogorov'")
+    g1, g2 = band.psf_g1, band.psf_g2
+    return profile.shear(g1=g1, g2=g2) if (g1 or g2) else profile
+
+
+def major_axis_fwhm(band: BandConditions) -> float:
+    """The PSF's FWHM along its major axis (arcsec): ``psf_fwhm sqrt((1 + |g|) / (1 - |g|))`` for a
+    PSF sheared by ``g`` (area-preserving); what the PSF stamp and the padding reach from."""
+    g = math.hypot(band.psf_g1, band.psf_g2)
+    return band.psf_fwhm * math.sqrt((1.0 + g) / (1.0 - g))
 
 
 def padding_for(fwhm_max: float, pixel_scale: float) -> int:
@@ -68,13 +78,14 @@ def _convolver(band: BandConditions, scale: float, shape, margin: int) -> "_FFTC
     sampled every ``scale`` arcsec; the last few are kept, so that systems sharing a seeing share
     the PSF's transform."""
     shape = (shape, shape) if np.ndim(shape) == 0 else tuple(shape)
-    return _shared_convolver((band.psf_profile, band.psf_fwhm, band.psf_beta), scale, shape, margin)
+    psf = (band.psf_profile, band.psf_fwhm, band.psf_beta, band.psf_g1, band.psf_g2)
+    return _shared_convolver(psf, scale, shape, margin)
 
 
 @functools.lru_cache(maxsize=32)
 def _shared_convolver(psf: tuple, scale: float, shape: tuple, margin: int) -> "_FFTConvolver":
-    profile, fwhm, beta = psf
-    band = _PsfOnly(psf_profile=profile, psf_fwhm=fwhm, psf_beta=beta)
+    profile, fwhm, beta, g1, g2 = psf
+    band = _PsfOnly(psf_profile=profile, psf_fwhm=fwhm, psf_beta=beta, psf_g1=g1, psf_g2=g2)
     return _FFTConvolver(shape, psf_kernel(band, scale), exact_margin=margin)
 
 
@@ -117,12 +128,14 @@ class _PsfOnly:
     psf_profile: str
     psf_fwhm: float
     psf_beta: float
+    psf_g1: float = 0.0
+    psf_g2: float = 0.0
 
 
 def psf_kernel(band: BandConditions, scale: float) -> np.ndarray:
-    """The PSF sampled every ``scale`` arcsec on an odd stamp of radius PSF_RADIUS_IN_FWHM FWHM
-    (sum = the PSF's flux within the stamp), centred on its central sample."""
-    half = int(math.ceil(PSF_RADIUS_IN_FWHM * band.psf_fwhm / scale))
+    """The PSF sampled every ``scale`` arcsec on an odd stamp of radius PSF_RADIUS_IN_FWHM
+    major-axis FWHM (sum = the PSF's flux within the stamp), centred on its central sample."""
+    half = int(math.ceil(PSF_RADIUS_IN_FWHM * major_axis_fwhm(band) / scale))
     n = 2 * half + 1
     image = psf_profile(band).drawImage(nx=n, ny=n, scale=scale, method="no_pixel")
     return image.array.astype(float)

@@ -16,7 +16,7 @@ import numpy as np
 
 from ..lensing.lens_equation import ImageSet, find_images, time_delays
 from .light import PointSource
-from .observe import ObservedBand, convolution_sampling, observe_scene, padding_for
+from .observe import ObservedBand, convolution_sampling, major_axis_fwhm, observe_scene, padding_for
 from ..truth.record import System
 from .scene import build_scene
 from .rays import ComponentImages, PixelGrid, render_scene, trace_rays
@@ -50,7 +50,7 @@ class RenderedSystem:
 
 
 def pixel_grid_for(system: System, survey: SurveySettings) -> PixelGrid:
-    fwhm_max = max(b.psf_fwhm for b in system.bands)
+    fwhm_max = max(major_axis_fwhm(b) for b in system.bands)
     return PixelGrid(size=survey.cutout_size, pixel_scale=survey.pixel_scale,
                      supersampling=survey.supersampling, padding=padding_for(fwhm_max, survey.pixel_scale))
 

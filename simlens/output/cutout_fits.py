@@ -70,7 +70,9 @@ def band_keywords(h: fits.Header, band, content: str) -> None:
     h["SKYLEVEL"] = (band.sky_level, "[adu/pixel] sky level, subtracted")
     h["SKYMAG"] = (band.sky_brightness, "[mag/arcsec2] sky surface brightness (AB)")
     h["PSFTYPE"] = (band.psf_profile, "PSF profile")
-    h["PSFFWHM"] = (band.psf_fwhm, "[arcsec] PSF FWHM")
+    h["PSFFWHM"] = (band.psf_fwhm, "[arcsec] PSF FWHM (round, before PSFG1/PSFG2)")
+    h["PSFG1"] = (band.psf_g1, "PSF reduced shear along +x")
+    h["PSFG2"] = (band.psf_g2, "PSF reduced shear along the diagonal")
     if band.psf_profile == "moffat":
         h["PSFBETA"] = (band.psf_beta, "Moffat beta")
     h["PIXSCALE"] = (band.pixel_scale, "[arcsec/pixel] pixel scale")

@@ -158,7 +158,10 @@ TRUTH_COLUMNS = (
     C("n_lookalike_features", "", "look-alike light components added (negatives)", lambda e: len(e.system.extra_light)),
     C("arc_snr_{band}", "", "matched-filter S/N of the noiseless lensed source in {band}: sqrt(sum S_i^2 / var_i) "
       "over the cutout, var_i the expected pixel variance", lambda e, b: e.rendered.band(b).arc_snr),
-    C("psf_fwhm_{band}", "arcsec", "PSF FWHM in {band}", lambda e, b: _band(e, b).psf_fwhm),
+    C("psf_fwhm_{band}", "arcsec", "PSF FWHM in {band} (of the round profile, before its shear)",
+      lambda e, b: _band(e, b).psf_fwhm),
+    C("psf_g1_{band}", "", "reduced shear of the {band} PSF along +x (0: round)", lambda e, b: _band(e, b).psf_g1),
+    C("psf_g2_{band}", "", "reduced shear of the {band} PSF along the diagonal", lambda e, b: _band(e, b).psf_g2),
     C("magzero_{band}", "mag", "AB zero point of the {band} images: m = magzero - 2.5 log10(ADU)",
       lambda e, b: _band(e, b).magzero),
     C("sky_level_{band}", "", "sky level subtracted from the {band} images (ADU per pixel)",

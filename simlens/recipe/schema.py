@@ -144,6 +144,11 @@ class PsfSettings:
     fwhm: Parameter = parameter(optional=True, low=0.01, high=10, unit="arcsec",
                                 doc="PSF full width at half maximum (required unless [survey.seeing] is given)")
     beta: Parameter = parameter(3.0, low=1.1, low_open=True, high=50, doc="Moffat beta (ignored for kolmogorov)")
+    ellipticity: Parameter = parameter(optional=True, low=0, high=0.5,
+                                       doc="PSF ellipticity: the reduced shear |g| applied to the PSF "
+                                           "(area-preserving; absent: round)")
+    ellipticity_angle: Parameter = parameter(optional=True, low=-360, high=360, unit="deg",
+                                             doc="PSF major axis, CCW from +x (default 0)")
 
 
 @dataclass(frozen=True, kw_only=True)

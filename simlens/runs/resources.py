@@ -56,10 +56,16 @@ def size_text(n: float) -> str:
     raise AssertionError  # pragma: no cover
 
 
+def _major_axis_factor(band) -> float:
+    """The largest major-axis FWHM over the round one that the band's PSF ellipticity allows."""
+    g = float(band.psf.ellipticity.support[1]) if band.psf.ellipticity is not None else 0.0
+    return math.sqrt((1.0 + g) / (1.0 - g))
+
+
 def _ray_bytes(recipe: Recipe, side: int) -> int:
     """The rays of one stamp of ``side`` pixels (simlens.imaging.render.observation_rays)."""
     survey = recipe.survey
-    fwhm_max = max(psf_fwhm_range(recipe, band.name)[1] for band in survey.bands)
+    fwhm_max = max(psf_fwhm_range(recipe, band.name)[1] * _major_axis_factor(band) for band in survey.bands)
     reach = math.ceil(PSF_RADIUS_IN_FWHM * fwhm_max / survey.pixel_scale)
     s = survey.supersampling
     c = convolution_sampling(s)

@@ -32,6 +32,8 @@ class BandConditions:
     psf_profile: str  # "moffat" | "kolmogorov"
     psf_fwhm: float  # arcsec
     psf_beta: float  # Moffat beta (unused for Kolmogorov)
+    psf_g1: float = 0.0  # reduced shear of the PSF (area-preserving), along +x
+    psf_g2: float = 0.0  # and along the diagonal
 
     @property
     def magzero(self) -> float:

@@ -57,6 +57,16 @@ class SelectionExhausted(RunError):
 ImageCuts = Callable[[System], Mapping[str, bool]]
 
 
+def _psf_shear(band, values: dict) -> dict:
+    """``psf_g1, psf_g2`` of a band whose PSF has an ellipticity |g| at an angle: g (cos 2a, sin 2a)."""
+    if band.psf.ellipticity is None:
+        return {}
+    prefix = f"survey.bands.{band.name}.psf."
+    g = values[prefix + "ellipticity"]
+    angle = math.radians(values[prefix + "ellipticity_angle"]) if band.psf.ellipticity_angle is not None else 0.0
+    return {"psf_g1": g * math.cos(2.0 * angle), "psf_g2": g * math.sin(2.0 * angle)}
+
+
 class PopulationSampler:
     """Draws :class:`System` objects from a recipe.
 
@@ -336,7 +346,8 @@ class PopulationSampler:
                 if recipe.survey.seeing is not None else {})
         bands = self.conditions or tuple(
             BandConditions(name=b.name, pixel_scale=recipe.survey.pixel_scale, psf_profile=b.psf.profile,
-                           **{name: v[key] for name, key in keys}, **({"psf_fwhm": fwhm[b.name]} if fwhm else {}))
+                           **{name: v[key] for name, key in keys}, **({"psf_fwhm": fwhm[b.name]} if fwhm else {}),
+                           **_psf_shear(b, v))
             for b, keys in self._band_keys)
 
         # -- a second source plane ------------------------------------------------------------
