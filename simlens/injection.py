@@ -41,7 +41,7 @@ from .output.atomic import atomic_path
 from .output.ownership import confined
 from .imaging.rays import ComponentImages, PixelGrid
 from .imaging.render import observation_rays
-from .truth.seeing import psf_fwhm_range
+from .truth.psf import psf_fwhm_range
 from .imaging.scene import build_scene
 from .cosmology import DistanceTable
 from .truth.sampler import PopulationSampler

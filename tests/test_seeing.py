@@ -1,5 +1,5 @@
 """Survey PSFs: one seeing for all bands scaled with wavelength ([survey.seeing],
-simlens.truth.seeing), and a drawn PSF ellipticity (psf.ellipticity).
+simlens.truth.psf), and a drawn PSF ellipticity (psf.ellipticity).
 
 References: Kolmogorov turbulence gives a seeing FWHM proportional to lambda^(-1/5) (common practice;
 e.g. Roddier 1981); GalSim's Bandpass.effective_wavelength (the throughput-weighted mean wavelength)
@@ -108,3 +108,31 @@ def test_a_drawn_psf_ellipticity_is_the_shape_galsim_measures():
     assert written.g / 0.08 == pytest.approx(1.0, abs=0.1) and written.beta.deg == pytest.approx(30.0, abs=1.0)
     # the stamp reaches 5 FWHM along the major axis
     assert psf_kernel(r, 0.02).shape[0] > psf_kernel(dataclasses.replace(r, psf_g1=0.0, psf_g2=0.0), 0.02).shape[0]
+
+
+def test_optics_convolve_galsims_optical_psf_with_the_atmosphere():
+    import galsim
+
+    from simlens.imaging.observe import psf_kernel
+
+    def with_optics(fwhm: str, optics: str) -> str:
+        return PHYSICAL_RECIPE.replace("fwhm = 0.8 }", f"fwhm = {fwhm}, optics = {{ {optics} }} }}")
+
+    text = with_optics("0.01", "diameter = 2.4")
+    r = PopulationSampler(parse_recipe(text)).draw(0).band("r")
+    wavelength = effective_wavelength("r")  # the filter's mean wavelength by default
+    assert r.psf_optics[:3] == pytest.approx((wavelength, 2.4, 0.0), rel=1e-3)
+    # diffraction-limited: the FWHM of an Airy pattern, 1.029 lambda / D (Born & Wolf), within 3 %
+    # (the 0.01" atmosphere adds in quadrature)
+    measured = galsim.Image(psf_kernel(r, 0.004), scale=0.004).calculateFWHM()
+    airy = 1.029 * wavelength * 1e-9 / 2.4 * 180 * 3600 / math.pi
+    assert measured == pytest.approx(math.hypot(airy, 0.01), rel=0.03)
+    # defocus widens it (common practice)
+    blurred = PopulationSampler(parse_recipe(with_optics("0.01", "diameter = 2.4, defocus = 0.5"))).draw(0).band("r")
+    assert galsim.Image(psf_kernel(blurred, 0.004), scale=0.004).calculateFWHM() > 1.2 * measured
+    # a seeing-limited survey's PSF is barely changed by a 4 m aperture
+    wide = PopulationSampler(parse_recipe(with_optics("0.8", "diameter = 4.0"))).draw(0).band("r")
+    fwhm = galsim.Image(psf_kernel(wide, 0.02), scale=0.02).calculateFWHM()
+    assert fwhm == pytest.approx(0.8, rel=0.03)
+    with pytest.raises(RecipeError, match="optics.wavelength"):
+        parse_recipe(text.replace('filter = "LSST_r"\n', ""))

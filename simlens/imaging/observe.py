@@ -32,6 +32,7 @@ import galsim
 import numpy as np
 from scipy import fft as scipy_fft
 
+from ..cosmology import ARCSEC_PER_RADIAN
 from .rays import Scene
 from ..truth.conditions import BandConditions
 
@@ -52,14 +53,34 @@ def psf_profile(band: BandConditions) -> galsim.GSObject:
     else:
         raise ValueError(f"unknown PSF profile {band.psf_profile!r}; use 'moffat' or 'kolmogorov'")
     g1, g2 = band.psf_g1, band.psf_g2
-    return profile.shear(g1=g1, g2=g2) if (g1 or g2) else profile
+    if g1 or g2:
+        profile = profile.shear(g1=g1, g2=g2)
+    return galsim.Convolve(profile, _optical_psf(band.psf_optics)) if band.psf_optics else profile
+
+
+@functools.lru_cache(maxsize=16)
+def _optical_psf(optics: tuple) -> galsim.GSObject:
+    """GalSim's OpticalPSF of ``BandConditions.psf_optics`` (kept: building its pupil is the costly
+    part, and a survey's optics do not change from system to system)."""
+    wavelength, diameter, obscuration, defocus, astig1, astig2, coma1, coma2, spherical = optics
+    aberrations = [0.0, 0.0, 0.0, 0.0, defocus, astig1, astig2, coma1, coma2, 0.0, 0.0, spherical]  # by Noll index
+    return galsim.OpticalPSF(lam=wavelength, diam=diameter, obscuration=obscuration, aberrations=aberrations,
+                             scale_unit=galsim.arcsec)
+
+
+AIRY_FWHM = 1.029  # FWHM of an unobscured circular aperture's diffraction pattern, in lambda / D
 
 
 def major_axis_fwhm(band: BandConditions) -> float:
-    """The PSF's FWHM along its major axis (arcsec): ``psf_fwhm sqrt((1 + |g|) / (1 - |g|))`` for a
-    PSF sheared by ``g`` (area-preserving); what the PSF stamp and the padding reach from."""
+    """The PSF's FWHM along its major axis (arcsec), what the PSF stamp and the padding reach from:
+    ``psf_fwhm sqrt((1 + |g|) / (1 - |g|))`` for a PSF sheared by ``g`` (area-preserving), added in
+    quadrature to the diffraction FWHM ``AIRY_FWHM lambda / D`` of any optics."""
     g = math.hypot(band.psf_g1, band.psf_g2)
-    return band.psf_fwhm * math.sqrt((1.0 + g) / (1.0 - g))
+    atmosphere = band.psf_fwhm * math.sqrt((1.0 + g) / (1.0 - g))
+    if not band.psf_optics:
+        return atmosphere
+    wavelength, diameter = band.psf_optics[0], band.psf_optics[1]
+    return math.hypot(atmosphere, AIRY_FWHM * wavelength * 1e-9 / diameter * ARCSEC_PER_RADIAN)
 
 
 def padding_for(fwhm_max: float, pixel_scale: float) -> int:
@@ -78,14 +99,14 @@ def _convolver(band: BandConditions, scale: float, shape, margin: int) -> "_FFTC
     sampled every ``scale`` arcsec; the last few are kept, so that systems sharing a seeing share
     the PSF's transform."""
     shape = (shape, shape) if np.ndim(shape) == 0 else tuple(shape)
-    psf = (band.psf_profile, band.psf_fwhm, band.psf_beta, band.psf_g1, band.psf_g2)
+    psf = (band.psf_profile, band.psf_fwhm, band.psf_beta, band.psf_g1, band.psf_g2, band.psf_optics)
     return _shared_convolver(psf, scale, shape, margin)
 
 
 @functools.lru_cache(maxsize=32)
 def _shared_convolver(psf: tuple, scale: float, shape: tuple, margin: int) -> "_FFTConvolver":
-    profile, fwhm, beta, g1, g2 = psf
-    band = _PsfOnly(psf_profile=profile, psf_fwhm=fwhm, psf_beta=beta, psf_g1=g1, psf_g2=g2)
+    profile, fwhm, beta, g1, g2, optics = psf
+    band = _PsfOnly(psf_profile=profile, psf_fwhm=fwhm, psf_beta=beta, psf_g1=g1, psf_g2=g2, psf_optics=optics)
     return _FFTConvolver(shape, psf_kernel(band, scale), exact_margin=margin)
 
 
@@ -130,6 +151,7 @@ class _PsfOnly:
     psf_beta: float
     psf_g1: float = 0.0
     psf_g2: float = 0.0
+    psf_optics: tuple = ()
 
 
 def psf_kernel(band: BandConditions, scale: float) -> np.ndarray:

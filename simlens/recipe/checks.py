@@ -75,6 +75,10 @@ def _check_survey(recipe: Recipe) -> None:
                               "either each band's psf.fwhm or [survey.seeing], not both")
     if survey.seeing is not None:
         _require_filters(recipe, "[survey.seeing] (each band's FWHM follows its filter's mean wavelength)")
+    for band in survey.bands:
+        if band.psf.optics is not None and band.psf.optics.wavelength is None and band.filter is None:
+            raise RecipeError(recipe.origin, f"survey.bands.{band.name}.psf.optics.wavelength", "is missing",
+                              "the optical PSF's wavelength in nm, or the band's filter (its mean wavelength)")
 
 
 def _check_colours(recipe: Recipe) -> None:

@@ -138,6 +138,20 @@ def band_colors(*, doc: str = ""):
 # Settings (frozen; the schema lives in the field metadata)
 # ------------------------------------------------------------------------------------------------
 @dataclass(frozen=True, kw_only=True)
+class OpticsSettings:
+    diameter: float = number(low=0.1, high=50, unit="m", doc="telescope aperture diameter")
+    obscuration: float = number(0.0, low=0, high=0.9, doc="central obscuration, as a fraction of the diameter")
+    wavelength: float = number(optional=True, low=100, high=5000, unit="nm",
+                               doc="wavelength of the optical PSF (default: the band filter's mean wavelength)")
+    defocus: float = number(0.0, low=-2, high=2, unit="waves", doc="Zernike defocus (Noll 4), RMS waves")
+    astigmatism_1: float = number(0.0, low=-2, high=2, unit="waves", doc="Zernike astigmatism (Noll 5)")
+    astigmatism_2: float = number(0.0, low=-2, high=2, unit="waves", doc="Zernike astigmatism (Noll 6)")
+    coma_1: float = number(0.0, low=-2, high=2, unit="waves", doc="Zernike coma (Noll 7)")
+    coma_2: float = number(0.0, low=-2, high=2, unit="waves", doc="Zernike coma (Noll 8)")
+    spherical: float = number(0.0, low=-2, high=2, unit="waves", doc="Zernike spherical aberration (Noll 11)")
+
+
+@dataclass(frozen=True, kw_only=True)
 class PsfSettings:
     profile: str = text("moffat", choices=("moffat", "kolmogorov"),
                         doc="PSF shape: Moffat (with beta) or Kolmogorov")
@@ -149,6 +163,8 @@ class PsfSettings:
                                            "(area-preserving; absent: round)")
     ellipticity_angle: Parameter = parameter(optional=True, low=-360, high=360, unit="deg",
                                              doc="PSF major axis, CCW from +x (default 0)")
+    optics: OpticsSettings = table(OpticsSettings, optional=True,
+                                   doc="an optical PSF (GalSim's OpticalPSF) convolved with the atmospheric one")
 
 
 @dataclass(frozen=True, kw_only=True)

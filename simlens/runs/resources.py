@@ -23,7 +23,7 @@ from pathlib import Path
 from ..errors import SimlensError
 from ..imaging.observe import PSF_IMAGE_SIZE, PSF_RADIUS_IN_FWHM, convolution_sampling
 from ..recipe import Recipe
-from ..truth.seeing import psf_fwhm_range
+from ..truth.psf import psf_fwhm_range
 
 __all__ = ["ResourceEstimate", "estimate_resources", "available_memory", "free_disk", "check_resources", "size_text"]
 

@@ -34,6 +34,9 @@ class BandConditions:
     psf_beta: float  # Moffat beta (unused for Kolmogorov)
     psf_g1: float = 0.0  # reduced shear of the PSF (area-preserving), along +x
     psf_g2: float = 0.0  # and along the diagonal
+    # an optical PSF convolved in: (wavelength nm, diameter m, obscuration, Zernike coefficients in
+    # waves for Noll 4-8 and 11), or () for none
+    psf_optics: tuple = ()
 
     @property
     def magzero(self) -> float:

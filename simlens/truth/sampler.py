@@ -44,7 +44,7 @@ from ..recipe import Recipe
 from ..recipe.distributions import Fixed, Grid
 from .conditions import BandConditions
 from .record import Clump, LineOfSightGalaxy, SecondSource, Subhalo, System
-from .seeing import band_fwhm, seeing_factors
+from .psf import band_fwhm, band_optics, seeing_factors
 from .streams import SYSTEM_STREAMS, grid_cell, system_streams
 
 __all__ = ["PopulationSampler", "SelectionExhausted", "System", "offset_on_sky"]
@@ -101,12 +101,13 @@ class PopulationSampler:
                                    if not isinstance(p, (Fixed, Grid))]
         self._grid_shape = recipe.grid_shape
         # (band, ((BandConditions field, parameter key path), ...)) for the conditions of each system
-        # (with [survey.seeing] the FWHM comes from simlens.truth.seeing instead of psf.fwhm)
+        # (with [survey.seeing] the FWHM comes from simlens.truth.psf instead of psf.fwhm)
         own = ("zero_point", "sky_brightness", "exposure_time", "gain", "read_noise") + (
             () if recipe.survey.seeing is not None else ("psf.fwhm",)) + ("psf.beta",)
         self._band_keys = [(b, tuple((path.replace("psf.", "psf_"), f"survey.bands.{b.name}.{path}") for path in own))
                            for b in recipe.survey.bands]
         self._seeing_factors = seeing_factors(recipe)
+        self._optics = band_optics(recipe)
         base = str(Path(recipe.origin).parent) if recipe.origin != "<recipe>" else "."
         filters = {b.name: b.filter for b in recipe.survey.bands if b.filter is not None}
         lens, source = recipe.lens, recipe.source
@@ -347,7 +348,7 @@ class PopulationSampler:
         bands = self.conditions or tuple(
             BandConditions(name=b.name, pixel_scale=recipe.survey.pixel_scale, psf_profile=b.psf.profile,
                            **{name: v[key] for name, key in keys}, **({"psf_fwhm": fwhm[b.name]} if fwhm else {}),
-                           **_psf_shear(b, v))
+                           **_psf_shear(b, v), psf_optics=self._optics[b.name])
             for b, keys in self._band_keys)
 
         # -- a second source plane ------------------------------------------------------------

@@ -1,4 +1,5 @@
-"""One seeing for all bands, scaled with wavelength (the recipe's ``[survey.seeing]``).
+"""Each band's PSF settings as drawn for one system: one seeing for all bands scaled with
+wavelength (the recipe's ``[survey.seeing]``), and the optics of ``psf.optics``.
 
 Atmospheric seeing narrows towards the red: for Kolmogorov turbulence the FWHM scales as
 ``lambda^(-1/5)`` (common practice; e.g. Roddier 1981, Progress in Optics 19, 281).  With a
@@ -9,6 +10,10 @@ Atmospheric seeing narrows towards the red: for Kolmogorov turbulence the FWHM s
 ``lambda_band`` the throughput-weighted mean wavelength of the band's filter and N(0, 1) a
 standard normal of the system's ``seeing`` stream, one per band in survey order (drawn only when
 ``band_scatter`` > 0).  Without the table each band draws its own ``psf.fwhm``.
+
+A band's ``psf.optics`` (fixed per survey) becomes the tuple ``BandConditions.psf_optics``: the
+wavelength (given, or the filter's mean), the diameter, the obscuration and the Zernike
+coefficients, which :func:`simlens.imaging.observe.psf_profile` turns into GalSim's OpticalPSF.
 """
 
 from __future__ import annotations
@@ -20,7 +25,7 @@ import numpy as np
 from ..populations.photometry import load_filter
 from ..recipe import Recipe
 
-__all__ = ["seeing_factors", "band_fwhm", "psf_fwhm_range", "FWHM_LIMITS", "SCATTER_REACH"]
+__all__ = ["seeing_factors", "band_fwhm", "band_optics", "psf_fwhm_range", "FWHM_LIMITS", "SCATTER_REACH"]
 
 FWHM_LIMITS = (0.01, 10.0)  # arcsec: the range of psf.fwhm in the recipe schema
 SCATTER_REACH = 4.0  # the scatter's reach (sigma) in the ranges given to resource estimates
@@ -57,3 +62,18 @@ def psf_fwhm_range(recipe: Recipe, band: str) -> tuple[float, float]:
     low, high = (float(v) * factor for v in seeing.fwhm.support)
     spread = SCATTER_REACH * seeing.band_scatter
     return max(low * (1.0 - spread), FWHM_LIMITS[0]), min(high * (1.0 + spread), FWHM_LIMITS[1])
+
+
+def band_optics(recipe: Recipe) -> dict[str, tuple]:
+    """``band -> BandConditions.psf_optics`` (an empty tuple for a band without ``psf.optics``)."""
+    base = str(Path(recipe.origin).parent) if recipe.origin != "<recipe>" else "."
+    out = {}
+    for band in recipe.survey.bands:
+        optics = band.psf.optics
+        if optics is None:
+            out[band.name] = ()
+            continue
+        wavelength = optics.wavelength if optics.wavelength is not None else load_filter(band.filter, base).mean_wavelength
+        out[band.name] = (float(wavelength), optics.diameter, optics.obscuration, optics.defocus, optics.astigmatism_1,
+                          optics.astigmatism_2, optics.coma_1, optics.coma_2, optics.spherical)
+    return out
