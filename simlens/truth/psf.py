@@ -18,6 +18,7 @@ coefficients, which :func:`simlens.imaging.observe.psf_profile` turns into GalSi
 
 from __future__ import annotations
 
+import math
 from pathlib import Path
 
 import numpy as np
@@ -25,7 +26,7 @@ import numpy as np
 from ..populations.photometry import load_filter
 from ..recipe import Recipe
 
-__all__ = ["seeing_factors", "band_fwhm", "band_optics", "psf_fwhm_range", "FWHM_LIMITS", "SCATTER_REACH"]
+__all__ = ["seeing_factors", "band_fwhm", "band_optics", "psf_shear", "psf_fwhm_range", "FWHM_LIMITS", "SCATTER_REACH"]
 
 FWHM_LIMITS = (0.01, 10.0)  # arcsec: the range of psf.fwhm in the recipe schema
 SCATTER_REACH = 4.0  # the scatter's reach (sigma) in the ranges given to resource estimates
@@ -77,3 +78,14 @@ def band_optics(recipe: Recipe) -> dict[str, tuple]:
         out[band.name] = (float(wavelength), optics.diameter, optics.obscuration, optics.defocus, optics.astigmatism_1,
                           optics.astigmatism_2, optics.coma_1, optics.coma_2, optics.spherical)
     return out
+
+
+def psf_shear(band, values: dict) -> dict:
+    """``psf_g1, psf_g2`` of a band (``BandSettings``) whose PSF has an ellipticity |g| at an angle a,
+    ``g (cos 2a, sin 2a)``, from the system's drawn parameter ``values`` (none: round)."""
+    if band.psf.ellipticity is None:
+        return {}
+    prefix = f"survey.bands.{band.name}.psf."
+    g = values[prefix + "ellipticity"]
+    angle = math.radians(values[prefix + "ellipticity_angle"]) if band.psf.ellipticity_angle is not None else 0.0
+    return {"psf_g1": g * math.cos(2.0 * angle), "psf_g2": g * math.sin(2.0 * angle)}

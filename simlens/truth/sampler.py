@@ -44,7 +44,7 @@ from ..recipe import Recipe
 from ..recipe.distributions import Fixed, Grid
 from .conditions import BandConditions
 from .record import Clump, LineOfSightGalaxy, SecondSource, Subhalo, System
-from .psf import band_fwhm, band_optics, seeing_factors
+from .psf import band_fwhm, band_optics, psf_shear, seeing_factors
 from .streams import SYSTEM_STREAMS, grid_cell, system_streams
 
 __all__ = ["PopulationSampler", "SelectionExhausted", "System", "offset_on_sky"]
@@ -55,16 +55,6 @@ class SelectionExhausted(RunError):
 
 
 ImageCuts = Callable[[System], Mapping[str, bool]]
-
-
-def _psf_shear(band, values: dict) -> dict:
-    """``psf_g1, psf_g2`` of a band whose PSF has an ellipticity |g| at an angle: g (cos 2a, sin 2a)."""
-    if band.psf.ellipticity is None:
-        return {}
-    prefix = f"survey.bands.{band.name}.psf."
-    g = values[prefix + "ellipticity"]
-    angle = math.radians(values[prefix + "ellipticity_angle"]) if band.psf.ellipticity_angle is not None else 0.0
-    return {"psf_g1": g * math.cos(2.0 * angle), "psf_g2": g * math.sin(2.0 * angle)}
 
 
 class PopulationSampler:
@@ -348,7 +338,7 @@ class PopulationSampler:
         bands = self.conditions or tuple(
             BandConditions(name=b.name, pixel_scale=recipe.survey.pixel_scale, psf_profile=b.psf.profile,
                            **{name: v[key] for name, key in keys}, **({"psf_fwhm": fwhm[b.name]} if fwhm else {}),
-                           **_psf_shear(b, v), psf_optics=self._optics[b.name])
+                           **psf_shear(b, v), psf_optics=self._optics[b.name])
             for b, keys in self._band_keys)
 
         # -- a second source plane ------------------------------------------------------------
