@@ -12,8 +12,8 @@ Every band is divided by its own pixel noise sigma (measured on the cutout's noi
 its noiseless planes), so the noise looks alike in all three channels and a panel's brightness reads
 as signal-to-noise.  The subtracted panel is smoothed by a Gaussian of the PSF's FWHM (the matched
 filter of an unresolved feature: most pixels of an arc's 1-sigma mask are too faint to stand out
-one by one; the README gives the measured contrast).  Each panel is the asinh stretch of Lupton et al. (2004), via
-``astropy.visualization.make_lupton_rgb``, its linear range a fraction of the panel's
+one by one; the README gives the measured contrast).  Each panel is the asinh stretch of Lupton
+et al. (2004), via ``astropy.visualization.make_lupton_rgb``, its linear range a fraction of the panel's
 99.5th-percentile brightness, its softening and black level set per panel (``PANEL_STRETCH``).
 The segmentation mask (the reference band's MASK plane) is drawn as a contour on the subtracted and
 source panels.  Systems are chosen by simple truth cuts (``"arc_snr_r < 10"``; no code is
@@ -102,12 +102,14 @@ def _planes_of(run_dir: Path, ids: np.ndarray) -> dict:
     return out
 
 
-def noise_sigma(planes: dict) -> np.ndarray:
-    """Per-band pixel noise sigma of one cutout: the standard deviation of the image less its
-    noiseless planes, or (without them) 1.4826 times the median absolute deviation of the image."""
-    image = planes["IMAGES"]
+def noise_sigma(planes: dict, smooth_pixels: float = 0.0) -> np.ndarray:
+    """Per-band pixel noise sigma of one cutout (after smoothing by a Gaussian of ``smooth_pixels``):
+    the standard deviation of the image less its noiseless planes, or (without them) 1.4826 times
+    the median absolute deviation of the image."""
     if "LENS" in planes and "SOURCE" in planes:
-        return np.maximum((image - planes["LENS"] - planes["SOURCE"]).std(axis=(1, 2)), 1e-30)
+        noise = _smoothed(planes["IMAGES"] - planes["LENS"] - planes["SOURCE"], smooth_pixels)
+        return np.maximum(noise.std(axis=(1, 2)), 1e-30)
+    image = _smoothed(planes["IMAGES"], smooth_pixels)
     median = np.median(image, axis=(1, 2), keepdims=True)
     return np.maximum(1.4826 * np.median(np.abs(image - median), axis=(1, 2)), 1e-30)
 
@@ -118,6 +120,12 @@ def _smoothed(cube: np.ndarray, sigma_pixels: float) -> np.ndarray:
     return np.array([ndimage.gaussian_filter(band, sigma_pixels, mode="nearest") for band in cube]) if sigma_pixels > 0 else cube
 
 
+def _check_panels(panels: Sequence[str]) -> None:
+    for panel in panels:
+        if panel not in PANELS:
+            raise SimlensError(f"unknown gallery panel {panel!r}; choose from {', '.join(PANELS)}")
+
+
 def panel_images(planes: dict, index: Sequence[int], panels: Sequence[str] = PANELS, smooth_pixels: float = 0.0,
                  stretch_scale: float = 1.0, q: float | None = None) -> dict:
     """``panel -> (ny, nx, 3)`` RGB image (floats in [0, 1]) of one cutout's ``planes`` (see
@@ -125,20 +133,16 @@ def panel_images(planes: dict, index: Sequence[int], panels: Sequence[str] = PAN
     ``smooth_pixels`` is the Gaussian sigma by which the subtracted panel is smoothed."""
     from astropy.visualization import make_lupton_rgb
 
+    _check_panels(panels)
     bands = list(index)
     out = {}
     for panel in panels:
-        if panel not in PANELS:
-            raise SimlensError(f"unknown gallery panel {panel!r}; choose from {', '.join(PANELS)}")
+        smooth = smooth_pixels if panel == "subtracted" else 0.0
         if panel == "source":  # noiseless: in units of the cutout's noise, but no noise to measure
-            channels = planes["SOURCE"][bands] / noise_sigma(planes)[bands, None, None]
+            signal = planes["SOURCE"]
         else:
-            signal = planes["IMAGES"] - (planes["LENS"] if panel == "subtracted" else 0.0)
-            smooth = smooth_pixels if panel == "subtracted" else 0.0
-            noise = {"IMAGES": _smoothed(planes["IMAGES"], smooth)}
-            if "LENS" in planes and "SOURCE" in planes:
-                noise.update(LENS=_smoothed(planes["LENS"], smooth), SOURCE=_smoothed(planes["SOURCE"], smooth))
-            channels = _smoothed(signal, smooth)[bands] / noise_sigma(noise)[bands, None, None]
+            signal = _smoothed(planes["IMAGES"] - (planes["LENS"] if panel == "subtracted" else 0.0), smooth)
+        channels = signal[bands] / noise_sigma(planes, smooth)[bands, None, None]
         fraction, softening, minimum = PANEL_STRETCH[panel]
         top = float(np.percentile(channels.mean(axis=0), 99.5))
         linear = max(stretch_scale * fraction * top, 1e-12 if panel == "source" else 1.0)
@@ -191,9 +195,7 @@ def contact_sheets(run_dir: str | Path, rows: Table, name: str = "gallery", per_
         bands.append(bands[-1])
     if len(rows) == 0:
         raise SimlensError("no system passes the cuts; nothing to draw")
-    for panel in panels or ():
-        if panel not in PANELS:
-            raise SimlensError(f"unknown gallery panel {panel!r}; choose from {', '.join(PANELS)}")
+    _check_panels(panels or ())
     planes = _planes_of(run_dir, np.asarray(rows["system_id"]))
     held = set.intersection(*(set(p) for p in planes.values()))
     possible = [p for p in PANELS if p == "observed" or {"LENS", "SOURCE"} <= held]

@@ -4,14 +4,14 @@ bounded memory.
 The shards' tables are found from their headers (read here as the FITS standard lays them out),
 read as raw records with numpy (no astropy Table or HDU per shard: building them cost the parent's
 assembly a quarter of a serial run) and gathered in chunks of whole shards (at least CHUNK_ROWS
-rows, or all that remain).  Each chunk becomes one astropy Table, its columns converted as astropy reads them (text, logicals, native
-byte order) and carrying the first shard's units and descriptions; the ECSV file gets its header
-once and then each chunk's data lines, the FITS file one binary-table header with the total row
-count (string columns as wide as the widest shard's, found from the headers) and then each
-chunk's fixed-size rows, padded to the FITS block size.  Memory stays at about one chunk's table
-whatever the number of systems (bench/bench_memory.py).  A table with scaled, null-flagged,
-multi-dimensional or variable-length columns, which raw records would misread, is read through
-astropy shard by shard instead.
+rows, or all that remain).  Each chunk becomes one astropy Table, its columns converted as astropy
+reads them (text, logicals, native byte order), with the first shard's units and descriptions.
+The ECSV file gets its header once and then each chunk's data lines; the FITS file one
+binary-table header with the total row count (string columns as wide as the widest shard's, found
+from the headers) and then each chunk's fixed-size rows, padded to the FITS block size.  Memory
+stays at about one chunk's table whatever the number of systems (bench/bench_memory.py).  A table
+with scaled, null-flagged, multi-dimensional or variable-length columns, which raw records would
+misread, is read through astropy shard by shard instead.
 """
 
 from __future__ import annotations
@@ -156,17 +156,14 @@ def _as_astropy_reads(raw: np.ndarray, template: Table) -> Table:
     return Table(columns, meta=template.meta)
 
 
-def _read_chunk(layouts: Sequence[TableLayout], hdu: str, template: Table) -> list:
-    """The tables of one chunk: one Table from the raw records of all, or one Table per shard
-    through astropy where a layout cannot be read raw."""
+def _read_chunk(layouts: Sequence[TableLayout], hdu: str, template: Table, widths: dict) -> list:
+    """The tables of one chunk: one Table from the raw records of all (text as wide as ``widths``),
+    or one Table per shard through astropy where a layout cannot be read raw."""
     if any(layout.dtype is None for layout in layouts):
         return [read_table(layout.path, hdu) for layout in layouts]
     records = [layout.records() for layout in layouts]
-    widths = {}
-    for layout in layouts:
-        for name, width in layout.widths.items():
-            widths[name] = max(widths.get(name, 1), width)
-    dtype = [(name, f"S{widths[name]}" if name in widths else records[0].dtype[name]) for name in records[0].dtype.names]
+    dtype = [(name, f"S{max(widths[name], 1)}" if name in widths else records[0].dtype[name])
+             for name in records[0].dtype.names]
     return [_as_astropy_reads(np.concatenate([record.astype(dtype) for record in records]), template)]
 
 
@@ -191,7 +188,7 @@ def write_catalogue(sources: Sequence[Path], hdu: str, folder: Path, stem: str, 
                 while stop < len(layouts) and (rows < CHUNK_ROWS or stop == start):
                     rows += layouts[stop].rows
                     stop += 1
-                parts = [_with_widths(part, widths) for part in _read_chunk(layouts[start:stop], hdu, template)]
+                parts = [_with_widths(part, widths) for part in _read_chunk(layouts[start:stop], hdu, template, widths)]
                 chunk = parts[0] if len(parts) == 1 else vstack(parts, join_type="exact", metadata_conflicts="silent")
                 for name in keep:  # a copy: a view would keep the whole chunk's table alive
                     kept[name].append(np.array(chunk[name], copy=True))
