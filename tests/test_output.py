@@ -70,7 +70,7 @@ def test_headers_carry_photometry_and_psf(run_folder):
     out, recipe = run_folder
     with fits.open(out / "cutouts" / "system_000001.fits") as hdul:
         names = [h.name for h in hdul]
-        assert names == ["PRIMARY", "G", "G_SOURCE", "G_LENS", "G_PSF", "R", "R_SOURCE", "R_LENS", "R_PSF"]
+        assert names == ["PRIMARY", "G", "G_SOURCE", "G_LENS", "G_VAR", "G_PSF", "R", "R_SOURCE", "R_LENS", "R_VAR", "R_PSF"]
         h = hdul["g"].header
         band = recipe.survey.band("g")
         assert h["BUNIT"] == "adu" and h["BAND"] == "g"

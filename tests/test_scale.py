@@ -57,7 +57,7 @@ def test_shards_hold_cubes_masks_and_truth(reference_run):
     shards = sorted((out / "shards").glob("*.fits"))
     assert [p.name for p in shards] == [f"shard_0000{i}.fits" for i in range(4)]
     with fits.open(shards[1]) as hdul:
-        assert [h.name for h in hdul] == ["PRIMARY", "IMAGES", "SOURCE", "LENS", "MASK", "PSF", "TRUTH", "SUBHALOS", "IMAGE_TRUTH", "LINE_OF_SIGHT"]
+        assert [h.name for h in hdul] == ["PRIMARY", "IMAGES", "SOURCE", "LENS", "VARIANCE", "MASK", "PSF", "TRUTH", "SUBHALOS", "IMAGE_TRUTH", "LINE_OF_SIGHT"]
         assert hdul["IMAGES"].data.shape == (2, 2, 32, 32) and hdul["PSF"].data.shape == (2, 2, 25, 25)
         assert hdul[0].header["FIRSTID"] == 2 and hdul[0].header["BANDS"] == "g,r"
         truth = Table.read(hdul["TRUTH"])

@@ -14,9 +14,11 @@ For each band of a system:
    with the PSF sampled on that grid by FFT, and block-summed to pixels, which integrates over each
    pixel, i.e. applies the pixel response.  Against GalSim drawing the same scenes directly this
    keeps flux and worst-pixel errors at the 1e-3 level (bench/bench_psf_stage.py).
-3. The sky level (from the sky brightness, zero point and exposure) enters only through the noise:
-   ``galsim.CCDNoise`` with ``sky_level`` adds Poisson noise of sky + signal and Gaussian read noise
-   (gain in electrons per ADU), seeded per system and band, and leaves the image sky-subtracted.
+3. The sky level (from the sky brightness, zero point and exposure) enters only through the noise
+   (:func:`add_noise`): ``galsim.CCDNoise`` with ``sky_level`` adds Poisson noise of sky + signal
+   and Gaussian read noise (gain in electrons per ADU), seeded per system and band, and leaves the
+   image sky-subtracted.  A band with a ``resampling`` kernel gets a coadd's correlated noise of the
+   same unresampled variance instead (:mod:`simlens.imaging.coadd`).
 
 The PSF image written to files is the PSF integrated over the pixel (:func:`effective_psf_image`),
 the effective PSF a user fits to stars in the image.
@@ -33,11 +35,12 @@ import numpy as np
 from scipy import fft as scipy_fft
 
 from ..cosmology import ARCSEC_PER_RADIAN
+from .coadd import coadd_kernel, coadd_noise
 from .rays import Scene
 from ..truth.conditions import BandConditions
 
 __all__ = ["psf_profile", "psf_kernel", "major_axis_fwhm", "effective_psf_image", "ObservedBand", "observe_scene",
-           "padding_for", "PSF_RADIUS_IN_FWHM"]
+           "add_noise", "unresampled_variance", "padding_for", "PSF_RADIUS_IN_FWHM"]
 
 PSF_RADIUS_IN_FWHM = 5.0
 CONVOLUTION_SAMPLING = 2  # samples per pixel side on which the PSF convolution runs
@@ -216,6 +219,26 @@ class _FFTConvolver:
         return convolved[:self.shape[0], :self.shape[1]]  # float32
 
 
+def unresampled_variance(band: BandConditions, signal: np.ndarray) -> np.ndarray:
+    """Expected per-pixel noise variance (ADU^2) of a sky-subtracted image of noiseless ``signal``
+    before any resampling: Poisson of sky + signal and read noise, the CCD equation (e.g. Howell
+    2006, Handbook of CCD Astronomy)."""
+    return ((band.sky_level + np.clip(signal, 0.0, None)) * band.gain + band.read_noise**2) / band.gain**2
+
+
+def add_noise(signal: np.ndarray, band: BandConditions, noise_seed: int) -> tuple[np.ndarray, float]:
+    """``signal`` (ADU, sky-subtracted, float64) plus the band's noise, and the noise's pixel variance
+    over :func:`unresampled_variance` (1 for white noise, below 1 for a resampled coadd)."""
+    if band.resampling == "none":
+        image = galsim.Image(np.array(signal, dtype=np.float64), scale=band.pixel_scale)
+        image.addNoise(galsim.CCDNoise(galsim.BaseDeviate(int(noise_seed)), sky_level=band.sky_level,
+                                       gain=band.gain, read_noise=band.read_noise))
+        return image.array, 1.0
+    rng = np.random.default_rng(int(noise_seed))
+    kernel = coadd_kernel(band.resampling, band.exposures, rng)
+    return signal + coadd_noise(unresampled_variance(band, signal), kernel, rng), kernel.variance_factor
+
+
 @dataclass(frozen=True)
 class ObservedBand:
     """One band of one system after the GalSim stage (all images in ADU, sky-subtracted)."""
@@ -225,13 +248,18 @@ class ObservedBand:
     lensed_source: np.ndarray  # noiseless, PSF-convolved lensed source only
     lens_light: np.ndarray  # noiseless, PSF-convolved lens light only
     psf: np.ndarray  # effective PSF (PSF * pixel) at the pixel scale, unit sum
+    noise_variance_factor: float = 1.0  # the noise's pixel variance over the unresampled one
 
     @property
     def variance(self) -> np.ndarray:
-        """Expected per-pixel noise variance (ADU^2): Poisson of sky + signal, and read noise."""
-        b = self.band
-        signal = np.clip(self.lensed_source + self.lens_light, 0.0, None)
-        return ((b.sky_level + signal) * b.gain + b.read_noise**2) / b.gain**2
+        """Expected per-pixel noise variance (ADU^2): Poisson of sky + signal and read noise, times
+        the coadd's resampling factor."""
+        return unresampled_variance(self.band, self.lensed_source + self.lens_light) * self.noise_variance_factor
+
+    @property
+    def sky_variance(self) -> float:
+        """Expected noise variance (ADU^2) of an empty pixel."""
+        return self.band.background_sigma**2 * self.noise_variance_factor
 
     def source_mask(self, threshold: float) -> np.ndarray:
         """Segmentation label: pixels where the noiseless lensed source exceeds ``threshold`` times the
@@ -241,13 +269,16 @@ class ObservedBand:
     @property
     def arc_snr(self) -> float:
         """Matched-filter S/N of the noiseless lensed source: ``sqrt(sum S_i^2 / var_i)`` over the
-        cutout's pixels, with ``var_i`` from :attr:`variance` (the optimal S/N of a known template
-        in Gaussian noise; common practice in lens-finding forecasts)."""
-        return float(np.sqrt(np.sum(self.lensed_source**2 / self.variance)))
+        cutout's pixels, with ``var_i`` the unresampled variance (the optimal S/N of a known template
+        in white Gaussian noise; common practice in lens-finding forecasts).  Resampling a coadd
+        lowers each pixel's variance but correlates it, and leaves the S/N of light spread over
+        many pixels as it was, so the unresampled variance is the one used."""
+        return float(np.sqrt(np.sum(self.lensed_source**2 / unresampled_variance(
+            self.band, self.lensed_source + self.lens_light))))
 
 
 def observe_scene(scene: Scene, band: BandConditions, noise_seed: int) -> ObservedBand:
-    """Apply PSF, pixel response and CCD noise to one band's scene."""
+    """Apply PSF, pixel response and noise to one band's scene."""
     grid = scene.grid
     sampling = convolution_sampling(grid.supersampling)
     if scene.sampling % sampling:
@@ -272,9 +303,6 @@ def observe_scene(scene: Scene, band: BandConditions, noise_seed: int) -> Observ
     # FFT round-off can leave values of order -1e-7 of the peak; clip before Poisson noise.
     lens = np.clip(lens, 0.0, None)
     source = np.clip(source, 0.0, None)
-    image = galsim.Image(lens + source, scale=band.pixel_scale, dtype=np.float64)
-    noise = galsim.CCDNoise(galsim.BaseDeviate(int(noise_seed)), sky_level=band.sky_level,
-                            gain=band.gain, read_noise=band.read_noise)
-    image.addNoise(noise)
-    return ObservedBand(band=band, image=image.array.copy(), lensed_source=source, lens_light=lens,
-                        psf=effective_psf_image(band))
+    image, factor = add_noise(lens + source, band, noise_seed)
+    return ObservedBand(band=band, image=image, lensed_source=source, lens_light=lens,
+                        psf=effective_psf_image(band), noise_variance_factor=factor)

@@ -9,13 +9,17 @@ PRIMARY         no data; the system's identity and redshifts in the header
 ``B``           observed image: scene + PSF + pixel + noise, sky-subtracted
 ``B_SOURCE``    noiseless lensed source only (PSF-convolved)
 ``B_LENS``      noiseless lens light only (PSF-convolved)
+``B_VAR``       expected noise variance per pixel, ADU^2 (if ``output.variance``)
 ``B_PSF``       effective PSF (PSF convolved with the pixel), unit sum
 ==============  =============================================================
 
 Header keywords (our own plain names; standard ones where FITS has them): ``BUNIT`` (``adu``),
 ``EXPTIME`` [s], ``GAIN`` [e-/ADU], ``RDNOISE`` [e-], ``MAGZERO`` (AB:
 ``m = MAGZERO - 2.5 log10(counts)``), ``SKYLEVEL`` [ADU/pixel, subtracted], ``SKYMAG``
-[mag/arcsec^2], ``PSFFWHM`` [arcsec], ``PSFTYPE``, ``PSFBETA``, ``BAND``, ``CONTENT``.
+[mag/arcsec^2], ``PSFFWHM`` [arcsec], ``PSFTYPE``, ``PSFBETA``, ``PSFG1``, ``PSFG2``, ``BAND``,
+``CONTENT``, ``NEXPOSE`` (exposures summed), ``RESAMPLE`` (their resampling kernel), ``SKYVAR``
+[ADU^2, the noise variance of an empty pixel, after resampling] and ``VARFACT`` (the pixel variance
+over the unresampled one: correlated coadd noise, :mod:`simlens.imaging.coadd`).
 
 WCS: ``CRPIX = (N + 1) / 2`` (the cutout centre, where the lens is), ``CRVAL`` = the system's
 RA/Dec, ``CD1_1 = -scale``, ``CD2_2 = +scale`` (deg): north up, east left, so image ``+x`` points
@@ -54,15 +58,18 @@ def _image_hdu(data: np.ndarray, name: str, content: str, rendered: RenderedSyst
     system = rendered.system
     header = cutout_wcs(system.ra, system.dec, band.pixel_scale, data.shape[0]).to_header()
     hdu = fits.ImageHDU(data=data.astype(np.float32), header=header, name=name)
-    band_keywords(hdu.header, band, content)
+    band_keywords(hdu.header, band, content, observed.noise_variance_factor)
     return hdu
 
 
-def band_keywords(h: fits.Header, band, content: str) -> None:
-    """The band's observing keywords (see the module docstring) written into header ``h``."""
+def band_keywords(h: fits.Header, band, content: str, noise_variance_factor: float = 1.0) -> None:
+    """The band's observing keywords (see the module docstring) written into header ``h``;
+    ``noise_variance_factor`` is the noise's pixel variance over the unresampled one
+    (``ObservedBand.noise_variance_factor``)."""
     h["BAND"] = (band.name, "band name from the recipe")
     h["CONTENT"] = (content, "what this image holds")
-    h["BUNIT"] = ("adu" if content != "psf" else "", "pixel units" if content != "psf" else "unit sum")
+    h["BUNIT"] = ({"psf": "", "noise variance": "adu2"}.get(content, "adu"),
+                  "unit sum" if content == "psf" else "pixel units")
     h["EXPTIME"] = (band.exposure_time, "[s] exposure time")
     h["GAIN"] = (band.gain, "[electron/adu] detector gain")
     h["RDNOISE"] = (band.read_noise, "[electron] read noise per pixel")
@@ -76,10 +83,14 @@ def band_keywords(h: fits.Header, band, content: str) -> None:
     if band.psf_profile == "moffat":
         h["PSFBETA"] = (band.psf_beta, "Moffat beta")
     h["PIXSCALE"] = (band.pixel_scale, "[arcsec/pixel] pixel scale")
+    h["NEXPOSE"] = (band.exposures, "exposures summed (they share EXPTIME)")
+    h["RESAMPLE"] = (band.resampling, "resampling kernel (none: white noise)")
+    h["SKYVAR"] = (band.background_sigma**2 * noise_variance_factor, "[adu2] noise variance of an empty pixel")
+    h["VARFACT"] = (noise_variance_factor, "SKYVAR over the unresampled variance")
 
 
-def write_cutout(rendered: RenderedSystem, path: Path, run_name: str = "") -> None:
-    """Write one system's cutout file (atomically)."""
+def write_cutout(rendered: RenderedSystem, path: Path, run_name: str = "", variance: bool = True) -> None:
+    """Write one system's cutout file (atomically); ``variance``: with each band's B_VAR."""
     system = rendered.system
     primary = fits.PrimaryHDU()
     h = primary.header
@@ -98,6 +109,8 @@ def write_cutout(rendered: RenderedSystem, path: Path, run_name: str = "") -> No
         hdus.append(_image_hdu(observed.image, name, "observed", rendered, observed))
         hdus.append(_image_hdu(observed.lensed_source, f"{name}_SOURCE", "noiseless lensed source", rendered, observed))
         hdus.append(_image_hdu(observed.lens_light, f"{name}_LENS", "noiseless lens light", rendered, observed))
+        if variance:
+            hdus.append(_image_hdu(observed.variance, f"{name}_VAR", "noise variance", rendered, observed))
         hdus.append(_image_hdu(observed.psf, f"{name}_PSF", "psf", rendered, observed))
     with atomic_path(Path(path)) as tmp:
         fits.HDUList(hdus).writeto(tmp)

@@ -9,6 +9,7 @@ PRIMARY     --                                      run name, shard index, first
 IMAGES      (n_systems, n_bands, ny, nx) float32    observed images, ADU, sky-subtracted
 SOURCE      (n_systems, n_bands, ny, nx) float32    noiseless lensed source (if output.noiseless)
 LENS        (n_systems, n_bands, ny, nx) float32    noiseless lens light (if output.noiseless)
+VARIANCE    (n_systems, n_bands, ny, nx) float32    expected noise variance per pixel, ADU^2 (if output.variance)
 MASK        (n_systems, n_bands, ny, nx) uint8      1 where the lensed source exceeds MASKTHR x sigma
 PSF         (n_systems, n_bands, 25, 25) float32    effective PSF per system and band, unit sum
 TRUTH       table, one row per system               the truth catalogue's rows for this shard
@@ -34,7 +35,7 @@ from .atomic import atomic_path
 
 __all__ = ["write_shard", "read_shard", "PLANES"]
 
-PLANES = ("IMAGES", "SOURCE", "LENS", "MASK", "PSF")
+PLANES = ("IMAGES", "SOURCE", "LENS", "VARIANCE", "MASK", "PSF")
 
 
 def write_shard(path: Path, cubes: dict, truth: Table, header: dict, extra_tables: dict | None = None) -> None:

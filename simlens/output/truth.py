@@ -166,6 +166,8 @@ TRUTH_COLUMNS = (
       lambda e, b: _band(e, b).magzero),
     C("sky_level_{band}", "", "sky level subtracted from the {band} images (ADU per pixel)",
       lambda e, b: _band(e, b).sky_level),
+    C("sky_variance_{band}", "", "expected noise variance of an empty {band} pixel (ADU^2; below the CCD "
+      "equation's where resampled exposures correlate the noise)", lambda e, b: e.rendered.band(b).sky_variance),
 )
 
 # Field runs add where each lens sits in its field (simlens.runs.fields).

@@ -178,6 +178,11 @@ class BandSettings:
     read_noise: Parameter = parameter(0.0, low=0, high=1000, unit="electron",
                                       doc="read noise per pixel (all exposures)")
     psf: PsfSettings = table(PsfSettings, doc="point-spread function")
+    exposures: int = number(1, low=1, high=10000, integer=True,
+                            doc="exposures summed into the image (they share exposure_time)")
+    resampling: str = text("none", choices=("none", "bilinear", "lanczos3"),
+                           doc="kernel resampling each dithered exposure onto the image's pixels, "
+                               "which correlates the noise of neighbouring pixels ('none': white noise)")
     filter: str = text(optional=True, doc="filter curve: a GalSim filter name (e.g. 'LSST_r') or a file "
                                           "of 'nm throughput' lines, relative to the recipe; needed "
                                           "for template colours")
@@ -569,6 +574,8 @@ class OutputSettings:
                              doc="systems per shard file (the unit of parallel work and of resuming)")
     per_system_files: bool = flag(False, doc="also write one FITS file per system (for looking at)")
     noiseless: bool = flag(True, doc="write the noiseless lensed-source and lens-light planes in shards")
+    variance: bool = flag(True, doc="write each pixel's expected noise variance (a VARIANCE plane in shards, "
+                                    "B_VAR in per-system files)")
     mask_threshold: float = number(1.0, low=0, low_open=True, high=1e6,
                                    doc="mask pixels where the noiseless lensed source exceeds this many "
                                        "times the pixel's noise sigma")

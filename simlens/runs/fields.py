@@ -23,7 +23,7 @@ For one field:
    the PSF wings beyond that kernel would show above the noise are drawn one by one by GalSim
    (profile convolved with the band's PSF and the pixel, stamps sized to the noise).
 4. *Noise.*  ``galsim.CCDNoise`` over the whole field (sky, Poisson of all the light, read noise),
-   sky-subtracted, as in the cutouts.
+   sky-subtracted, as in the cutouts (or a coadd's correlated noise: ``imaging.observe.add_noise``).
 
 Files, per field ``fields/field_<k>.fits``:
 
@@ -61,7 +61,7 @@ from ..populations.background import BackgroundModel, BackgroundObjects
 from ..cosmology import DistanceTable
 from ..imaging.scene import lens_galaxy
 from ..imaging.many_objects import draw_beyond, draw_together, drawn_together, light_reach
-from ..imaging.observe import effective_psf_image, psf_profile
+from ..imaging.observe import add_noise, effective_psf_image, psf_profile
 from ..output.atomic import atomic_path
 from ..output.checksums import sha256_of
 from ..output.cutout_fits import band_keywords, cutout_wcs
@@ -260,17 +260,16 @@ def _render_field(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
         timings["background"] += time.perf_counter() - t3
         t4 = time.perf_counter()
         np.clip(image.array, 0.0, None, out=image.array)  # FFT ringing of order 1e-16 of a peak
-        image.addNoise(galsim.CCDNoise(galsim.BaseDeviate(int(noise_seeds[b])), sky_level=band.sky_level,
-                                       gain=band.gain, read_noise=band.read_noise))
+        observed, factor = add_noise(image.array, band, noise_seeds[b])
         timings["noise"] += time.perf_counter() - t4
         header = wcs.to_header()
-        for data, name, content in ((image.array, band.name, "observed field"),
+        for data, name, content in ((observed, band.name, "observed field"),
                                     (sources, f"{band.name}_SOURCE", "noiseless lensed sources")):
             hdu = fits.ImageHDU(data=data.astype(np.float32), header=header.copy(), name=name)
-            band_keywords(hdu.header, band, content)
+            band_keywords(hdu.header, band, content, noise_variance_factor=factor)
             hdus.append(hdu)
         psf = fits.ImageHDU(data=effective_psf_image(band).astype(np.float32), name=f"{band.name}_PSF")
-        band_keywords(psf.header, band, "psf")
+        band_keywords(psf.header, band, "psf", noise_variance_factor=factor)
         hdus.append(psf)
 
     t5 = time.perf_counter()

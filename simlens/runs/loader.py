@@ -6,7 +6,7 @@
 ...     pass
 
 Shards are read with FITS memory mapping, one at a time, so memory stays at about one shard whatever
-the size of the run.  ``plane`` picks IMAGES (observed), SOURCE, LENS, MASK or PSF.
+the size of the run.  ``plane`` picks IMAGES (observed), SOURCE, LENS, VARIANCE, MASK or PSF.
 """
 
 from __future__ import annotations

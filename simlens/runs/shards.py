@@ -91,6 +91,8 @@ def _render_shard(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
     if output.noiseless:
         cubes["SOURCE"] = np.zeros(shape, np.float32)
         cubes["LENS"] = np.zeros(shape, np.float32)
+    if output.variance:
+        cubes["VARIANCE"] = np.zeros(shape, np.float32)
     psf_cube = None
     rows, subhalos, images, los, files = [], [], [], [], {}
     attrition: dict = {}
@@ -107,13 +109,15 @@ def _render_shard(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
             if output.noiseless:
                 cubes["SOURCE"][k, b] = observed.lensed_source
                 cubes["LENS"][k, b] = observed.lens_light
+            if output.variance:
+                cubes["VARIANCE"][k, b] = observed.variance
             if psf_cube is None:
                 psf_cube = np.zeros((spec.n_systems, nb) + observed.psf.shape, np.float32)
             psf_cube[k, b] = observed.psf
         relative = shard_file  # the file holding this system's images: its own cutout, or the shard
         if output.per_system_files:
             relative = cutout_path(recipe, system_id)
-            write_cutout(rendered, run_folder / relative, run_name=recipe.name)
+            write_cutout(rendered, run_folder / relative, run_name=recipe.name, variance=output.variance)
             files[relative] = None
         rows.append(truth_row(rendered, relative, shard=shard_file, shard_index=k,
                               flags=rendered.system.selection_flags, cut_names=recipe.selection.cut_names))
@@ -128,7 +132,7 @@ def _render_shard(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
               "NSYSTEM": (spec.n_systems, "systems in this shard"),
               "BANDS": (",".join(survey.band_names), "bands along the second axis"),
               "PIXSCALE": (survey.pixel_scale, "[arcsec/pixel] pixel scale"),
-              "BUNIT": ("adu", "units of IMAGES, SOURCE, LENS"),
+              "BUNIT": ("adu", "units of IMAGES, SOURCE, LENS (VARIANCE: adu2)"),
               "MASKTHR": (output.mask_threshold, "MASK: source > MASKTHR x pixel noise sigma")}
     write_shard(run_folder / shard_file, cubes, truth_table(rows), header, extra_tables={"SUBHALOS": subhalo_table(subhalos), "IMAGE_TRUTH": image_table(images),
                                            "LINE_OF_SIGHT": line_of_sight_table(los)})

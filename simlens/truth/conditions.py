@@ -37,6 +37,8 @@ class BandConditions:
     # an optical PSF convolved in: (wavelength nm, diameter m, obscuration, Zernike coefficients in
     # waves for Noll 4-8 and 11), or () for none
     psf_optics: tuple = ()
+    exposures: int = 1  # exposures summed into the image
+    resampling: str = "none"  # their resampling kernel onto the image's grid (simlens.imaging.coadd)
 
     @property
     def magzero(self) -> float:

@@ -338,7 +338,8 @@ class PopulationSampler:
         bands = self.conditions or tuple(
             BandConditions(name=b.name, pixel_scale=recipe.survey.pixel_scale, psf_profile=b.psf.profile,
                            **{name: v[key] for name, key in keys}, **({"psf_fwhm": fwhm[b.name]} if fwhm else {}),
-                           **psf_shear(b, v), psf_optics=self._optics[b.name])
+                           **psf_shear(b, v), psf_optics=self._optics[b.name],
+                           exposures=b.exposures, resampling=b.resampling)
             for b, keys in self._band_keys)
 
         # -- a second source plane ------------------------------------------------------------
