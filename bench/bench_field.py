@@ -25,10 +25,10 @@ from pathlib import Path
 import galsim
 import numpy as np
 
-from simlens.imaging.many_objects import draw_together, drawn_together
+from simlens.imaging.many_objects import draw_alone, draw_together, drawn_together
 from simlens.populations.background import BackgroundModel
 from simlens.recipe import load_recipe
-from simlens.runs.fields import _draw_objects, render_field
+from simlens.runs.fields import render_field
 from simlens.runs.shards import ShardSpec
 from simlens.truth.sampler import PopulationSampler
 from simlens.truth.streams import field_streams
@@ -44,13 +44,13 @@ def background_both_ways(recipe, sampler, index: int) -> None:
     ours = draw_together(objects.subset(together), bands, size, scale)
     for image, band in zip(ours, bands):
         canvas = galsim.Image(image, scale=scale)
-        _draw_objects(canvas, alone, band)
+        draw_alone(canvas, alone, band)
     t_ours = time.perf_counter() - t0
     t0 = time.perf_counter()
     theirs = []
     for band in bands:
         canvas = galsim.Image(size, size, scale=scale)
-        _draw_objects(canvas, objects, band)
+        draw_alone(canvas, objects, band)
         theirs.append(canvas.array)
     t_theirs = time.perf_counter() - t0
     print(f"field {index}: {len(objects)} objects ({int(together.sum())} drawn together, {int((~together).sum())} alone)")

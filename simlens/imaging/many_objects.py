@@ -37,7 +37,23 @@ from .observe import (CONVOLUTION_SAMPLING, PSF_RADIUS_IN_FWHM, _block_sum, _con
                       psf_profile)
 from .rays import cloud_in_cell, refine_centre
 
-__all__ = ["draw_together", "draw_beyond", "drawn_together", "light_reach", "stamp_radius", "EDGE_NOISE_FRACTION"]
+__all__ = ["draw_objects", "draw_together", "draw_alone", "draw_beyond", "drawn_together", "light_reach",
+           "stamp_radius", "EDGE_NOISE_FRACTION"]
+
+# GalSim sizes a stamp so that about folding_threshold of the flux falls outside it (default 5e-3).
+# A bright star would then end in a visible square edge, so the threshold is lowered until the lost
+# flux is at most about one pixel's noise sigma (powers of ten, so GalSim's profile caches hold).
+# GalSim refuses FFTs above 8192 by default; big bright galaxies may need more.
+FOLDING_THRESHOLDS = tuple(galsim.GSParams(maximum_fft_size=16384, folding_threshold=t)
+                           for t in (5e-3, 1e-3, 1e-4, 1e-5, 1e-6))
+
+
+def gsparams_for(flux: float, noise_sigma: float) -> galsim.GSParams:
+    """The largest folding threshold that loses no more than ``noise_sigma`` of ``flux``."""
+    for gsparams in FOLDING_THRESHOLDS:
+        if gsparams.folding_threshold * flux <= noise_sigma:
+            return gsparams
+    return FOLDING_THRESHOLDS[-1]
 
 # A galaxy's stamp reaches the radius enclosing MAX_ENCLOSED_FLUX of its light, or less where the
 # light beyond is fainter than WING_SURFACE_BRIGHTNESS of one pixel's noise sigma per pixel, but never
@@ -72,6 +88,45 @@ def drawn_together(objects: BackgroundObjects, bands: tuple[BandConditions, ...]
         flux = band.counts_from_magnitude(np.asarray(objects.magnitudes[band.name], float))
         together &= per_pixel * flux <= EDGE_NOISE_FRACTION * band.background_sigma
     return together
+
+
+def draw_alone(image: galsim.Image, objects: BackgroundObjects, band: BandConditions) -> None:
+    """Add ``objects`` to ``image`` one by one with GalSim (each profile convolved with the band's PSF
+    and the pixel; ADU; 0-based object positions): the route of the objects too bright to be drawn
+    together."""
+    psfs = {id(g): psf_profile(band).withGSParams(g) for g in FOLDING_THRESHOLDS}
+    sigma = band.background_sigma
+    for k in range(len(objects)):
+        flux = band.counts_from_magnitude(float(objects.magnitudes[band.name][k]))
+        gsparams = gsparams_for(flux, sigma)
+        psf = psfs[id(gsparams)]
+        if objects.kind[k] == "star":
+            profile = psf.withFlux(flux)
+        else:
+            galaxy = galsim.Sersic(n=float(objects.sersic_index[k]), half_light_radius=float(objects.half_light_radius[k]),
+                                   flux=flux, gsparams=gsparams)
+            galaxy = galaxy.shear(q=float(objects.q[k]), beta=float(objects.angle[k]) * galsim.degrees)
+            profile = galsim.Convolve(galaxy, psf, gsparams=gsparams)
+        # GalSim pixels are 1-based: the 0-based pixel centre x sits at x + 1
+        stamp = profile.drawImage(scale=band.pixel_scale, center=galsim.PositionD(objects.x[k] + 1.0, objects.y[k] + 1.0))
+        overlap = stamp.bounds & image.bounds
+        if overlap.isDefined():
+            image[overlap] += stamp[overlap]
+
+
+def draw_objects(objects: BackgroundObjects, bands: tuple[BandConditions, ...], size: int,
+                 pixel_scale: float) -> list[np.ndarray]:
+    """The noiseless images (ADU, ``size x size``, one per band) of ``objects``: the faint together
+    (:func:`draw_together`), the bright one by one (:func:`draw_alone`)."""
+    together = drawn_together(objects, bands)
+    images = draw_together(objects.subset(together), bands, size, pixel_scale)
+    alone = objects.subset(~together)
+    if len(alone):
+        for b, band in enumerate(bands):
+            canvas = galsim.Image(images[b], scale=pixel_scale)
+            draw_alone(canvas, alone, band)
+            images[b] = canvas.array
+    return images
 
 
 def enclosed_radius(half_light_radius: float, sersic_index: float, fraction: float) -> float:

@@ -34,15 +34,14 @@ import galsim
 import numpy as np
 from scipy import fft as scipy_fft
 
-from ..cosmology import ARCSEC_PER_RADIAN
 from .coadd import coadd_kernel, coadd_noise
 from .rays import Scene
 from ..truth.conditions import BandConditions
+from ..truth.psf import PSF_RADIUS_IN_FWHM, major_axis_fwhm, padding_for
 
 __all__ = ["psf_profile", "psf_kernel", "major_axis_fwhm", "effective_psf_image", "ObservedBand", "observe_scene",
            "add_noise", "unresampled_variance", "padding_for", "PSF_RADIUS_IN_FWHM"]
 
-PSF_RADIUS_IN_FWHM = 5.0
 CONVOLUTION_SAMPLING = 2  # samples per pixel side on which the PSF convolution runs
 PSF_IMAGE_SIZE = 25  # pixels per side of the PSF image written with each cutout (odd: centred)
 
@@ -69,26 +68,6 @@ def _optical_psf(optics: tuple) -> galsim.GSObject:
     aberrations = [0.0, 0.0, 0.0, 0.0, defocus, astig1, astig2, coma1, coma2, 0.0, 0.0, spherical]  # by Noll index
     return galsim.OpticalPSF(lam=wavelength, diam=diameter, obscuration=obscuration, aberrations=aberrations,
                              scale_unit=galsim.arcsec)
-
-
-AIRY_FWHM = 1.029  # FWHM of an unobscured circular aperture's diffraction pattern, in lambda / D
-
-
-def major_axis_fwhm(band: BandConditions) -> float:
-    """The PSF's FWHM along its major axis (arcsec), what the PSF stamp and the padding reach from:
-    ``psf_fwhm sqrt((1 + |g|) / (1 - |g|))`` for a PSF sheared by ``g`` (area-preserving), added in
-    quadrature to the diffraction FWHM ``AIRY_FWHM lambda / D`` of any optics."""
-    g = math.hypot(band.psf_g1, band.psf_g2)
-    atmosphere = band.psf_fwhm * math.sqrt((1.0 + g) / (1.0 - g))
-    if not band.psf_optics:
-        return atmosphere
-    wavelength, diameter = band.psf_optics[0], band.psf_optics[1]
-    return math.hypot(atmosphere, AIRY_FWHM * wavelength * 1e-9 / diameter * ARCSEC_PER_RADIAN)
-
-
-def padding_for(fwhm_max: float, pixel_scale: float) -> int:
-    """Pixels of padding so that light within the PSF stamp's reach of the cutout is rendered."""
-    return int(math.ceil(PSF_RADIUS_IN_FWHM * fwhm_max / pixel_scale))
 
 
 def convolution_sampling(supersampling: int) -> int:
@@ -249,12 +228,19 @@ class ObservedBand:
     lens_light: np.ndarray  # noiseless, PSF-convolved lens light only
     psf: np.ndarray  # effective PSF (PSF * pixel) at the pixel scale, unit sum
     noise_variance_factor: float = 1.0  # the noise's pixel variance over the unresampled one
+    neighbours: np.ndarray | None = None  # noiseless unlensed neighbours (crowded cutouts), or None
+
+    @property
+    def signal(self) -> np.ndarray:
+        """The noiseless image: lens light, lensed source and any neighbours."""
+        signal = self.lensed_source + self.lens_light
+        return signal if self.neighbours is None else signal + self.neighbours
 
     @property
     def variance(self) -> np.ndarray:
         """Expected per-pixel noise variance (ADU^2): Poisson of sky + signal and read noise, times
         the coadd's resampling factor."""
-        return unresampled_variance(self.band, self.lensed_source + self.lens_light) * self.noise_variance_factor
+        return unresampled_variance(self.band, self.signal) * self.noise_variance_factor
 
     @property
     def sky_variance(self) -> float:
@@ -273,12 +259,13 @@ class ObservedBand:
         in white Gaussian noise; common practice in lens-finding forecasts).  Resampling a coadd
         lowers each pixel's variance but correlates it, and leaves the S/N of light spread over
         many pixels as it was, so the unresampled variance is the one used."""
-        return float(np.sqrt(np.sum(self.lensed_source**2 / unresampled_variance(
-            self.band, self.lensed_source + self.lens_light))))
+        return float(np.sqrt(np.sum(self.lensed_source**2 / unresampled_variance(self.band, self.signal))))
 
 
-def observe_scene(scene: Scene, band: BandConditions, noise_seed: int) -> ObservedBand:
-    """Apply PSF, pixel response and noise to one band's scene."""
+def observe_scene(scene: Scene, band: BandConditions, noise_seed: int,
+                  neighbours: np.ndarray | None = None) -> ObservedBand:
+    """Apply PSF, pixel response and noise to one band's scene; ``neighbours``, the noiseless
+    image (ADU, PSF applied) of unlensed objects around the lens, is added before the noise."""
     grid = scene.grid
     sampling = convolution_sampling(grid.supersampling)
     if scene.sampling % sampling:
@@ -303,6 +290,7 @@ def observe_scene(scene: Scene, band: BandConditions, noise_seed: int) -> Observ
     # FFT round-off can leave values of order -1e-7 of the peak; clip before Poisson noise.
     lens = np.clip(lens, 0.0, None)
     source = np.clip(source, 0.0, None)
-    image, factor = add_noise(lens + source, band, noise_seed)
+    signal = lens + source if neighbours is None else lens + source + neighbours
+    image, factor = add_noise(signal, band, noise_seed)
     return ObservedBand(band=band, image=image, lensed_source=source, lens_light=lens,
-                        psf=effective_psf_image(band), noise_variance_factor=factor)
+                        psf=effective_psf_image(band), noise_variance_factor=factor, neighbours=neighbours)

@@ -16,6 +16,7 @@ import numpy as np
 
 from ..lensing.lens_equation import ImageSet, find_images, time_delays
 from .light import PointSource
+from .many_objects import draw_objects
 from .observe import ObservedBand, convolution_sampling, major_axis_fwhm, observe_scene, padding_for
 from ..truth.record import System
 from .scene import build_scene
@@ -124,6 +125,7 @@ class SystemRendering:
         self.timings["adaptive_refinement"] = time.perf_counter() - t2
         self.observed: dict[str, ObservedBand] = {}
         self.magnification = self.second_magnification = math.nan
+        self._neighbours = None
 
     @property
     def images(self) -> ImageSet:
@@ -162,11 +164,23 @@ class SystemRendering:
             if name == self.reference_band and light2.flux > 0:
                 self.second_magnification = float(lensed2.sum()) / light2.flux
             scene = dataclasses.replace(scene, lensed_source=scene.lensed_source + lensed2)
+        neighbours = self.neighbour_images()
         tb = time.perf_counter()
-        observed = observe_scene(scene, conditions, seed)
+        observed = observe_scene(scene, conditions, seed, neighbours=neighbours.get(name))
         self.timings["scene"] += tb - ta
         self.timings["galsim_stage"] += time.perf_counter() - tb
         return observed
+
+    def neighbour_images(self) -> dict:
+        """``band -> noiseless image`` of the system's neighbours (crowded cutouts), drawn for all
+        bands together on first use; empty without neighbours."""
+        if self._neighbours is None:
+            objects = self.system.neighbours
+            self._neighbours = {}
+            if objects is not None and len(objects):
+                images = draw_objects(objects, self.system.bands, self.grid.size, self.grid.pixel_scale)
+                self._neighbours = {b.name: image for b, image in zip(self.system.bands, images)}
+        return self._neighbours
 
     def render(self, band_names=None, images: bool = True) -> RenderedSystem:
         """The system with the bands ``band_names`` (default: all) observed, besides any observed

@@ -9,6 +9,7 @@ PRIMARY         no data; the system's identity and redshifts in the header
 ``B``           observed image: scene + PSF + pixel + noise, sky-subtracted
 ``B_SOURCE``    noiseless lensed source only (PSF-convolved)
 ``B_LENS``      noiseless lens light only (PSF-convolved)
+``B_NEIGHBOURS`` noiseless unlensed neighbours (crowded cutouts: ``[neighbours]``)
 ``B_VAR``       expected noise variance per pixel, ADU^2 (if ``output.variance``)
 ``B_PSF``       effective PSF (PSF convolved with the pixel), unit sum
 ==============  =============================================================
@@ -109,6 +110,8 @@ def write_cutout(rendered: RenderedSystem, path: Path, run_name: str = "", varia
         hdus.append(_image_hdu(observed.image, name, "observed", rendered, observed))
         hdus.append(_image_hdu(observed.lensed_source, f"{name}_SOURCE", "noiseless lensed source", rendered, observed))
         hdus.append(_image_hdu(observed.lens_light, f"{name}_LENS", "noiseless lens light", rendered, observed))
+        if observed.neighbours is not None:
+            hdus.append(_image_hdu(observed.neighbours, f"{name}_NEIGHBOURS", "noiseless neighbours", rendered, observed))
         if variance:
             hdus.append(_image_hdu(observed.variance, f"{name}_VAR", "noise variance", rendered, observed))
         hdus.append(_image_hdu(observed.psf, f"{name}_PSF", "psf", rendered, observed))

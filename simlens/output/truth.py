@@ -16,10 +16,12 @@ import numpy as np
 from astropy.table import Table
 
 from ..imaging.render import RenderedSystem
-from .columns import ColumnSpec as C, described_table, reference_table, rows_from
+from .columns import ColumnSpec, ColumnSpec as C, described_table, reference_table, rows_from
+from .cutout_fits import cutout_wcs
 
 __all__ = ["truth_row", "truth_table", "subhalo_rows", "subhalo_table", "image_rows", "image_table",
-           "line_of_sight_rows", "line_of_sight_table", "TRUTH_COLUMNS", "FIELD_COLUMNS", "OBJECT_COLUMNS", "column_reference"]
+           "line_of_sight_rows", "line_of_sight_table", "TRUTH_COLUMNS", "FIELD_COLUMNS", "OBJECT_COLUMNS", "NEIGHBOUR_COLUMNS", "objects_table", "neighbour_rows",
+           "column_reference"]
 
 NAN = math.nan
 
@@ -168,6 +170,8 @@ TRUTH_COLUMNS = (
       lambda e, b: _band(e, b).sky_level),
     C("sky_variance_{band}", "", "expected noise variance of an empty {band} pixel (ADU^2; below the CCD "
       "equation's where resampled exposures correlate the noise)", lambda e, b: e.rendered.band(b).sky_variance),
+    C("n_neighbours", "", "unlensed galaxies and stars drawn in the cutout and its margin ([neighbours]; "
+      "the neighbours table)", lambda e: len(e.system.neighbours) if e.system.neighbours is not None else 0),
 )
 
 # Field runs add where each lens sits in its field (simlens.runs.fields).
@@ -269,22 +273,46 @@ def _key(name: str):
     return lambda row, band=None: row[name.format(band=band)]
 
 
-OBJECT_COLUMNS = tuple(C(name, unit, description, _key(name)) for name, unit, description in (
-    ("field_id", "", "field image holding the object"),
-    ("object_id", "", "index of the object within its field"),
-    ("kind", "", "galaxy or star"),
-    ("x_pixel", "pix", "centre, column in the field image (0-based)"),
-    ("y_pixel", "pix", "centre, row in the field image (0-based)"),
-    ("ra", "deg", "centre right ascension"),
-    ("dec", "deg", "centre declination"),
-    ("mag_{band}", "mag", "magnitude in {band}, AB"),
-    ("redshift", "", "galaxy redshift (nan for stars)"),
-    ("half_light_radius", "arcsec", "galaxy half-light radius, circularised (nan for stars)"),
-    ("sersic_index", "", "galaxy Sersic index (nan for stars)"),
-    ("q", "", "galaxy axis ratio (nan for stars)"),
-    ("angle", "deg", "galaxy major-axis angle, CCW from +x (nan for stars)"),
-    ("temperature", "K", "star's effective temperature (nan for galaxies)"),
-))
+def _object_columns(owner: str, owner_description: str, within: str, image: str) -> tuple:
+    return tuple(C(name, unit, description, _key(name)) for name, unit, description in (
+        (owner, "", owner_description),
+        ("object_id", "", f"index of the object within its {within}"),
+        ("kind", "", "galaxy or star"),
+        ("x_pixel", "pix", f"centre, column in the {image} (0-based)"),
+        ("y_pixel", "pix", f"centre, row in the {image} (0-based)"),
+        ("ra", "deg", "centre right ascension"),
+        ("dec", "deg", "centre declination"),
+        ("mag_{band}", "mag", "magnitude in {band}, AB"),
+        ("redshift", "", "galaxy redshift (nan for stars)"),
+        ("half_light_radius", "arcsec", "galaxy half-light radius, circularised (nan for stars)"),
+        ("sersic_index", "", "galaxy Sersic index (nan for stars)"),
+        ("q", "", "galaxy axis ratio (nan for stars)"),
+        ("angle", "deg", "galaxy major-axis angle, CCW from +x (nan for stars)"),
+        ("temperature", "K", "star's effective temperature (nan for galaxies)"),
+    ))
+
+
+OBJECT_COLUMNS = _object_columns("field_id", "field image holding the object", "field", "field image")
+NEIGHBOUR_COLUMNS = _object_columns("system_id", "the system whose cutout holds the object", "cutout",
+                                    "cutout; outside 0 .. size - 1: in the margin whose light the PSF spreads in")
+
+
+def objects_table(rows: list[dict], bands: Sequence[str], specs: Sequence[ColumnSpec] = OBJECT_COLUMNS) -> Table:
+    """The unlensed galaxies and stars of fields (:data:`OBJECT_COLUMNS`) or of cutouts
+    (:data:`NEIGHBOUR_COLUMNS`), from :meth:`BackgroundObjects.rows`."""
+    names = ([specs[0].name, "object_id", "kind", "x_pixel", "y_pixel", "ra", "dec"] + [f"mag_{b}" for b in bands]
+             + ["redshift", "half_light_radius", "sersic_index", "q", "angle", "temperature"])
+    return described_table(rows, specs, bands=bands, names=names,
+                           dtype=[np.int64, np.int64, "U6"] + [float] * (len(names) - 3))
+
+
+def neighbour_rows(rendered: RenderedSystem) -> list[dict]:
+    """The neighbours of a crowded cutout, one row each (:data:`NEIGHBOUR_COLUMNS`)."""
+    system = rendered.system
+    if system.neighbours is None:
+        return []
+    wcs = cutout_wcs(system.ra, system.dec, rendered.grid.pixel_scale, rendered.grid.size)
+    return system.neighbours.rows(system.system_id, wcs, owner="system_id")
 
 
 def column_reference() -> str:
@@ -299,7 +327,8 @@ def column_reference() -> str:
                          ("Subhalos (`subhalos.*`, `SUBHALOS`)", SUBHALO_COLUMNS),
                          ("Line-of-sight galaxies (`line_of_sight.*`, `LINE_OF_SIGHT`)", LINE_OF_SIGHT_COLUMNS),
                          ("Field objects: unlensed galaxies and stars (`field_objects.*`, `OBJECTS`)",
-                          OBJECT_COLUMNS)):
+                          OBJECT_COLUMNS),
+                         ("Neighbours in crowded cutouts (`neighbours.*`, shard `NEIGHBOUR_TRUTH`)", NEIGHBOUR_COLUMNS)):
         parts.append(f"## {title}\n\n" + reference_table(specs))
     return "\n".join(parts)
 

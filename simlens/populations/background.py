@@ -20,14 +20,16 @@ Stars (``[field.stars]``): counts of the same power-law form in the reference ba
 0.4 arcmin^-2 brighter than 21 and slope 0.12, are an illustrative high-Galactic-latitude value from
 memory: set them for your field), black-body colours for temperatures uniform in a range.
 
-All positions are uniform over the field.  :func:`draw_background` returns plain arrays (one row an
-object); :mod:`simlens.field` draws them with GalSim.
+All positions are uniform over the field (or a cutout and its margin: ``[neighbours]``), apart
+from the clearances around the lenses.  :class:`BackgroundModel` returns plain arrays (one row an
+object); :mod:`simlens.imaging.many_objects` draws them.
 """
 
 from __future__ import annotations
 
-import math
+import copy
 import dataclasses
+import math
 from dataclasses import dataclass
 from functools import lru_cache
 from pathlib import Path
@@ -60,10 +62,10 @@ class EarlyTypeSizes:
         return -0.4 * self.a * np.asarray(absolute_magnitude, dtype=float) + self.b
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class BackgroundObjects:
-    """Galaxies and stars of one field, one array entry per object (positions in 0-based pixels of
-    the field, angles in degrees CCW from +x; stars have nan shapes and redshifts)."""
+    """Galaxies and stars of one field or cutout, one array entry per object (positions in 0-based
+    pixels of the image, angles in degrees CCW from +x; stars have nan shapes and redshifts)."""
 
     kind: np.ndarray  # "galaxy" or "star"
     x: np.ndarray
@@ -79,17 +81,27 @@ class BackgroundObjects:
     def __len__(self) -> int:
         return int(self.x.size)
 
+    def __eq__(self, other) -> bool:
+        if not isinstance(other, BackgroundObjects) or self.magnitudes.keys() != other.magnitudes.keys():
+            return NotImplemented if not isinstance(other, BackgroundObjects) else False
+        pairs = [(getattr(self, f.name), getattr(other, f.name)) for f in dataclasses.fields(self) if f.name != "magnitudes"]
+        pairs += [(m, other.magnitudes[b]) for b, m in self.magnitudes.items()]
+        return all(np.array_equal(a, b, equal_nan=a.dtype.kind == "f") for a, b in pairs)
+
+    __hash__ = None
+
     def subset(self, keep: np.ndarray) -> "BackgroundObjects":
         """The objects where the boolean array ``keep`` is true."""
         arrays = {f.name: getattr(self, f.name)[keep] for f in dataclasses.fields(self) if f.name != "magnitudes"}
         return BackgroundObjects(magnitudes={b: np.asarray(m)[keep] for b, m in self.magnitudes.items()}, **arrays)
 
-    def rows(self, field_id: int, wcs) -> list[dict]:
-        """One row per object for the field's objects table (sky positions through ``wcs``)."""
+    def rows(self, owner_id: int, wcs, owner: str = "field_id") -> list[dict]:
+        """One row per object for the objects table of a field (or, ``owner = "system_id"``, a
+        cutout's neighbours table); sky positions through ``wcs``."""
         ra, dec = wcs.wcs_pix2world(self.x, self.y, 0) if len(self) else (np.empty(0), np.empty(0))
         rows = []
         for k in range(len(self)):
-            row = {"field_id": int(field_id), "object_id": k, "kind": str(self.kind[k]),
+            row = {owner: int(owner_id), "object_id": k, "kind": str(self.kind[k]),
                    "x_pixel": float(self.x[k]), "y_pixel": float(self.y[k]),
                    "ra": float(ra[k]), "dec": float(dec[k])}
             row.update({f"mag_{b}": float(m[k]) for b, m in self.magnitudes.items()})
@@ -111,14 +123,18 @@ def black_body_offsets(filter_name: str, base_folder: str) -> np.ndarray:
 
 
 class BackgroundModel:
-    """Draws the :class:`BackgroundObjects` of a field from the recipe's ``[field]`` settings."""
+    """Draws the :class:`BackgroundObjects` of a field from the recipe's ``[field]`` settings, or of a
+    cutout from ``[neighbours]``: any ``settings`` with ``galaxies`` and ``stars`` tables, over an
+    image of ``size`` pixels (default: the field's) widened by ``margin`` pixels on each side."""
 
-    def __init__(self, recipe: Recipe, distances: DistanceTable):
-        settings = recipe.field
+    def __init__(self, recipe: Recipe, distances: DistanceTable, settings=None, size: int | None = None,
+                 margin: int = 0):
+        settings = settings if settings is not None else recipe.field
         self.galaxies, self.stars = settings.galaxies, settings.stars
         self.distances = distances
         self.pixel_scale = recipe.survey.pixel_scale
-        self.size = settings.size
+        self.size = settings.size if size is None else int(size)
+        self.margin = int(margin)
         self.bands = recipe.survey.band_names
         self.reference = recipe.reference_band
         counts = recipe.source.counts
@@ -140,9 +156,16 @@ class BackgroundModel:
             offsets = {b: black_body_offsets(f, base) for b, f in filters.items()}
             self._star_colours = {b: offsets[b] - offsets[self.reference] for b in self.bands}
 
+    def with_margin(self, margin: int) -> "BackgroundModel":
+        """The same model drawing over the image widened by ``margin`` pixels on each side."""
+        model = copy.copy(self)
+        model.margin = int(margin)
+        return model
+
     @property
     def area_arcmin2(self) -> float:
-        return (self.size * self.pixel_scale / 60.0) ** 2
+        """The area objects are drawn over: the image and its margin."""
+        return ((self.size + 2 * self.margin) * self.pixel_scale / 60.0) ** 2
 
     def expected_galaxies(self) -> float:
         return self.galaxy_counts.between(*self.galaxies.magnitude_range) * self.area_arcmin2 if self.galaxies.density > 0 else 0.0
@@ -150,20 +173,30 @@ class BackgroundModel:
     def expected_stars(self) -> float:
         return self.star_counts.between(*self.stars.magnitude_range) * self.area_arcmin2 if self.stars.density > 0 else 0.0
 
-    def draw(self, rng, lenses: list[tuple[float, float, float]] = ()) -> BackgroundObjects:
+    def draw(self, rng, lenses: list[tuple[float, float, float]] = (), clearance: float = 0.0) -> BackgroundObjects:
         """Poisson numbers of galaxies and stars, then their properties; ``lenses`` holds
-        ``(x_pixel, y_pixel, einstein_radius_arcsec)`` of the field's lenses."""
-        galaxies = self._draw_galaxies(rng, lenses)
-        stars = self._draw_stars(rng)
+        ``(x_pixel, y_pixel, einstein_radius_arcsec)`` of the image's lenses.  No galaxy centre
+        lies within ``galaxies.lens_clearance`` Einstein radii of a lens, and no object within
+        ``clearance`` arcsec."""
+        galaxies = self._draw_galaxies(rng, lenses, clearance)
+        stars = self._draw_stars(rng, lenses, clearance)
         return BackgroundObjects(**{name: (np.concatenate([galaxies[name], stars[name]]) if name != "magnitudes" else
                                            {b: np.concatenate([galaxies[name][b], stars[name][b]]) for b in self.bands})
                                     for name in galaxies})
 
     def _positions(self, rng, n: int) -> tuple[np.ndarray, np.ndarray]:
-        # uniform over the field's area: pixel centres run from 0 to size - 1, edges at -0.5, size - 0.5
-        return rng.uniform(-0.5, self.size - 0.5, size=n), rng.uniform(-0.5, self.size - 0.5, size=n)
+        # uniform over the image and its margin: pixel centres run from 0 to size - 1, edges at -0.5, size - 0.5
+        lo, hi = -0.5 - self.margin, self.size - 0.5 + self.margin
+        return rng.uniform(lo, hi, size=n), rng.uniform(lo, hi, size=n)
 
-    def _draw_galaxies(self, rng, lenses) -> dict:
+    def _clear(self, x: np.ndarray, y: np.ndarray, lenses, reach_of) -> np.ndarray:
+        """Which of the objects at ``(x, y)`` lie beyond ``reach_of(einstein_radius)`` arcsec of every lens."""
+        keep = np.ones(x.size, dtype=bool)
+        for lx, ly, theta_e in lenses:
+            keep &= np.hypot(x - lx, y - ly) >= reach_of(theta_e) / self.pixel_scale
+        return keep
+
+    def _draw_galaxies(self, rng, lenses, clearance: float = 0.0) -> dict:
         g = self.galaxies
         n = int(rng.poisson(self.expected_galaxies()))
         x, y = self._positions(rng, n)
@@ -188,23 +221,21 @@ class BackgroundModel:
         r_arcsec = np.minimum(r_arcsec, g.max_half_light_radius)
         q = np.where(early, rng.uniform(0.5, 1.0, size=n), rng.uniform(0.2, 1.0, size=n))
         angle = rng.uniform(0.0, 180.0, size=n)
-        keep = np.ones(n, dtype=bool)
-        for lx, ly, theta_e in lenses:
-            reach = g.lens_clearance * theta_e / self.pixel_scale
-            keep &= np.hypot(x - lx, y - ly) >= reach
+        keep = self._clear(x, y, lenses, lambda theta_e: max(g.lens_clearance * theta_e, clearance))
         return dict(kind=np.full(n, "galaxy")[keep], x=x[keep], y=y[keep],
                     magnitudes={b: v[keep] for b, v in mags.items()}, redshift=z[keep],
                     half_light_radius=r_arcsec[keep],
                     sersic_index=np.where(early, EARLY_TYPE_SERSIC_INDEX, LATE_TYPE_SERSIC_INDEX)[keep],
                     q=q[keep], angle=angle[keep], temperature=np.full(n, math.nan)[keep])
 
-    def _draw_stars(self, rng) -> dict:
+    def _draw_stars(self, rng, lenses=(), clearance: float = 0.0) -> dict:
         s = self.stars
         n = int(rng.poisson(self.expected_stars()))
         x, y = self._positions(rng, n)
         m = self.star_counts.draw(*s.magnitude_range, rng.uniform(size=n)) if n else np.empty(0)
         t = rng.uniform(*s.temperature_range, size=n)
         mags = {b: m + (np.interp(t, STAR_TEMPERATURE_GRID, self._star_colours[b]) if n else 0.0) for b in self.bands}
-        nan = np.full(n, math.nan)
-        return dict(kind=np.full(n, "star"), x=x, y=y, magnitudes=mags, redshift=nan, half_light_radius=nan,
-                    sersic_index=nan, q=nan, angle=nan, temperature=t)
+        keep = self._clear(x, y, lenses, lambda theta_e: clearance)
+        nan = np.full(int(keep.sum()), math.nan)
+        return dict(kind=np.full(nan.size, "star"), x=x[keep], y=y[keep], magnitudes={b: v[keep] for b, v in mags.items()},
+                    redshift=nan, half_light_radius=nan, sersic_index=nan, q=nan, angle=nan, temperature=t[keep])

@@ -30,6 +30,8 @@ def check_recipe(recipe: Recipe) -> None:
     needs_filters = _check_filters(recipe)
     if recipe.field is not None:
         _check_field(recipe, needs_filters)
+    if recipe.neighbours is not None:
+        _check_neighbours(recipe)
     _check_negatives(recipe)
     _check_selection(recipe)
     _check_mass(recipe)
@@ -248,19 +250,32 @@ def _check_field(recipe: Recipe, needs_filters: list) -> None:
     if f.lens_stamp_size < recipe.survey.cutout_size:
         raise RecipeError(origin, "field.lens_stamp_size", f"{f.lens_stamp_size} is smaller than the cutout "
                           f"({recipe.survey.cutout_size})", "at least survey.cutout_size")
-    _require_band(origin, "field.galaxies.band", f.galaxies.band, recipe.survey.band_names)
-    for what, counts in (("galaxies", f.galaxies), ("stars", f.stars)):
-        # N(< m) = density 10^(slope (m - pivot)) at the faint end: what a field will hold
+    _check_background(recipe, "field", f)
+
+
+def _check_neighbours(recipe: Recipe) -> None:
+    if recipe.field is not None:
+        raise RecipeError(recipe.origin, "neighbours", "is given with [field], which draws its own background",
+                          "[field.galaxies] and [field.stars] for fields; [neighbours] only for cutout runs")
+    _check_background(recipe, "neighbours", recipe.neighbours)
+
+
+def _check_background(recipe: Recipe, section: str, settings) -> None:
+    """The ``galaxies`` and ``stars`` counts of ``[field]`` or ``[neighbours]``."""
+    origin = recipe.origin
+    _require_band(origin, f"{section}.galaxies.band", settings.galaxies.band, recipe.survey.band_names)
+    for what, counts in (("galaxies", settings.galaxies), ("stars", settings.stars)):
+        # N(< m) = density 10^(slope (m - pivot)) at the faint end: what an image will hold
         faint = counts.density * 10 ** (counts.slope * (counts.magnitude_range[1] - counts.pivot))
         if faint > MAX_OBJECTS_PER_ARCMIN2:
-            raise RecipeError(origin, f"field.{what}", f"the counts give {faint:.3g} {what} per arcmin^2 brighter "
+            raise RecipeError(origin, f"{section}.{what}", f"the counts give {faint:.3g} {what} per arcmin^2 brighter "
                               f"than {counts.magnitude_range[1]:g} mag (density, pivot, slope)",
                               f"at most {MAX_OBJECTS_PER_ARCMIN2:g} per arcmin^2; a fainter pivot, a lower density "
                               f"or slope, or a brighter magnitude_range end")
-    if f.galaxies.density > 0:
-        _require_filters(recipe, "the background galaxies' template colours (or field.galaxies.density = 0)")
-    if f.stars.density > 0:
-        _require_filters(recipe, "the stars' black-body colours (or field.stars.density = 0)")
+    if settings.galaxies.density > 0:
+        _require_filters(recipe, f"the background galaxies' template colours (or {section}.galaxies.density = 0)")
+    if settings.stars.density > 0:
+        _require_filters(recipe, f"the stars' black-body colours (or {section}.stars.density = 0)")
 
 
 def _check_either(origin: str, where: str, table_given: bool, table_name: str, keys: Mapping,

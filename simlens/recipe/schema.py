@@ -569,6 +569,16 @@ class FieldSettings:
 
 
 @dataclass(frozen=True, kw_only=True)
+class NeighbourSettings:
+    galaxies: FieldGalaxySettings = table(FieldGalaxySettings,
+                                          doc="unlensed galaxies in each cutout and its PSF margin (as [field.galaxies])")
+    stars: FieldStarSettings = table(FieldStarSettings, doc="stars in each cutout and its PSF margin")
+    clearance: float = number(1.0, low=0, high=60, unit="arcsec",
+                              doc="no neighbour's centre this close to the lens (galaxies also keep "
+                                  "galaxies.lens_clearance Einstein radii away)")
+
+
+@dataclass(frozen=True, kw_only=True)
 class OutputSettings:
     shard_size: int = number(100, low=1, high=100_000, integer=True,
                              doc="systems per shard file (the unit of parallel work and of resuming)")
@@ -595,6 +605,8 @@ class Recipe:
     output: OutputSettings = table(OutputSettings, doc="what a run writes")
     field: FieldSettings = table(FieldSettings, optional=True,
                                  doc="make whole survey fields with lenses at known places instead of cutouts")
+    neighbours: NeighbourSettings = table(NeighbourSettings, optional=True,
+                                          doc="crowded cutouts: unlensed galaxies and stars around each lens")
     name: str = text("simlens-run", doc="run name (default: the recipe file's stem)")
     count: int = number(100, low=1, high=10_000_000, integer=True, doc="number of systems")
     seed: int = number(0, low=0, high=2**63 - 1, integer=True, doc="random seed of the run")

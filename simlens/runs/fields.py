@@ -54,19 +54,18 @@ from pathlib import Path
 import galsim
 import numpy as np
 from astropy.io import fits
-from astropy.table import Table
 
 from ..errors import reported_as
-from ..populations.background import BackgroundModel, BackgroundObjects
+from ..populations.background import BackgroundModel
 from ..cosmology import DistanceTable
 from ..imaging.scene import lens_galaxy
-from ..imaging.many_objects import draw_beyond, draw_together, drawn_together, light_reach
-from ..imaging.observe import add_noise, effective_psf_image, psf_profile
+from ..imaging.many_objects import draw_alone, draw_beyond, draw_together, drawn_together, light_reach
+from ..imaging.observe import add_noise, effective_psf_image
 from ..output.atomic import atomic_path
 from ..output.checksums import sha256_of
 from ..output.cutout_fits import band_keywords, cutout_wcs
-from ..output.columns import described_table, table_hdu
-from ..output.truth import (OBJECT_COLUMNS, image_rows, image_table, line_of_sight_rows, line_of_sight_table, subhalo_rows,
+from ..output.columns import table_hdu
+from ..output.truth import (image_rows, objects_table, image_table, line_of_sight_rows, line_of_sight_table, subhalo_rows,
                            subhalo_table, truth_row, truth_table)
 from ..truth.sampler import PopulationSampler
 from ..recipe import Recipe
@@ -75,26 +74,10 @@ from ..truth.selection import merge_attrition
 from .rendering import STAGES, rendered_systems
 from .shards import ShardResult, ShardSpec, shard_path
 
-__all__ = ["render_field", "place_lenses", "region_path", "region_text", "objects_table", "describe_fields",
+__all__ = ["render_field", "place_lenses", "region_path", "region_text", "describe_fields",
            "expected_background", "FIELD_STREAMS"]
 
 REGION_MIN_RADIUS = 2.0  # arcsec
-# GalSim sizes a stamp so that about folding_threshold of the flux falls outside it (default 5e-3).
-# A bright star would then end in a visible square edge, so the threshold is lowered until the lost
-# flux is at most about one pixel's noise sigma (powers of ten, so GalSim's profile caches hold).
-# GalSim refuses FFTs above 8192 by default; big bright galaxies may need more.
-FOLDING_THRESHOLDS = tuple(galsim.GSParams(maximum_fft_size=16384, folding_threshold=t)
-                           for t in (5e-3, 1e-3, 1e-4, 1e-5, 1e-6))
-
-
-def gsparams_for(flux: float, noise_sigma: float) -> galsim.GSParams:
-    """The largest folding threshold that loses no more than ``noise_sigma`` of ``flux``."""
-    for gsparams in FOLDING_THRESHOLDS:
-        if gsparams.folding_threshold * flux <= noise_sigma:
-            return gsparams
-    return FOLDING_THRESHOLDS[-1]
-
-
 def region_path(recipe: Recipe, index: int) -> str:
     return shard_path(recipe, index)[:-len(".fits")] + ".reg"
 
@@ -111,28 +94,6 @@ def place_lenses(size: int, stamp: int, n: int, rng) -> list[tuple[int, int]]:
         origins.append((cx * cell + int(rng.integers(0, cell - stamp + 1)),
                         cy * cell + int(rng.integers(0, cell - stamp + 1))))
     return origins
-
-
-def _draw_objects(image: galsim.Image, objects: BackgroundObjects, band) -> None:
-    """Add the background objects to ``image`` (GalSim; ADU; 0-based object positions)."""
-    psfs = {id(g): psf_profile(band).withGSParams(g) for g in FOLDING_THRESHOLDS}
-    sigma = band.background_sigma
-    for k in range(len(objects)):
-        flux = band.counts_from_magnitude(float(objects.magnitudes[band.name][k]))
-        gsparams = gsparams_for(flux, sigma)
-        psf = psfs[id(gsparams)]
-        if objects.kind[k] == "star":
-            profile = psf.withFlux(flux)
-        else:
-            galaxy = galsim.Sersic(n=float(objects.sersic_index[k]), half_light_radius=float(objects.half_light_radius[k]),
-                                   flux=flux, gsparams=gsparams)
-            galaxy = galaxy.shear(q=float(objects.q[k]), beta=float(objects.angle[k]) * galsim.degrees)
-            profile = galsim.Convolve(galaxy, psf, gsparams=gsparams)
-        # GalSim pixels are 1-based: the 0-based pixel centre x sits at x + 1
-        stamp = profile.drawImage(scale=band.pixel_scale, center=galsim.PositionD(objects.x[k] + 1.0, objects.y[k] + 1.0))
-        overlap = stamp.bounds & image.bounds
-        if overlap.isDefined():
-            image[overlap] += stamp[overlap]
 
 
 def lens_light_beyond_stamps(galaxies: list, bands: tuple, size: int, stamp: int, scale: float) -> list[np.ndarray]:
@@ -174,14 +135,6 @@ def region_text(rows: list[dict], title: str) -> str:
         lines.append(f'circle({row["ra"]:.8f},{row["dec"]:+.8f},{radius:.2f}") '
                      f'# text={{{row["system_id"]} thetaE={row["einstein_radius"]:.2f}"}}')
     return "\n".join(lines) + "\n"
-
-
-def objects_table(rows: list[dict], bands: tuple) -> Table:
-    """The unlensed galaxies and stars of a field (:data:`OBJECT_COLUMNS`)."""
-    names = (["field_id", "object_id", "kind", "x_pixel", "y_pixel", "ra", "dec"] + [f"mag_{b}" for b in bands]
-             + ["redshift", "half_light_radius", "sersic_index", "q", "angle", "temperature"])
-    return described_table(rows, OBJECT_COLUMNS, bands=bands, names=names,
-                           dtype=[np.int64, np.int64, "U6"] + [float] * (len(names) - 3))
 
 
 def render_field(recipe: Recipe, run_folder: str | Path, spec: ShardSpec) -> ShardResult:
@@ -256,7 +209,7 @@ def _render_field(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
             sources[window] += observed.lensed_source
         scene += drawn[b] + beyond[b]
         image = galsim.Image(scene, scale=scale)
-        _draw_objects(image, alone, band)
+        draw_alone(image, alone, band)
         timings["background"] += time.perf_counter() - t3
         t4 = time.perf_counter()
         np.clip(image.array, 0.0, None, out=image.array)  # FFT ringing of order 1e-16 of a peak

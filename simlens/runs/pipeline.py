@@ -128,12 +128,15 @@ def _run_open_folder(recipe: Recipe, out: Path, folder: RunFolder, workers: int,
         catalogue("line_of_sight", "LINE_OF_SIGHT")
         if fields:
             catalogue("field_objects", "OBJECTS")
+        if recipe.neighbours is not None:
+            catalogue("neighbours", "NEIGHBOUR_TRUTH")
     except OSError as exc:
         raise _write_error(out, exc) from None
     seconds = time.perf_counter() - t_start
     sampler = PopulationSampler(recipe)
     attrition = sum_attrition(entry.get("selection", {}) for entry in folder.manifest["shards"].values())
-    catalogues = ["truth", "subhalos", "images", "line_of_sight"] + (["field_objects"] if fields else [])
+    catalogues = (["truth", "subhalos", "images", "line_of_sight"] + (["field_objects"] if fields else [])
+                  + (["neighbours"] if recipe.neighbours is not None else []))
     files = {name: [f"{name}.fits", f"{name}.ecsv"] for name in catalogues}
     if fields:
         files.update(fields="fields/field_*.fits", regions="fields/field_*.reg")

@@ -19,8 +19,8 @@ from ..errors import reported_as
 from ..output.checksums import sha256_of
 from ..output.cutout_fits import write_cutout
 from ..output.shard_fits import write_shard
-from ..output.truth import (image_rows, image_table, line_of_sight_rows, line_of_sight_table, subhalo_rows,
-                           subhalo_table, truth_row, truth_table)
+from ..output.truth import (NEIGHBOUR_COLUMNS, image_rows, image_table, line_of_sight_rows, line_of_sight_table,
+                           neighbour_rows, objects_table, subhalo_rows, subhalo_table, truth_row, truth_table)
 from ..truth.sampler import PopulationSampler
 from ..recipe import Recipe
 from ..truth.selection import merge_attrition
@@ -93,8 +93,11 @@ def _render_shard(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
         cubes["LENS"] = np.zeros(shape, np.float32)
     if output.variance:
         cubes["VARIANCE"] = np.zeros(shape, np.float32)
+    crowded = recipe.neighbours is not None
+    if crowded and output.noiseless:
+        cubes["NEIGHBOURS"] = np.zeros(shape, np.float32)
     psf_cube = None
-    rows, subhalos, images, los, files = [], [], [], [], {}
+    rows, subhalos, images, los, neighbours, files = [], [], [], [], [], {}
     attrition: dict = {}
     shard_file = shard_path(recipe, spec.index)
     timings = dict.fromkeys(STAGES + ("writing",), 0.0)
@@ -111,6 +114,8 @@ def _render_shard(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
                 cubes["LENS"][k, b] = observed.lens_light
             if output.variance:
                 cubes["VARIANCE"][k, b] = observed.variance
+            if "NEIGHBOURS" in cubes and observed.neighbours is not None:
+                cubes["NEIGHBOURS"][k, b] = observed.neighbours
             if psf_cube is None:
                 psf_cube = np.zeros((spec.n_systems, nb) + observed.psf.shape, np.float32)
             psf_cube[k, b] = observed.psf
@@ -124,6 +129,7 @@ def _render_shard(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
         subhalos += subhalo_rows(rendered)
         images += image_rows(rendered)
         los += line_of_sight_rows(rendered)
+        neighbours += neighbour_rows(rendered)
         timings["writing"] += time.perf_counter() - t1
     t2 = time.perf_counter()
     cubes["PSF"] = psf_cube
@@ -134,8 +140,11 @@ def _render_shard(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
               "PIXSCALE": (survey.pixel_scale, "[arcsec/pixel] pixel scale"),
               "BUNIT": ("adu", "units of IMAGES, SOURCE, LENS (VARIANCE: adu2)"),
               "MASKTHR": (output.mask_threshold, "MASK: source > MASKTHR x pixel noise sigma")}
-    write_shard(run_folder / shard_file, cubes, truth_table(rows), header, extra_tables={"SUBHALOS": subhalo_table(subhalos), "IMAGE_TRUTH": image_table(images),
-                                           "LINE_OF_SIGHT": line_of_sight_table(los)})
+    tables = {"SUBHALOS": subhalo_table(subhalos), "IMAGE_TRUTH": image_table(images),
+              "LINE_OF_SIGHT": line_of_sight_table(los)}
+    if crowded:
+        tables["NEIGHBOUR_TRUTH"] = objects_table(neighbours, survey.band_names, NEIGHBOUR_COLUMNS)
+    write_shard(run_folder / shard_file, cubes, truth_table(rows), header, extra_tables=tables)
     checksums = {shard_file: sha256_of(run_folder / shard_file)}
     for relative in files:
         checksums[relative] = sha256_of(run_folder / relative)

@@ -23,10 +23,18 @@ from pathlib import Path
 
 import numpy as np
 
+from ..cosmology import ARCSEC_PER_RADIAN
 from ..populations.photometry import load_filter
 from ..recipe import Recipe
+from .conditions import BandConditions
 
-__all__ = ["seeing_factors", "band_fwhm", "band_optics", "psf_shear", "psf_fwhm_range", "FWHM_LIMITS", "SCATTER_REACH"]
+__all__ = ["seeing_factors", "band_fwhm", "band_optics", "psf_shear", "psf_fwhm_range", "major_axis_fwhm",
+           "padding_for", "FWHM_LIMITS", "SCATTER_REACH", "PSF_RADIUS_IN_FWHM"]
+
+# The PSF stamp reaches this many major-axis FWHM (simlens.imaging.observe), and so does the
+# padding of the cutouts and the margin in which neighbours are drawn.
+PSF_RADIUS_IN_FWHM = 5.0
+
 
 FWHM_LIMITS = (0.01, 10.0)  # arcsec: the range of psf.fwhm in the recipe schema
 SCATTER_REACH = 4.0  # the scatter's reach (sigma) in the ranges given to resource estimates
@@ -89,3 +97,23 @@ def psf_shear(band, values: dict) -> dict:
     g = values[prefix + "ellipticity"]
     angle = math.radians(values[prefix + "ellipticity_angle"]) if band.psf.ellipticity_angle is not None else 0.0
     return {"psf_g1": g * math.cos(2.0 * angle), "psf_g2": g * math.sin(2.0 * angle)}
+
+
+AIRY_FWHM = 1.029  # FWHM of an unobscured circular aperture's diffraction pattern, in lambda / D
+
+
+def major_axis_fwhm(band: BandConditions) -> float:
+    """The PSF's FWHM along its major axis (arcsec), what the PSF stamp and the padding reach from:
+    ``psf_fwhm sqrt((1 + |g|) / (1 - |g|))`` for a PSF sheared by ``g`` (area-preserving), added in
+    quadrature to the diffraction FWHM ``AIRY_FWHM lambda / D`` of any optics."""
+    g = math.hypot(band.psf_g1, band.psf_g2)
+    atmosphere = band.psf_fwhm * math.sqrt((1.0 + g) / (1.0 - g))
+    if not band.psf_optics:
+        return atmosphere
+    wavelength, diameter = band.psf_optics[0], band.psf_optics[1]
+    return math.hypot(atmosphere, AIRY_FWHM * wavelength * 1e-9 / diameter * ARCSEC_PER_RADIAN)
+
+
+def padding_for(fwhm_max: float, pixel_scale: float) -> int:
+    """Pixels of padding so that light within the PSF stamp's reach of the cutout is rendered."""
+    return int(math.ceil(PSF_RADIUS_IN_FWHM * fwhm_max / pixel_scale))

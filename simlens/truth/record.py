@@ -140,6 +140,8 @@ class System:
     lensing: bool = True  # False: nothing is deflected (negatives)
     source_present: bool = True  # False: no background source (look-alikes)
     extra_light: tuple = ()  # lens-plane look-alike light: (unit-flux profile, {band: mag}) pairs
+    # -- crowded cutouts ([neighbours]): unlensed galaxies and stars, 0-based cutout pixels --
+    neighbours: object = None  # populations.background.BackgroundObjects, or None
 
     def band(self, name: str) -> BandConditions:
         for b in self.bands:

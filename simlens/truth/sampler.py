@@ -37,6 +37,7 @@ from ..lensing.mass.base import isothermal_hessian, rotate_back
 from ..lensing.mass.isothermal import sie_convergence_in_frame, sie_deflection_in_frame
 from ..lensing.mass.sheets import shear_components
 from ..lensing.stars_and_halo import critical_density_arcsec2, stars_and_halo
+from ..populations.background import BackgroundModel
 from ..populations.galaxies import LensLightModel, PointSourceColours, SourceModel
 from ..populations.negatives import lookalike_light
 from ..populations.velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulation
@@ -44,7 +45,7 @@ from ..recipe import Recipe
 from ..recipe.distributions import Fixed, Grid
 from .conditions import BandConditions
 from .record import Clump, LineOfSightGalaxy, SecondSource, Subhalo, System
-from .psf import band_fwhm, band_optics, psf_shear, seeing_factors
+from .psf import band_fwhm, band_optics, major_axis_fwhm, padding_for, psf_shear, seeing_factors
 from .streams import SYSTEM_STREAMS, grid_cell, system_streams
 
 __all__ = ["PopulationSampler", "SelectionExhausted", "System", "offset_on_sky"]
@@ -98,6 +99,8 @@ class PopulationSampler:
                            for b in recipe.survey.bands]
         self._seeing_factors = seeing_factors(recipe)
         self._optics = band_optics(recipe)
+        self._neighbours = (BackgroundModel(recipe, self.distances, recipe.neighbours, recipe.survey.cutout_size)
+                            if recipe.neighbours is not None else None)
         base = str(Path(recipe.origin).parent) if recipe.origin != "<recipe>" else "."
         filters = {b.name: b.filter for b in recipe.survey.bands if b.filter is not None}
         lens, source = recipe.lens, recipe.source
@@ -390,7 +393,19 @@ class PopulationSampler:
             quasar_magnitudes=quasar_mags,
             host=source_settings.quasar.host if source_settings.quasar is not None else True,
             days_per_arcsec2=g.days_per_arcsec2, candidate=candidate, rejections=g.rejections, **lens_extra)
-        return self._classify(system, streams), g.rejections
+        system = self._classify(system, streams)
+        if self._neighbours is not None:
+            system = dataclasses.replace(system, neighbours=self._draw_neighbours(system, streams["neighbours"]))
+        return system, g.rejections
+
+    def _draw_neighbours(self, system: System, rng):
+        """The unlensed galaxies and stars of a crowded cutout: over the cutout and the margin the
+        PSF reaches into it (its padding), kept clear of the lens."""
+        survey = self.recipe.survey
+        margin = padding_for(max(major_axis_fwhm(b) for b in system.bands), survey.pixel_scale)
+        centre = 0.5 * (survey.cutout_size - 1)
+        return self._neighbours.with_margin(margin).draw(rng, [(centre, centre, system.einstein_radius)],
+                                                         clearance=self.recipe.neighbours.clearance)
 
     def _classify(self, system: System, streams) -> System:
         """A share ``negatives.fraction`` of the systems becomes a negative (see negatives.py); the

@@ -19,8 +19,9 @@ __all__ = ["SYSTEM_STREAMS", "FIELD_STREAMS", "INJECTION_STREAMS", "system_strea
 # Named random streams of a system; append new names at the end to keep old draws unchanged.
 # "physics" feeds, in code order, the deflector and source geometry, subhalos, placement, lens light,
 # source size and clumps; "observation" the sky position and the noise seeds; "seeing" the bands'
-# scatter about one drawn seeing (simlens.truth.psf).
-SYSTEM_STREAMS = ("parameters", "physics", "observation", "negatives", "seeing")
+# scatter about one drawn seeing (simlens.truth.psf); "neighbours" the unlensed objects of a crowded
+# cutout ([neighbours]).
+SYSTEM_STREAMS = ("parameters", "physics", "observation", "negatives", "seeing", "neighbours")
 # Of a field image: lens places, unlensed background objects, noise (append new names at the end).
 FIELD_STREAMS = ("layout", "background", "noise")
 # Of an injection run: the added electrons' noise, the redshifts of automatically selected lenses.
