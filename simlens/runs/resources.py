@@ -97,7 +97,8 @@ def estimate_resources(recipe: Recipe) -> ResourceEstimate:
     else:
         n = survey.cutout_size
         shard = min(output.shard_size, recipe.count)
-        bytes_per_pixel = 4 + 1 + (8 if output.noiseless else 0) + (4 if output.variance else 0)
+        noiseless_planes = (2 + (recipe.neighbours is not None)) if output.noiseless else 0
+        bytes_per_pixel = 4 + 1 + 4 * noiseless_planes + (4 if output.variance else 0)
         terms = {
             f"the rays of one {n}x{n} cutout at supersampling {survey.supersampling}":
                 (_ray_bytes(recipe, n), "survey.supersampling or survey.cutout_size"),
@@ -108,7 +109,7 @@ def estimate_resources(recipe: Recipe) -> ResourceEstimate:
         }
         per_system = nb * n**2 * bytes_per_pixel + psf_bytes
         if output.per_system_files:
-            planes = 4 if output.variance else 3
+            planes = 3 + output.variance + (recipe.neighbours is not None)
             per_system += nb * (n**2 * 4 * planes + (planes + 1) * FITS_BLOCK) + psf_bytes
         disk = recipe.count * (per_system + BYTES_PER_SYSTEM_ON_DISK)
     driver = max(terms, key=lambda k: terms[k][0])
