@@ -11,14 +11,15 @@ area ``pi R^2`` whatever ``q`` is, so ``half_light_radius`` is the circularised 
 
 from __future__ import annotations
 
+import hashlib
 import math
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 
 import numpy as np
-from scipy import special
+from scipy import ndimage, special
 
-__all__ = ["LightProfile", "Sersic", "PointSource", "CompositeLight", "GaussianRing", "SpiralArms", "sersic_b",
-           "split_points"]
+__all__ = ["LightProfile", "Sersic", "PointSource", "CompositeLight", "GaussianRing", "SpiralArms", "ImageLight",
+           "sersic_b", "split_points"]
 
 SERSIC_INDEX_RANGE = (0.3, 8.0)
 
@@ -281,6 +282,74 @@ class SpiralArms(LightProfile):
         return self.flux / (0.375 * 2 * math.pi * h * h) * np.exp(-r / h) * pattern
 
     def with_flux(self, flux: float) -> "SpiralArms":
+        return replace(self, flux=flux)
+
+
+@dataclass(frozen=True)
+class ImageLight(LightProfile):
+    """The light of an image stamp (a high-resolution galaxy image): its pixel values are samples
+    of the surface brightness at the pixel centres, interpolated by cubic splines
+    (``scipy.ndimage.map_coordinates``, order 3, zero beyond the stamp).  The interpolant's
+    integral is the sum of the samples times the pixel area, so scaling the samples by ``flux /
+    (sum x area)`` conserves the flux.  The stamp (``ny x nx``, pixel ``pixel_scale`` arcsec) is
+    centred on ``center`` and turned by ``angle`` degrees CCW; its column axis is +x before that.
+
+    Equal stamps compare (and hash) equal by a digest of their pixels, so the renderer's caches
+    evaluate each shape once."""
+
+    flux: float
+    image: np.ndarray = field(compare=False, repr=False)
+    pixel_scale: float = 0.03
+    angle: float = 0.0
+    center: tuple = (0.0, 0.0)
+    digest: str = field(default="", repr=False)  # set from the pixels (with ``total`` and the spline)
+    total: float = field(default=math.nan, compare=False, repr=False)
+
+    def __post_init__(self):
+        if self.digest:  # a copy (with_flux): the spline and the sums are already made
+            return
+        image = np.asarray(self.image, dtype=float)
+        total = float(image.sum())
+        if image.ndim != 2 or min(image.shape) < 4 or not np.all(np.isfinite(image)) or not total > 0:
+            raise ValueError("ImageLight: the stamp must be a finite 2-d image, at least 4 x 4, with a positive sum")
+        if not (self.pixel_scale > 0 and np.isfinite(self.flux) and self.flux >= 0):
+            raise ValueError(f"ImageLight: needs pixel_scale > 0 and flux >= 0, got {self.pixel_scale}, {self.flux}")
+        digest = hashlib.sha1(np.ascontiguousarray(image).tobytes() + str(image.shape).encode()).hexdigest()
+        coefficients = ndimage.spline_filter(image, order=3, mode="constant")
+        coefficients.flags.writeable = False
+        for name, value in (("digest", digest), ("image", coefficients), ("total", total),
+                            ("center", tuple(float(v) for v in self.center))):
+            object.__setattr__(self, name, value)
+
+    @property
+    def half_diagonal(self) -> float:
+        ny, nx = self.image.shape
+        return 0.5 * math.hypot(nx, ny) * self.pixel_scale
+
+    def _pixels(self, x, y):
+        c, s = math.cos(math.radians(self.angle)), math.sin(math.radians(self.angle))
+        dx, dy = _floats(x) - self.center[0], _floats(y) - self.center[1]
+        ny, nx = self.image.shape
+        column = (c * dx + s * dy) / self.pixel_scale + 0.5 * (nx - 1)
+        row = (c * dy - s * dx) / self.pixel_scale + 0.5 * (ny - 1)
+        return row, column
+
+    def surface_brightness(self, x, y) -> np.ndarray:
+        shape = np.broadcast(np.asarray(x), np.asarray(y)).shape
+        if self.flux == 0.0:
+            return np.zeros(shape)
+        row, column = (np.broadcast_to(v, shape).ravel() for v in self._pixels(x, y))
+        values = ndimage.map_coordinates(self.image, [row, column], order=3, mode="constant", cval=0.0,
+                                         prefilter=False)
+        scale = self.flux / (self.total * self.pixel_scale**2)
+        return (values * scale).reshape(shape)
+
+    def near_light(self, x, y, reach) -> np.ndarray:
+        dx, dy = _floats(x) - self.center[0], _floats(y) - self.center[1]
+        limit = self.half_diagonal + np.asarray(reach)
+        return dx * dx + dy * dy < limit * limit
+
+    def with_flux(self, flux: float) -> "ImageLight":
         return replace(self, flux=flux)
 
 

@@ -9,7 +9,7 @@ and the injection into real images, take a scene; each deflector is built once p
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Mapping
 
 from ..cosmology import distance_ratio
@@ -75,9 +75,13 @@ def _source_light(system: System, band: str) -> LightProfile:
     if not system.host or not system.source_present:
         return Sersic(flux=0.0, half_light_radius=system.source_half_light_radius,
                       center=(system.source_x, system.source_y))
-    disk = Sersic(flux=conditions.counts_from_magnitude(system.source_disk_magnitudes[band]),
-                  half_light_radius=system.source_half_light_radius, sersic_index=system.source_sersic_index,
-                  q=system.source_q, angle=system.source_angle, center=(system.source_x, system.source_y))
+    flux, center = conditions.counts_from_magnitude(system.source_disk_magnitudes[band]), (system.source_x, system.source_y)
+    if system.source_stamp is not None:  # an image stamp, turned by the source's angle
+        disk = replace(system.source_stamp, flux=flux, angle=system.source_angle, center=center)
+    else:
+        disk = Sersic(flux=flux, half_light_radius=system.source_half_light_radius,
+                      sersic_index=system.source_sersic_index, q=system.source_q, angle=system.source_angle,
+                      center=center)
     if not system.clumps:
         return disk
     knots = tuple(

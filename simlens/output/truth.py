@@ -170,6 +170,14 @@ TRUTH_COLUMNS = (
       lambda e, b: _band(e, b).sky_level),
     C("sky_variance_{band}", "", "expected noise variance of an empty {band} pixel (ADU^2; below the CCD "
       "equation's where resampled exposures correlate the noise)", lambda e, b: e.rendered.band(b).sky_variance),
+    C("source_stamp", "", "row of the source's image stamp in [source.stamps] catalogue (-1: a Sersic source)",
+      lambda e: e.system.source_stamp_index),
+    C("source_stamp_magnitude", "mag", "the catalogue's magnitude of that stamp (in its own band)",
+      lambda e: e.system.source_stamp_magnitude),
+    C("source_stamp_redshift", "", "the catalogue's redshift of that stamp (nan: unknown or none)",
+      lambda e: e.system.source_stamp_redshift),
+    C("source_stamp_psf_fwhm", "arcsec", "the stamp's own PSF FWHM, a resolution limit kept in the source",
+      lambda e: e.system.source_stamp_psf_fwhm),
     C("n_neighbours", "", "unlensed galaxies and stars drawn in the cutout and its margin ([neighbours]; "
       "the neighbours table)", lambda e: len(e.system.neighbours) if e.system.neighbours is not None else 0),
 )

@@ -7,7 +7,7 @@ import re
 from pathlib import Path
 from typing import Mapping
 
-from ..errors import RecipeError
+from ..errors import RecipeError, SimlensError
 from .distributions import Grid
 from ..lensing.lens_models import LENS_MODELS
 from .schema import MassSettings, Recipe
@@ -32,6 +32,8 @@ def check_recipe(recipe: Recipe) -> None:
         _check_field(recipe, needs_filters)
     if recipe.neighbours is not None:
         _check_neighbours(recipe)
+    if recipe.source.stamps is not None:
+        _check_stamps(recipe)
     _check_negatives(recipe)
     _check_selection(recipe)
     _check_mass(recipe)
@@ -138,6 +140,23 @@ def _check_filters(recipe: Recipe) -> list:
         if settings is not None:
             _check_filter(origin, f"{path}.rest_filter", settings.rest_filter, base)
     return needs_filters
+
+
+def _check_stamps(recipe: Recipe) -> None:
+    """A stamp catalogue is a readable catalogue of stamps (simlens.populations.stamps)."""
+    from ..populations.stamps import load_stamps  # astropy loads only for recipes with stamps
+
+    stamps = recipe.source.stamps
+    base = Path(recipe.origin).parent if recipe.origin != "<recipe>" else Path(".")
+    path = base / stamps.catalogue
+    if not path.is_file():
+        raise RecipeError(recipe.origin, "source.stamps.catalogue", f"{shown(stamps.catalogue)}: no such file "
+                          f"(looked for {path})", "a FITS stamp catalogue, relative to the recipe")
+    try:
+        load_stamps(str(path))
+    except SimlensError as exc:
+        raise RecipeError(recipe.origin, "source.stamps.catalogue", str(exc), "a FITS table with stamp, "
+                          "pixel_scale, magnitude and band columns (see the README)") from None
 
 
 def _check_negatives(recipe: Recipe) -> None:

@@ -435,6 +435,16 @@ class ClumpSettings:
 
 
 @dataclass(frozen=True, kw_only=True)
+class StampSettings:
+    catalogue: str = text(doc="FITS table of galaxy stamps (stamp, pixel_scale, magnitude, band[, redshift]), "
+                              "relative to the recipe")
+    choose: str = text("random", choices=("random", "nearest_redshift"),
+                       doc="which stamp a source takes: uniform, or among those nearest its redshift")
+    psf_fwhm: float = number(0.0, low=0, high=5, unit="arcsec",
+                             doc="the stamps' own PSF FWHM: a resolution limit recorded in the truth (not deconvolved)")
+
+
+@dataclass(frozen=True, kw_only=True)
 class SecondSourceSettings:
     redshift: Parameter = parameter(low=0, low_open=True, high=12, doc="redshift of the second source (behind the first)")
     magnitude: Parameter = parameter(low=0, high=40, unit="mag", doc="unlensed AB magnitude, reference band")
@@ -469,6 +479,8 @@ class SourceSettings:
     angle: Parameter = parameter(0.0, low=-360, high=360, unit="deg", doc="major-axis angle, CCW from +x")
     position: SourcePositionSettings = table(SourcePositionSettings, doc="where the source lies")
     clumps: ClumpSettings = table(ClumpSettings, doc="compact star-forming knots")
+    stamps: StampSettings = table(StampSettings, optional=True,
+                                  doc="source shapes from a catalogue of high-resolution galaxy images")
 
 
 @dataclass(frozen=True, kw_only=True)

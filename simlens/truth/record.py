@@ -140,6 +140,12 @@ class System:
     lensing: bool = True  # False: nothing is deflected (negatives)
     source_present: bool = True  # False: no background source (look-alikes)
     extra_light: tuple = ()  # lens-plane look-alike light: (unit-flux profile, {band: mag}) pairs
+    # -- a source shaped by an image stamp ([source.stamps]) --
+    source_stamp: object = None  # imaging.light.ImageLight of unit flux, centred, unturned; or None
+    source_stamp_index: int = -1  # its row in the catalogue
+    source_stamp_magnitude: float = math.nan  # the catalogue's magnitude and redshift of it
+    source_stamp_redshift: float = math.nan
+    source_stamp_psf_fwhm: float = math.nan  # arcsec: the stamp's own resolution
     # -- crowded cutouts ([neighbours]): unlensed galaxies and stars, 0-based cutout pixels --
     neighbours: object = None  # populations.background.BackgroundObjects, or None
 

@@ -37,7 +37,9 @@ from ..lensing.mass.base import isothermal_hessian, rotate_back
 from ..lensing.mass.isothermal import sie_convergence_in_frame, sie_deflection_in_frame
 from ..lensing.mass.sheets import shear_components
 from ..lensing.stars_and_halo import critical_density_arcsec2, stars_and_halo
+from ..imaging.light import ImageLight
 from ..populations.background import BackgroundModel
+from ..populations.stamps import load_stamps
 from ..populations.galaxies import LensLightModel, PointSourceColours, SourceModel
 from ..populations.negatives import lookalike_light
 from ..populations.velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulation
@@ -102,6 +104,9 @@ class PopulationSampler:
         self._neighbours = (BackgroundModel(recipe, self.distances, recipe.neighbours, recipe.survey.cutout_size)
                             if recipe.neighbours is not None else None)
         base = str(Path(recipe.origin).parent) if recipe.origin != "<recipe>" else "."
+        stamps = recipe.source.stamps
+        self._stamps = load_stamps(str(Path(base) / stamps.catalogue)) if stamps is not None else None
+        self._stamp_lights: dict = {}
         filters = {b.name: b.filter for b in recipe.survey.bands if b.filter is not None}
         lens, source = recipe.lens, recipe.source
         self.mode = source.position.mode or "fixed"
@@ -314,6 +319,11 @@ class PopulationSampler:
             disk_colors = {b: 0.0 if b == ref else v[f"source.colors.{b}"] for b in band_names}
             prefix = "source.clumps.colors" if source_settings.clumps.colors else "source.colors"
             clump_colors = {b: 0.0 if b == ref else v[f"{prefix}.{b}"] for b in band_names}
+        stamp = {}
+        if self._stamps is not None:  # the stamp gives the shape, and so the size
+            index = self._stamps.choose(streams["stamps"], z_source, source_settings.stamps.choose)
+            stamp = self._stamp(index)
+            source_r_e = float(self._stamps.half_light_radius[index])
         n_clumps = int(round(v["source.clumps.count"]))
         clump_fraction = v["source.clumps.flux_fraction"] if n_clumps > 0 else 0.0
         if clump_fraction == 0.0:  # clumps without light are no clumps
@@ -392,11 +402,23 @@ class PopulationSampler:
             source_absolute_magnitude=photometry.absolute_magnitude if photometry is not None else math.nan,
             quasar_magnitudes=quasar_mags,
             host=source_settings.quasar.host if source_settings.quasar is not None else True,
-            days_per_arcsec2=g.days_per_arcsec2, candidate=candidate, rejections=g.rejections, **lens_extra)
+            days_per_arcsec2=g.days_per_arcsec2, candidate=candidate, rejections=g.rejections, **lens_extra, **stamp)
         system = self._classify(system, streams)
         if self._neighbours is not None:
             system = dataclasses.replace(system, neighbours=self._draw_neighbours(system, streams["neighbours"]))
         return system, g.rejections
+
+    def _stamp(self, index: int) -> dict:
+        """The System fields of catalogue stamp ``index`` (its light profile made once per process)."""
+        catalogue = self._stamps
+        light = self._stamp_lights.get(index)
+        if light is None:
+            light = self._stamp_lights[index] = ImageLight(flux=1.0, image=catalogue.stamps[index],
+                                                           pixel_scale=float(catalogue.pixel_scale[index]))
+        return dict(source_stamp=light, source_stamp_index=index,
+                    source_stamp_magnitude=float(catalogue.magnitude[index]),
+                    source_stamp_redshift=float(catalogue.redshift[index]),
+                    source_stamp_psf_fwhm=self.recipe.source.stamps.psf_fwhm)
 
     def _draw_neighbours(self, system: System, rng):
         """The unlensed galaxies and stars of a crowded cutout: over the cutout and the margin the

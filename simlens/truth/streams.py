@@ -20,8 +20,8 @@ __all__ = ["SYSTEM_STREAMS", "FIELD_STREAMS", "INJECTION_STREAMS", "system_strea
 # "physics" feeds, in code order, the deflector and source geometry, subhalos, placement, lens light,
 # source size and clumps; "observation" the sky position and the noise seeds; "seeing" the bands'
 # scatter about one drawn seeing (simlens.truth.psf); "neighbours" the unlensed objects of a crowded
-# cutout ([neighbours]).
-SYSTEM_STREAMS = ("parameters", "physics", "observation", "negatives", "seeing", "neighbours")
+# cutout ([neighbours]); "stamps" the choice of a source's image stamp ([source.stamps]).
+SYSTEM_STREAMS = ("parameters", "physics", "observation", "negatives", "seeing", "neighbours", "stamps")
 # Of a field image: lens places, unlensed background objects, noise (append new names at the end).
 FIELD_STREAMS = ("layout", "background", "noise")
 # Of an injection run: the added electrons' noise, the redshifts of automatically selected lenses.
