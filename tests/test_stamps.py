@@ -87,3 +87,23 @@ def test_a_missing_or_malformed_catalogue_is_refused(tmp_path):
     Table({"pixel_scale": [0.03], "magnitude": [23.0], "band": ["i"]}).write(tmp_path / "bad.fits")
     with pytest.raises(RecipeError, match="STAMPS"):
         parse_recipe(recipe_text('\n[source.stamps]\ncatalogue = "bad.fits"\n'), origin=str(tmp_path / "recipe.toml"))
+
+
+def test_random_knots_follow_the_disk_light():
+    # galsim.RandomKnots places knots at random points of the disk's light: half of them within the
+    # disk's half-light (elliptical) radius, by the definition of R_e (Graham & Driver 2005, eq. 1),
+    # and their second moments flattened by the disk's axis ratio.
+    from simlens.truth.sampler import PopulationSampler
+
+    text = recipe_text().replace("count = 0", 'count = 50\nplacement = "disk"\nflux_fraction = 0.3')
+    text = text.replace("count = 6", "count = 40")
+    sampler = PopulationSampler(parse_recipe(text))
+    knots = np.array([(c.x, c.y) for system in sampler.draw_many(range(40)) for c in system.clumps])
+    assert len(knots) == 2000
+    a = np.radians(35.0)
+    along = knots[:, 0] * np.cos(a) + knots[:, 1] * np.sin(a)
+    across = -knots[:, 0] * np.sin(a) + knots[:, 1] * np.cos(a)
+    radius = np.sqrt(0.6 * along**2 + across**2 / 0.6)  # the elliptical radius of simlens.imaging.light
+    inside = np.mean(radius < 0.3)
+    assert abs(inside - 0.5) < 3 * np.sqrt(0.25 / len(knots))
+    assert np.sqrt(np.mean(across**2) / np.mean(along**2)) == pytest.approx(0.6, rel=0.08)

@@ -428,7 +428,10 @@ class ClumpSettings:
     half_light_radius: Parameter = parameter(0.08, low=0, low_open=True, high=5, unit="arcsec",
                                              doc="clump half-light radius (Gaussian clumps)")
     spread: Parameter = parameter(1.0, low=0, low_open=True, high=10,
-                                  doc="clump offsets: Gaussian sigma in units of the source R_e")
+                                  doc="clump offsets: Gaussian sigma in units of the source R_e (placement 'gaussian')")
+    placement: str = text("gaussian", choices=("gaussian", "disk"),
+                          doc="'gaussian': offsets of Gaussian spread, fluxes uniform in [0.5, 1.5]; 'disk': "
+                              "galsim.RandomKnots, knots of equal flux following the disk's light")
     colors: dict = band_colors(doc="clump colours, m_band - m_reference (default: the source's)")
     template: str = text(optional=True, choices=TEMPLATE_NAMES,
                          doc="spectral template of the clumps (with source.counts; default: the disk's)")

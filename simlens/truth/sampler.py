@@ -332,9 +332,14 @@ class PopulationSampler:
         clumps = ()
         if n_clumps > 0:
             rng = streams["physics"]
-            weights = rng.uniform(0.5, 1.5, size=n_clumps)
-            weights = weights / weights.sum()
-            offsets = rng.normal(0.0, v["source.clumps.spread"] * source_r_e, size=(n_clumps, 2))
+            if source_settings.clumps.placement == "disk":
+                offsets = knots_following_the_disk(n_clumps, source_r_e, v["source.sersic_index"], v["source.q"],
+                                                   v["source.angle"], int(rng.integers(1, 2**31 - 1)))
+                weights = np.full(n_clumps, 1.0 / n_clumps)
+            else:
+                weights = rng.uniform(0.5, 1.5, size=n_clumps)
+                weights = weights / weights.sum()
+                offsets = rng.normal(0.0, v["source.clumps.spread"] * source_r_e, size=(n_clumps, 2))
             clump_anchor = anchor_mag - 2.5 * math.log10(clump_fraction)
             clumps = tuple(
                 Clump(x=float(dx), y=float(dy), half_light_radius=v["source.clumps.half_light_radius"],
@@ -453,6 +458,20 @@ class PopulationSampler:
             x, y = _uniform_in_annulus(0.3 * scale, 2.5 * scale, rng)
             changes.update(source_x=x, source_y=y)
         return dataclasses.replace(system, **changes)
+
+
+GALSIM_SERSIC_INDICES = (0.3, 6.2)  # the Sersic indices GalSim draws
+
+
+def knots_following_the_disk(n: int, half_light_radius: float, sersic_index: float, q: float, angle: float,
+                             seed: int) -> np.ndarray:
+    """``(n, 2)`` knot offsets (arcsec) from the source centre, placed by ``galsim.RandomKnots`` at
+    random points of the disk's own light (a Sersic of the source's shape; GalSim's photon shooting)."""
+    import galsim  # the sampler needs GalSim only for this placement
+
+    disk = galsim.Sersic(n=float(np.clip(sersic_index, *GALSIM_SERSIC_INDICES)), half_light_radius=half_light_radius)
+    disk = disk.shear(q=q, beta=angle * galsim.degrees)
+    return np.asarray(galsim.RandomKnots(npoints=n, profile=disk, rng=galsim.BaseDeviate(seed)).points, dtype=float)
 
 
 @dataclass
