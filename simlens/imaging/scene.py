@@ -82,13 +82,19 @@ def _source_light(system: System, band: str) -> LightProfile:
         disk = Sersic(flux=flux, half_light_radius=system.source_half_light_radius,
                       sersic_index=system.source_sersic_index, q=system.source_q, angle=system.source_angle,
                       center=center)
+    parts = (disk,)
+    if system.source_bulge_magnitudes is not None and system.source_bulge_magnitudes[band] < float("inf"):
+        parts += (Sersic(flux=conditions.counts_from_magnitude(system.source_bulge_magnitudes[band]),
+                         half_light_radius=system.source_bulge_half_light_radius,
+                         sersic_index=system.source_bulge_sersic_index, q=system.source_bulge_q,
+                         angle=system.source_angle, center=center),)
     if not system.clumps:
-        return disk
+        return parts[0] if len(parts) == 1 else CompositeLight(parts)
     knots = tuple(
         Sersic(flux=conditions.counts_from_magnitude(c.magnitudes[band]), half_light_radius=c.half_light_radius,
                sersic_index=CLUMP_SERSIC_INDEX, center=(system.source_x + c.x, system.source_y + c.y))
         for c in system.clumps)
-    return CompositeLight((disk,) + knots)
+    return CompositeLight(parts + knots)
 
 
 def _point_flux(system: System, band: str) -> float:

@@ -124,7 +124,7 @@ class SourceModel:
     """Number counts, p(z | m), the Shen et al. size-luminosity relation and templates."""
 
     def __init__(self, settings, distances: DistanceTable, band_filters: Mapping[str, str], anchor_band: str,
-                 clump_template: str | None, base: str):
+                 clump_template: str | None, base: str, bulge_template: str | None = None):
         self.settings = settings
         self.distances = distances
         self.anchor_band = anchor_band
@@ -135,6 +135,13 @@ class SourceModel:
                               for b, f in band_filters.items()})
         clumps = clump_template or settings.template
         self.k_clump = _BandK({b: kcorrection(clumps, f, settings.rest_filter, base) for b, f in band_filters.items()})
+        self.k_bulge = (_BandK({b: kcorrection(bulge_template, f, settings.rest_filter, base)
+                                for b, f in band_filters.items()}) if bulge_template else None)
+
+    def bulge_colors(self, z: float) -> dict:
+        """``m_band - m_anchor`` of the bulge's template at redshift ``z``."""
+        k = self.k_bulge.at(z)
+        return {b: value - k[self.anchor_band] for b, value in k.items()}
 
     @property
     def sky_density(self) -> float:

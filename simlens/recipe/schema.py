@@ -438,6 +438,19 @@ class ClumpSettings:
 
 
 @dataclass(frozen=True, kw_only=True)
+class BulgeSettings:
+    fraction: Parameter = parameter(0.3, low=0, high=1, high_open=True,
+                                    doc="bulge share of the galaxy's light (clumps aside) in the magnitude's band")
+    half_light_radius_ratio: Parameter = parameter(0.5, low=0.05, high=2,
+                                                   doc="bulge R_e over the disk's (source.half_light_radius)")
+    sersic_index: Parameter = parameter(4.0, low=0.3, high=8.0, doc="bulge Sersic n (4: de Vaucouleurs)")
+    q: Parameter = parameter(0.8, low=0, low_open=True, high=1, doc="bulge axis ratio (aligned with the disk)")
+    colors: dict = band_colors(doc="bulge colours, m_band - m_reference (default: the disk's)")
+    template: str = text("elliptical", choices=TEMPLATE_NAMES,
+                         doc="spectral template of the bulge (with source.counts): redder than the disk's")
+
+
+@dataclass(frozen=True, kw_only=True)
 class StampSettings:
     catalogue: str = text(doc="FITS table of galaxy stamps (stamp, pixel_scale, magnitude, band[, redshift]), "
                               "relative to the recipe")
@@ -484,6 +497,8 @@ class SourceSettings:
     clumps: ClumpSettings = table(ClumpSettings, doc="compact star-forming knots")
     stamps: StampSettings = table(StampSettings, optional=True,
                                   doc="source shapes from a catalogue of high-resolution galaxy images")
+    bulge: BulgeSettings = table(BulgeSettings, optional=True,
+                                 doc="a bulge inside the disk, with its own template: a colour gradient")
 
 
 @dataclass(frozen=True, kw_only=True)

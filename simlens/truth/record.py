@@ -140,6 +140,11 @@ class System:
     lensing: bool = True  # False: nothing is deflected (negatives)
     source_present: bool = True  # False: no background source (look-alikes)
     extra_light: tuple = ()  # lens-plane look-alike light: (unit-flux profile, {band: mag}) pairs
+    # -- a bulge inside the source's disk ([source.bulge]), aligned with it --
+    source_bulge_magnitudes: Mapping[str, float] | None = None
+    source_bulge_half_light_radius: float = math.nan  # arcsec
+    source_bulge_sersic_index: float = math.nan
+    source_bulge_q: float = math.nan
     # -- a source shaped by an image stamp ([source.stamps]) --
     source_stamp: object = None  # imaging.light.ImageLight of unit flux, centred, unturned; or None
     source_stamp_index: int = -1  # its row in the catalogue
@@ -160,10 +165,12 @@ class System:
         return math.pi * self.region_radius**2
 
     def source_magnitude(self, band: str) -> float:
-        """Total unlensed magnitude of the source galaxy (disk plus clumps) in ``band`` (nan when a
+        """Total unlensed magnitude of the source galaxy (disk, bulge and clumps) in ``band`` (nan when a
         look-alike negative has no source)."""
         if not self.source_present:
             return math.nan
         flux = 10 ** (-0.4 * self.source_disk_magnitudes[band])
+        if self.source_bulge_magnitudes is not None:
+            flux += 10 ** (-0.4 * self.source_bulge_magnitudes[band])
         flux += sum(10 ** (-0.4 * c.magnitudes[band]) for c in self.clumps)
         return -2.5 * math.log10(flux)

@@ -125,7 +125,8 @@ class PopulationSampler:
         if source.counts is not None:
             anchor = source.counts.band or recipe.reference_band
             self.source_model = SourceModel(source.counts, self.distances, filters, anchor,
-                                            source.clumps.template, base)
+                                            source.clumps.template, base,
+                                            source.bulge.template if source.bulge is not None else None)
         self.quasar_colours = (PointSourceColours(source.quasar.spectral_index, filters, recipe.reference_band, base)
                                if source.quasar is not None else None)
 
@@ -328,7 +329,21 @@ class PopulationSampler:
         clump_fraction = v["source.clumps.flux_fraction"] if n_clumps > 0 else 0.0
         if clump_fraction == 0.0:  # clumps without light are no clumps
             n_clumps = 0
-        disk_mags = {b: anchor_mag + disk_colors[b] - 2.5 * math.log10(1.0 - clump_fraction) for b in band_names}
+        bulge, bulge_fraction = {}, 0.0
+        if source_settings.bulge is not None:  # the galaxy (clumps aside) splits into bulge and disk
+            bulge_fraction = v["source.bulge.fraction"]
+            if photometry is not None:
+                bulge_colors = self.source_model.bulge_colors(z_source)
+            elif source_settings.bulge.colors:
+                bulge_colors = {b: 0.0 if b == ref else v[f"source.bulge.colors.{b}"] for b in band_names}
+            else:
+                bulge_colors = disk_colors
+            share = 2.5 * math.log10((1.0 - clump_fraction) * bulge_fraction) if bulge_fraction > 0 else -math.inf
+            bulge = dict(source_bulge_magnitudes={b: anchor_mag + bulge_colors[b] - share for b in band_names},
+                         source_bulge_half_light_radius=v["source.bulge.half_light_radius_ratio"] * source_r_e,
+                         source_bulge_sersic_index=v["source.bulge.sersic_index"], source_bulge_q=v["source.bulge.q"])
+        disk_share = (1.0 - clump_fraction) * (1.0 - bulge_fraction)
+        disk_mags = {b: anchor_mag + disk_colors[b] - 2.5 * math.log10(disk_share) for b in band_names}
         clumps = ()
         if n_clumps > 0:
             rng = streams["physics"]
@@ -407,7 +422,8 @@ class PopulationSampler:
             source_absolute_magnitude=photometry.absolute_magnitude if photometry is not None else math.nan,
             quasar_magnitudes=quasar_mags,
             host=source_settings.quasar.host if source_settings.quasar is not None else True,
-            days_per_arcsec2=g.days_per_arcsec2, candidate=candidate, rejections=g.rejections, **lens_extra, **stamp)
+            days_per_arcsec2=g.days_per_arcsec2, candidate=candidate, rejections=g.rejections, **lens_extra, **stamp,
+            **bulge)
         system = self._classify(system, streams)
         if self._neighbours is not None:
             system = dataclasses.replace(system, neighbours=self._draw_neighbours(system, streams["neighbours"]))

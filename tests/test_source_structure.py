@@ -107,3 +107,43 @@ def test_random_knots_follow_the_disk_light():
     inside = np.mean(radius < 0.3)
     assert abs(inside - 0.5) < 3 * np.sqrt(0.25 / len(knots))
     assert np.sqrt(np.mean(across**2) / np.mean(along**2)) == pytest.approx(0.6, rel=0.08)
+
+
+def test_bulge_plus_disk_sources_carry_their_templates_colour_gradient():
+    # Reference library: galsim.SED.calculateMagnitude (AB) of GalSim's CWW templates redshifted
+    # through the LSST filters gives each component's g - r; the bulge (elliptical template, n = 4,
+    # half the disk's R_e) makes the centre redder than the outskirts.
+    from simlens.imaging.scene import build_scene
+    from simlens.truth.sampler import PopulationSampler
+
+    from .conftest import PHYSICAL_RECIPE
+
+    text = PHYSICAL_RECIPE.replace("[source.clumps]\ncount = { choice = [0, 2] }", "[source.clumps]\ncount = 0")
+    text += "\n[source.bulge]\nfraction = 0.4\nhalf_light_radius_ratio = 0.5\ntemplate = \"elliptical\"\n"
+    sampler = PopulationSampler(parse_recipe(text))
+    share = galsim.meta_data.share_dir
+    filters = {b: galsim.Bandpass(f"LSST_{b}.dat", wave_type="nm").withZeropoint("AB") for b in "gr"}
+
+    def colour(sed_file, z):
+        sed = galsim.SED(f"{share}/SEDs/{sed_file}", wave_type="Ang", flux_type="flambda").atRedshift(z)
+        return sed.calculateMagnitude(filters["g"]) - sed.calculateMagnitude(filters["r"])
+
+    gradients = 0
+    for system in sampler.draw_many(range(6)):
+        bulge, disk, z = system.source_bulge_magnitudes, system.source_disk_magnitudes, system.z_source
+        assert bulge["g"] - bulge["r"] == pytest.approx(colour("CWW_E_ext.sed", z), abs=0.02)
+        assert disk["g"] - disk["r"] == pytest.approx(colour("CWW_Sbc_ext.sed", z), abs=0.02)
+        # the light adds up to the drawn total, with the bulge's share in the anchor band (r)
+        total = 10 ** (-0.4 * bulge["r"]) + 10 ** (-0.4 * disk["r"])
+        assert 10 ** (-0.4 * bulge["r"]) / total == pytest.approx(0.4, rel=1e-9)
+        assert system.source_magnitude("r") == pytest.approx(-2.5 * np.log10(total), abs=1e-9)
+        scene = build_scene(system)
+        g, r = scene.source_light["g"], scene.source_light["r"]
+        assert g.flux == pytest.approx(system.band("g").counts_from_magnitude(system.source_magnitude("g")), rel=1e-9)
+        x0, y0, r_e = system.source_x, system.source_y, system.source_half_light_radius
+        inner = g.surface_brightness(x0, y0) / r.surface_brightness(x0, y0)
+        outer = g.surface_brightness(x0 + 2 * r_e, y0) / r.surface_brightness(x0 + 2 * r_e, y0)
+        if colour("CWW_E_ext.sed", z) > colour("CWW_Sbc_ext.sed", z) + 0.2:
+            assert -2.5 * np.log10(inner / outer) > 0.1  # redder at the centre by more than 0.1 mag
+            gradients += 1
+    assert gradients >= 2
