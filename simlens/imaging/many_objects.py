@@ -170,7 +170,11 @@ def draw_together(objects: BackgroundObjects, bands: tuple[BandConditions, ...],
         reach = light_reach(profile, bands, pixel_scale) * pixel_scale  # arcsec
         if not large[k]:
             stamp = fine.stamp(profile, objects.x[k], objects.y[k], reach)
-            fine.add(stamp, band_fluxes, 1.0 / stamp[0].sum())
+            total = float(stamp[0].sum())
+            if total > 0:
+                fine.add(stamp, band_fluxes, 1.0 / total)
+            else:  # far smaller than a sample (its light underflows the stamp): a point
+                fine.add_points(objects.x[k:k + 1], objects.y[k:k + 1], [flux[k:k + 1] for flux in fluxes])
             continue
         _add_large(fine, coarse, profile, objects.x[k], objects.y[k], reach, band_fluxes)
     stars = objects.kind == "star"

@@ -149,7 +149,11 @@ def _check_stamps(recipe: Recipe) -> None:
     stamps = recipe.source.stamps
     base = Path(recipe.origin).parent if recipe.origin != "<recipe>" else Path(".")
     path = base / stamps.catalogue
-    if not path.is_file():
+    try:
+        found = path.is_file()
+    except OSError:  # a name the file system cannot hold
+        found = False
+    if not found:
         raise RecipeError(recipe.origin, "source.stamps.catalogue", f"{shown(stamps.catalogue)}: no such file "
                           f"(looked for {path})", "a FITS stamp catalogue, relative to the recipe")
     try:
