@@ -5,11 +5,11 @@ bare-kernel floor, and the deflection cost per ray.
    source without clumps, default 4x supersampling, one shard file, for cutouts of 32 to 256 pixels
    in 3 bands and of 64 pixels in 1 and 6 bands:
      simlens  `render_shard`: ray tracing once per system, scenes, GalSim stage, image finding,
-              shard writing (IMAGES, MASK, SOURCE, LENS, PSF and the truth tables)
+              shard writing (IMAGES, MASK, SOURCE, LENS, VARIANCE, PSF and the truth tables)
      galsim   the same systems drawn with GalSim directly *without lensing*, like for like: per
               band the lens and the source each Convolve(Sersic, Moffat).drawImage (the two
-              noiseless planes), their sum with CCDNoise, the mask and the pixel-integrated PSF,
-              the five cubes and the truth rows written to one FITS file
+              noiseless planes), their sum with CCDNoise, the variance, the mask and the
+              pixel-integrated PSF, the six cubes and the truth rows written to one FITS file
    The ratio simlens / galsim is measured side by side in this run, the two routes interleaved
    (goal <= 1.0).
 2. The floor at 64 pixels, 3 bands: the bare numpy kernels the renderer runs (SIE + shear
@@ -79,7 +79,7 @@ def demo_recipe(n: int, size: int = 64, bands: int = 3, adaptive: bool = True, f
 
 def galsim_route(systems, size: int, path: Path) -> None:
     nb = len(systems[0].bands)
-    cubes = {name: np.zeros((len(systems), nb, size, size), np.float32) for name in ("IMAGES", "SOURCE", "LENS")}
+    cubes = {name: np.zeros((len(systems), nb, size, size), np.float32) for name in ("IMAGES", "SOURCE", "LENS", "VARIANCE")}
     cubes["MASK"] = np.zeros((len(systems), nb, size, size), np.uint8)
     cubes["PSF"] = np.zeros((len(systems), nb, 25, 25), np.float32)
     rows = []
@@ -98,7 +98,9 @@ def galsim_route(systems, size: int, path: Path) -> None:
             image = galsim.Image(lens_plane + source_plane, scale=band.pixel_scale, dtype=np.float64)
             image.addNoise(galsim.CCDNoise(galsim.BaseDeviate(s.noise_seeds[b]), sky_level=band.sky_level,
                                            gain=band.gain, read_noise=band.read_noise))
-            variance = (band.sky_level + np.clip(lens_plane + source_plane, 0, None)) / band.gain
+            signal = np.clip(lens_plane + source_plane, 0, None)
+            variance = ((band.sky_level + signal) * band.gain + band.read_noise**2) / band.gain**2
+            cubes["VARIANCE"][k, b] = variance
             cubes["IMAGES"][k, b] = image.array
             cubes["SOURCE"][k, b] = source_plane
             cubes["LENS"][k, b] = lens_plane

@@ -147,3 +147,36 @@ def test_bulge_plus_disk_sources_carry_their_templates_colour_gradient():
             assert -2.5 * np.log10(inner / outer) > 0.1  # redder at the centre by more than 0.1 mag
             gradients += 1
     assert gradients >= 2
+
+
+def test_satellites_carry_the_light_of_the_stellar_to_halo_mass_relation():
+    # Moster, Naab & White (2013, MNRAS 428, 3121, eq. 2, Table 1; from memory): at M = M1 =
+    # 10^11.59 M_sun (z = 0) the stellar-to-halo mass ratio is N = 0.0351, and far below M1 it
+    # falls as (M / M1)^beta, beta = 1.376.
+    from simlens.imaging.scene import build_scene
+    from simlens.populations.scaling_relations import StellarToHaloMass
+    from simlens.truth.sampler import PopulationSampler
+
+    from .conftest import PHYSICAL_RECIPE
+
+    relation = StellarToHaloMass()
+    assert relation.stellar_mass(10**11.59, 0.0) / 10**11.59 == pytest.approx(0.0351, rel=1e-9)
+    low = relation.stellar_mass(1e9, 0.0) / relation.stellar_mass(1e8, 0.0)
+    assert np.log10(low) == pytest.approx(1 + 1.376, abs=0.01)
+
+    text = PHYSICAL_RECIPE + ("\n[lens.subhalos]\ncount = 3\nmass_min = 1e10\nmass_max = 1e11\nlight = true\n")
+    sampler = PopulationSampler(parse_recipe(text))
+    for system in sampler.draw_many(range(3)):
+        assert len(system.subhalos) == 3
+        scene = build_scene(system)
+        for band in ("g", "r"):
+            satellites = sum(system.band(band).counts_from_magnitude(h.magnitudes[band]) for h in system.subhalos)
+            lens = system.band(band).counts_from_magnitude(system.lens_magnitudes[band])
+            assert scene.lens_light[band].flux == pytest.approx(lens + satellites, rel=1e-9)
+        for h in system.subhalos:
+            assert h.stellar_mass == pytest.approx(relation.stellar_mass(h.mass, system.z_lens), rel=1e-12)
+            # the satellites take the lens's template: the same colour as the lens galaxy
+            assert h.magnitudes["g"] - h.magnitudes["r"] == pytest.approx(
+                system.lens_magnitudes["g"] - system.lens_magnitudes["r"], abs=1e-9)
+    with pytest.raises(RecipeError, match="lens.subhalos.light"):
+        parse_recipe(recipe_text("\n[lens.subhalos]\ncount = 1\nlight = true\n"))

@@ -22,6 +22,7 @@ from .light import CompositeLight, LightProfile, Sersic
 __all__ = ["Scene", "build_scene", "lens_galaxy", "CLUMP_SERSIC_INDEX"]
 
 CLUMP_SERSIC_INDEX = 0.5  # Gaussian clumps
+SATELLITE_SERSIC_INDEX = 1.0  # dwarf satellites: exponential disks (common practice)
 
 
 @dataclass(frozen=True)
@@ -61,12 +62,14 @@ def lens_galaxy(system: System, band: str) -> Sersic:
 
 
 def _lens_light(system: System, band: str) -> LightProfile:
+    """The lens galaxy, any look-alike features, and the satellites of its subhalos."""
     conditions = system.band(band)
-    galaxy = lens_galaxy(system, band)
-    if not system.extra_light:
-        return galaxy
-    return CompositeLight((galaxy,) + tuple(shape.with_flux(conditions.counts_from_magnitude(mags[band]))
-                                            for shape, mags in system.extra_light))
+    parts = (lens_galaxy(system, band),)
+    parts += tuple(shape.with_flux(conditions.counts_from_magnitude(mags[band])) for shape, mags in system.extra_light)
+    parts += tuple(Sersic(flux=conditions.counts_from_magnitude(h.magnitudes[band]), half_light_radius=h.half_light_radius,
+                          sersic_index=SATELLITE_SERSIC_INDEX, center=(h.x, h.y))
+                   for h in system.subhalos if h.magnitudes is not None)
+    return parts[0] if len(parts) == 1 else CompositeLight(parts)
 
 
 def _source_light(system: System, band: str) -> LightProfile:

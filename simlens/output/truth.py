@@ -219,16 +219,23 @@ SUBHALO_COLUMNS = (
     C("mass", "M_sun", "total mass of the truncated SIS", lambda h: h[1].mass),
     C("einstein_radius", "arcsec", "its Einstein radius b", lambda h: h[1].einstein_radius),
     C("truncation_radius", "arcsec", "its truncation radius a = sqrt(b theta_E)", lambda h: h[1].truncation_radius),
+    C("stellar_mass", "M_sun", "its satellite galaxy's stellar mass (nan: no light drawn)", lambda h: h[1].stellar_mass),
+    C("half_light_radius", "arcsec", "the satellite's half-light radius (nan: none)", lambda h: h[1].half_light_radius),
+    C("mag_{band}", "mag", "the satellite in {band}, AB (nan: none)",
+      lambda h, b: h[1].magnitudes[b] if h[1].magnitudes is not None else math.nan),
 )
 
 
 def subhalo_rows(rendered: RenderedSystem) -> list[dict]:
-    return [rows_from(SUBHALO_COLUMNS, (rendered.system.system_id, h)) for h in rendered.system.subhalos]
+    bands = [b.name for b in rendered.system.bands]
+    return [rows_from(SUBHALO_COLUMNS, (rendered.system.system_id, h), bands=bands) for h in rendered.system.subhalos]
 
 
-def subhalo_table(rows: Sequence[dict]) -> Table:
-    """Subhalos keyed by system_id (positions in the image plane, arcsec from the lens centre)."""
-    return described_table(rows, SUBHALO_COLUMNS, dtype=[np.int64] + [float] * 5)
+def subhalo_table(rows: Sequence[dict], bands: Sequence[str]) -> Table:
+    """Subhalos keyed by system_id (positions in the image plane, arcsec from the lens centre),
+    with their satellites' light."""
+    return described_table(rows, SUBHALO_COLUMNS, bands=bands,
+                           dtype=[np.int64] + [float] * (len(SUBHALO_COLUMNS) - 2 + len(bands)))
 
 
 IMAGE_COLUMNS = (

@@ -34,7 +34,7 @@ from dataclasses import dataclass
 import numpy as np
 
 __all__ = ["FaberJackson", "FundamentalPlane", "NumberCounts", "RedshiftGivenMagnitude", "SizeLuminosity",
-           "SUN_ABSOLUTE_MAGNITUDE_R", "KPC_AT_10PC_IN_ARCSEC_MAG"]
+           "StellarToHaloMass", "SUN_ABSOLUTE_MAGNITUDE_R", "KPC_AT_10PC_IN_ARCSEC_MAG"]
 
 SUN_ABSOLUTE_MAGNITUDE_R = 4.65  # AB, SDSS r (Willmer 2018, ApJS 236, 47; from memory)
 # 5 log10(arcsec subtended by 1 kpc at 10 pc) = 5 log10(206264.8 * 100)
@@ -142,3 +142,31 @@ class SizeLuminosity:
         """R_50 in kpc."""
         log_r = self.mean_log_radius(absolute_magnitude, redshift)
         return float(10 ** log_r * math.exp(float(self.scatter_ln(absolute_magnitude)) * rng.standard_normal()))
+
+
+@dataclass(frozen=True)
+class StellarToHaloMass:
+    """Stellar mass of a halo of mass M at redshift z (Moster, Naab & White 2013, MNRAS 428, 3121,
+    eq. 2 with the redshift dependence of eqs. 11-14 and the best fit of their Table 1; from memory):
+
+        m / M = 2 N [(M / M1)^-beta + (M / M1)^gamma]^-1,
+
+    ``log10 M1 = M10 + M11 z/(1+z)`` and likewise ``N``, ``beta``, ``gamma``.  At ``M = M1`` the
+    ratio is ``N`` (0.0351 at z = 0): the peak efficiency of star formation."""
+
+    m10: float = 11.590
+    m11: float = 1.195
+    n10: float = 0.0351
+    n11: float = -0.0247
+    beta10: float = 1.376
+    beta11: float = -0.826
+    gamma10: float = 0.608
+    gamma11: float = 0.329
+
+    def stellar_mass(self, halo_mass, z: float) -> np.ndarray:
+        a = z / (1.0 + z)
+        m1 = 10 ** (self.m10 + self.m11 * a)
+        n = self.n10 + self.n11 * a
+        beta, gamma = self.beta10 + self.beta11 * a, self.gamma10 + self.gamma11 * a
+        x = np.asarray(halo_mass, dtype=float) / m1
+        return np.asarray(halo_mass, dtype=float) * 2.0 * n / (x ** (-beta) + x**gamma)

@@ -206,6 +206,9 @@ def _check_line_of_sight_and_subhalos(recipe: Recipe) -> None:
     if subs.annulus.support[1] >= subs.annulus_outer.support[0]:
         raise RecipeError(origin, "lens.subhalos.annulus_outer", "can be inside the inner radius (annulus)",
                           "annulus_outer above annulus for every draw")
+    if subs.light and recipe.lens.light.scaling is None:
+        raise RecipeError(origin, "lens.subhalos.light", "needs the lens's template and mass-to-light ratio",
+                          "a [lens.light.scaling] table, or light = false")
 
 
 def _check_redshifts(recipe: Recipe) -> None:

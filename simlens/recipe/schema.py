@@ -290,6 +290,8 @@ class SubhaloSettings:
     annulus: Parameter = parameter(0.5, low=0, high=20, doc="inner radius of the placement annulus, in Einstein radii")
     annulus_outer: Parameter = parameter(1.5, low=0, low_open=True, high=20,
                                          doc="outer radius of the placement annulus, in Einstein radii")
+    light: bool = flag(False, doc="satellites: draw each subhalo's galaxy (stellar mass from Moster et al. 2013, "
+                                  "the lens's template and mass-to-light ratio; needs lens.light.scaling)")
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -140,7 +140,7 @@ def _render_shard(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
               "PIXSCALE": (survey.pixel_scale, "[arcsec/pixel] pixel scale"),
               "BUNIT": ("adu", "units of IMAGES, SOURCE, LENS (VARIANCE: adu2)"),
               "MASKTHR": (output.mask_threshold, "MASK: source > MASKTHR x pixel noise sigma")}
-    tables = {"SUBHALOS": subhalo_table(subhalos), "IMAGE_TRUTH": image_table(images),
+    tables = {"SUBHALOS": subhalo_table(subhalos, survey.band_names), "IMAGE_TRUTH": image_table(images),
               "LINE_OF_SIGHT": line_of_sight_table(los)}
     if crowded:
         tables["NEIGHBOUR_TRUTH"] = objects_table(neighbours, survey.band_names, NEIGHBOUR_COLUMNS)

@@ -38,6 +38,10 @@ class Subhalo:
     mass: float
     einstein_radius: float
     truncation_radius: float
+    # its satellite galaxy (lens.subhalos.light): AB magnitudes per band, or None
+    magnitudes: Mapping[str, float] | None = None
+    stellar_mass: float = math.nan  # M_sun
+    half_light_radius: float = math.nan  # arcsec (an exponential disk)
 
 
 @dataclass(frozen=True)

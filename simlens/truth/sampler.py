@@ -29,7 +29,7 @@ from typing import Callable, Mapping, Sequence
 
 import numpy as np
 
-from ..cosmology import DistanceTable, sis_einstein_radius
+from ..cosmology import ARCSEC_PER_RADIAN, DistanceTable, sis_einstein_radius
 from ..errors import RunError
 from ..lensing.lens_models import LENS_MODELS, TRUTH_DEFAULTS, build_deflector, multi_plane
 from ..lensing.caustics import CUT_ANGLES, _UNIT_CIRCLE, find_caustics, inside_polygon, isothermal_caustics, polygon_area
@@ -39,6 +39,7 @@ from ..lensing.mass.sheets import shear_components
 from ..lensing.stars_and_halo import critical_density_arcsec2, stars_and_halo
 from ..imaging.light import ImageLight
 from ..populations.background import BackgroundModel
+from ..populations.scaling_relations import SUN_ABSOLUTE_MAGNITUDE_R, SizeLuminosity, StellarToHaloMass
 from ..populations.stamps import load_stamps
 from ..populations.galaxies import LensLightModel, PointSourceColours, SourceModel
 from ..populations.negatives import lookalike_light
@@ -301,6 +302,9 @@ class PopulationSampler:
             return {b: base + (0.0 if b == ref else v[f"{prefix}.{b}"]) for b in band_names}
 
         lens_extra = dict(g.composite_truth)
+        deflector = g.deflector
+        if recipe.lens.subhalos is not None and recipe.lens.subhalos.light and deflector.get("subhalos"):
+            deflector = dict(deflector, subhalos=tuple(self._satellite(h, z_lens) for h in deflector["subhalos"]))
         if g.light is not None:
             light = g.light
             lens_mags, lens_r_e, lens_q, lens_angle = light.magnitudes, light.half_light_radius, light.q, light.angle
@@ -411,7 +415,7 @@ class PopulationSampler:
                         "source_in_front" if z_source <= z_lens else "missed_caustics")
         system = System(
             system_id=int(system_id), grid_cell=g.cell, system_class=system_class, ra=ra, dec=dec, z_lens=z_lens,
-            z_source=z_source, velocity_dispersion=g.sigma, einstein_radius=theta_e, **g.deflector,
+            z_source=z_source, velocity_dispersion=g.sigma, einstein_radius=theta_e, **deflector,
             line_of_sight=g.line_of_sight, second_source=second,
             cosmology=self.cosmology if (g.line_of_sight or second is not None) else None,
             lens_magnitudes=lens_mags, lens_half_light_radius=lens_r_e,
@@ -428,6 +432,21 @@ class PopulationSampler:
         if self._neighbours is not None:
             system = dataclasses.replace(system, neighbours=self._draw_neighbours(system, streams["neighbours"]))
         return system, g.rejections
+
+    def _satellite(self, subhalo: Subhalo, z_lens: float) -> Subhalo:
+        """A subhalo with its satellite galaxy: stellar mass from its mass (Moster et al. 2013;
+        the truncated mass, below the infall mass the relation was fitted to, so faint), luminosity
+        from the lens's mass-to-light ratio, magnitudes through the lens's template, size from the
+        late-type relation of Shen et al. (2003; it bends for dwarfs), an exponential disk."""
+        stellar = float(SATELLITE_STELLAR_MASS.stellar_mass(subhalo.mass, z_lens))
+        luminosity = stellar / self.recipe.lens.light.scaling.mass_to_light
+        absolute = SUN_ABSOLUTE_MAGNITUDE_R - 2.5 * math.log10(luminosity)
+        k = self.lens_light_model.k.at(z_lens)
+        modulus = float(self.distances.distmod(z_lens))
+        radius_kpc = 10 ** float(SATELLITE_SIZES.mean_log_radius(absolute, z_lens))
+        radius = radius_kpc / (float(self.distances.angular_diameter_distance(z_lens)) * 1e3) * ARCSEC_PER_RADIAN
+        return dataclasses.replace(subhalo, magnitudes={b: absolute + modulus + k[b] for b in k},
+                                   stellar_mass=stellar, half_light_radius=radius)
 
     def _stamp(self, index: int) -> dict:
         """The System fields of catalogue stamp ``index`` (its light profile made once per process)."""
@@ -477,6 +496,8 @@ class PopulationSampler:
 
 
 GALSIM_SERSIC_INDICES = (0.3, 6.2)  # the Sersic indices GalSim draws
+SATELLITE_STELLAR_MASS = StellarToHaloMass()
+SATELLITE_SIZES = SizeLuminosity()
 
 
 def knots_following_the_disk(n: int, half_light_radius: float, sersic_index: float, q: float, angle: float,
