@@ -24,9 +24,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["RESAMPLING_KERNELS", "resampling_weights", "CoaddKernel", "coadd_kernel", "coadd_noise"]
+__all__ = ["resampling_weights", "CoaddKernel", "coadd_kernel", "coadd_noise"]
 
-RESAMPLING_KERNELS = ("none", "bilinear", "lanczos3")
 _REACH = {"bilinear": 1, "lanczos3": 3}  # taps j = 1 - reach .. reach
 
 

@@ -303,7 +303,7 @@ class PopulationSampler:
 
         lens_extra = dict(g.composite_truth)
         deflector = g.deflector
-        if recipe.lens.subhalos is not None and recipe.lens.subhalos.light and deflector.get("subhalos"):
+        if recipe.lens.subhalos.light and deflector.get("subhalos"):
             deflector = dict(deflector, subhalos=tuple(self._satellite(h, z_lens) for h in deflector["subhalos"]))
         if g.light is not None:
             light = g.light
