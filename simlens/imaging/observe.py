@@ -236,10 +236,10 @@ class ObservedBand:
         signal = self.lensed_source + self.lens_light
         return signal if self.neighbours is None else signal + self.neighbours
 
-    @property
+    @functools.cached_property
     def variance(self) -> np.ndarray:
         """Expected per-pixel noise variance (ADU^2): Poisson of sky + signal and read noise, times
-        the coadd's resampling factor."""
+        the coadd's resampling factor (computed once: the mask, the arc S/N and the files use it)."""
         return unresampled_variance(self.band, self.signal) * self.noise_variance_factor
 
     @property
@@ -259,7 +259,7 @@ class ObservedBand:
         in white Gaussian noise; common practice in lens-finding forecasts).  Resampling a coadd
         lowers each pixel's variance but correlates it, and leaves the S/N of light spread over
         many pixels as it was, so the unresampled variance is the one used."""
-        return float(np.sqrt(np.sum(self.lensed_source**2 / unresampled_variance(self.band, self.signal))))
+        return float(np.sqrt(np.sum(self.lensed_source**2 / self.variance) * self.noise_variance_factor))
 
 
 def observe_scene(scene: Scene, band: BandConditions, noise_seed: int,
