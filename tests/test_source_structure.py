@@ -87,6 +87,9 @@ def test_a_missing_or_malformed_catalogue_is_refused(tmp_path):
     Table({"pixel_scale": [0.03], "magnitude": [23.0], "band": ["i"]}).write(tmp_path / "bad.fits")
     with pytest.raises(RecipeError, match="STAMPS"):
         parse_recipe(recipe_text('\n[source.stamps]\ncatalogue = "bad.fits"\n'), origin=str(tmp_path / "recipe.toml"))
+    Table({"pixel_scale": [0.03], "magnitude": [23.0], "band": ["i"]}).write(tmp_path / "bad.csv")
+    with pytest.raises(RecipeError, match="STAMPS"):  # a CSV table holds no stamps: one line, no traceback
+        parse_recipe(recipe_text('\n[source.stamps]\ncatalogue = "bad.csv"\n'), origin=str(tmp_path / "recipe.toml"))
 
 
 def test_random_knots_follow_the_disk_light():

@@ -79,10 +79,13 @@ def load_stamps(path: str) -> StampCatalogue:
     if "stamp" in table.colnames:
         cube = np.asarray(table["stamp"], dtype=float)
     else:
-        with fits.open(path, memmap=False) as hdul:
-            if "STAMPS" not in hdul:
-                raise SimlensError(f"{path}: needs a 'stamp' column or an image HDU named STAMPS")
-            cube = np.asarray(hdul["STAMPS"].data, dtype=float)
+        try:
+            with fits.open(path, memmap=False) as hdul:
+                cube = np.asarray(hdul["STAMPS"].data, dtype=float) if "STAMPS" in hdul else None
+        except (OSError, ValueError, TypeError):  # not FITS (a CSV or ECSV table)
+            cube = None
+        if cube is None:
+            raise SimlensError(f"{path}: needs a 'stamp' column or an image HDU named STAMPS")
     if cube.ndim != 3 or cube.shape[0] != len(table):
         raise SimlensError(f"{path}: the stamps must be {len(table)} 2-d images (one per row); got shape {cube.shape}")
     if min(cube.shape[1:]) < 4:
