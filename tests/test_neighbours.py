@@ -154,3 +154,18 @@ def test_crowded_cutouts_are_a_function_of_the_system_id():
     assert again[0].neighbours == first[5].neighbours and again[1].neighbours == first[2].neighbours
     assert again[3].neighbours == first[0].neighbours
     assert first[0].neighbours != first[1].neighbours
+
+
+def test_the_realistic_recipe_renders_crowded_coadds_through_optics(tmp_path):
+    # recipes/survey_realistic.toml: neighbours drawn through a PSF with optics (GalSim evaluates
+    # that convolution only by drawing it), coadd noise, bulges, knots, satellites, all at once
+    from pathlib import Path
+
+    recipe = simlens.load_recipe(Path(__file__).parents[1] / "recipes" / "survey_realistic.toml").with_overrides(count=2)
+    simlens.run(recipe, tmp_path / "run")
+    with fits.open(next((tmp_path / "run" / "shards").glob("*.fits"))) as hdul:
+        truth, header = hdul["TRUTH"].data, hdul["IMAGES"].header
+        assert np.all(np.isfinite(hdul["IMAGES"].data)) and hdul["NEIGHBOURS"].data.shape == hdul["IMAGES"].data.shape
+    ccd = (truth["sky_level_r"] * 4.0 + 7.0**2) / 4.0**2  # the CCD equation (gain 4, read noise 7)
+    assert np.all(truth["sky_variance_r"] < 0.9 * ccd)  # resampled: below it
+    assert header["NAXIS1"] == 64

@@ -83,8 +83,7 @@ def drawn_together(objects: BackgroundObjects, bands: tuple[BandConditions, ...]
     EDGE_NOISE_FRACTION of one pixel's noise sigma in every band (no visible edge)."""
     together = np.ones(len(objects), bool)
     for band in bands:
-        edge = PSF_RADIUS_IN_FWHM * major_axis_fwhm(band)
-        per_pixel = psf_profile(band).xValue(galsim.PositionD(edge, 0.0)) * band.pixel_scale**2  # of unit flux
+        per_pixel = _edge_per_pixel(band)  # of unit flux
         flux = band.counts_from_magnitude(np.asarray(objects.magnitudes[band.name], float))
         together &= per_pixel * flux <= EDGE_NOISE_FRACTION * band.background_sigma
     return together
@@ -127,6 +126,18 @@ def draw_objects(objects: BackgroundObjects, bands: tuple[BandConditions, ...], 
             draw_alone(canvas, alone, band)
             images[b] = canvas.array
     return images
+
+
+def _edge_per_pixel(band: BandConditions) -> float:
+    """The light per pixel of a unit-flux PSF where its kernel ends (PSF_RADIUS_IN_FWHM major-axis
+    FWHM from the centre, along +x)."""
+    edge = PSF_RADIUS_IN_FWHM * major_axis_fwhm(band)
+    profile = psf_profile(band)
+    if not band.psf_optics:
+        return profile.xValue(galsim.PositionD(edge, 0.0)) * band.pixel_scale**2
+    # GalSim evaluates a convolution with the optics only by drawing it: one pixel at the edge
+    pixel = profile.shift(-edge, 0.0).drawImage(nx=1, ny=1, scale=band.pixel_scale, method="no_pixel")
+    return float(pixel.array[0, 0])
 
 
 def enclosed_radius(half_light_radius: float, sersic_index: float, fraction: float) -> float:
