@@ -6,7 +6,7 @@
     simlens verify RUN_DIR
     simlens score RUN_DIR SCORES (--threshold T | --fpr F | --fp-density D) [--by COLUMN ...] [--pair X Y]
                   [--match-radius ARCSEC]
-    simlens inject IMAGE.fits --recipe RECIPE --lenses CATALOG [--psf PSF.fits] [--out DIR]
+    simlens inject IMAGE.fits [IMAGE.fits ...] --recipe RECIPE --lenses CATALOG [--bands g,r,i] [--psf PSF.fits] [--out DIR]
     simlens gallery RUN_DIR [--where "COLUMN OP VALUE" ...] [--missed SCORES --threshold T] [--sort COLUMN]
 
 Every error prints one line (``simlens: error: ...``), never a traceback unless ``--debug`` is given.
@@ -183,13 +183,40 @@ def _inject(args) -> int:
     from .injection import inject
 
     recipe = load_recipe(args.recipe).with_overrides(seed=args.seed)
-    out = Path(args.out) if args.out else Path("outputs") / f"inject_{Path(args.image).stem}"
-    result = inject(args.image, recipe, args.lenses, out=out, psf_path=args.psf, band=args.band, gain=args.gain,
-                    zero_point=args.zero_point, full_image=args.full_image, overwrite=args.overwrite)
-    print(f"injected {len(result.truth)} lensed sources into a copy of {args.image}; wrote {out}")
+    out = Path(args.out) if args.out else Path("outputs") / f"inject_{Path(args.images[0]).stem}"
+    bands = [b.strip() for b in args.bands.split(",") if b.strip()] if args.bands else None
+    images = args.images[0] if len(args.images) == 1 else args.images
+    result = inject(images, recipe, args.lenses, out=out, bands=bands, psf=_per_band_option(args.psf, "--psf", str),
+                    gain=_per_band_option(args.gain, "--gain", float),
+                    zero_point=_per_band_option(args.zero_point, "--zero-point", float),
+                    full_image=args.full_image, overwrite=args.overwrite)
+    print(f"injected {len(result.truth)} lensed sources into copies of the images of band(s) "
+          f"{result.truth.meta['bands'].replace(',', ', ')}; wrote {out}")
     for f in result.files:
         print(f"  {f}")
     return 0
+
+
+def _per_band_option(text, option, kind):
+    """An option's value for every band (``2.5``) or per band (``g=2.5,r=2.4``)."""
+    if text is None:
+        return None
+    if "=" not in text:
+        return _option_value(text, option, kind)
+    values = {}
+    for item in text.split(","):
+        band, sep, value = item.partition("=")
+        if not sep or not band.strip():
+            raise SimlensError(f"{option} {text!r}: give one value, or band=value pairs separated by commas")
+        values[band.strip()] = _option_value(value.strip(), option, kind)
+    return values
+
+
+def _option_value(text, option, kind):
+    try:
+        return kind(text)
+    except ValueError:
+        raise SimlensError(f"{option}: {text!r} is not a number") from None
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -225,17 +252,21 @@ def build_parser() -> argparse.ArgumentParser:
     verify.set_defaults(func=_verify)
 
     inj = verbs.add_parser("inject", help="add lensed sources behind real galaxies of a FITS image (a copy)")
-    inj.add_argument("image", help="single-band FITS image with a celestial WCS")
+    inj.add_argument("images", nargs="+", metavar="IMAGE",
+                     help="FITS image(s) with a celestial WCS: one per band, or one file holding every band "
+                          "(HDUs named after the bands); variance/weight and mask planes beside them are updated")
     inj.add_argument("--recipe", required=True, help="recipe for the sources (and the default PSF)")
     inj.add_argument("--lenses", required=True, help="catalogue: ra, dec, z_lens, velocity_dispersion "
                                                      "[, mass_q, mass_angle] (CSV, ECSV or FITS), or 'auto' "
                                                      "to select bright early-type-like galaxies in the image")
     inj.add_argument("--psf", help="PSF image (odd sides, the image's pixels), or 'stars' for an empirical PSF "
-                                   "from the image's own stars (default: the recipe band's PSF)")
+                                   "from the image's own stars (default: the recipe band's PSF); per band "
+                                   "as g=PSF_g.fits,r=stars")
     inj.add_argument("--out", help="output folder (default: outputs/inject_<image stem>)")
-    inj.add_argument("--band", help="recipe band of the image (default: the reference band)")
-    inj.add_argument("--gain", type=float, help="electrons per image unit (default: header GAIN)")
-    inj.add_argument("--zero-point", type=float, help="AB magnitude of one image unit (default: header MAGZERO)")
+    inj.add_argument("--bands", "--band", help="recipe bands of the images, comma-separated, in their order "
+                                               "(default: the reference band)")
+    inj.add_argument("--gain", help="electrons per image unit, or per band as g=4,r=3.8 (default: header GAIN)")
+    inj.add_argument("--zero-point", help="AB magnitude of one image unit, or per band (default: header MAGZERO)")
     inj.add_argument("--seed", type=int, help="random seed (overrides the recipe's)")
     inj.add_argument("--full-image", action="store_true", help="also write the whole injected and added-flux images")
     inj.add_argument("--overwrite", action="store_true", help="write into a non-empty output folder")

@@ -95,7 +95,7 @@ def test_a_manifest_entry_through_a_symbolic_link_is_refused(small_recipe, tmp_p
 def test_inject_overwrite_replaces_only_an_earlier_injection(tmp_path):
     image = synthetic_image(tmp_path)
     recipe = parse_recipe(SMALL_RECIPE)
-    args = dict(psf_path=tmp_path / "psf.fits")
+    args = dict(psf=tmp_path / "psf.fits")
     before = _user_folder(tmp_path / "mine")
     with pytest.raises(SimlensError, match="holds no simlens injection"):
         inject(image, recipe, tmp_path / "lenses.csv", out=tmp_path / "mine", overwrite=True, **args)

@@ -55,12 +55,12 @@ def test_injected_flux_matches_the_truth_and_the_input_is_untouched(tmp_path):
     image = synthetic_image(tmp_path)
     before = hashlib.sha256(image.read_bytes()).hexdigest()
     recipe = parse_recipe(SMALL_RECIPE.replace("cutout_size = 32", "cutout_size = 41"))
-    inject(image, recipe, tmp_path / "lenses.csv", out=tmp_path / "out", psf_path=tmp_path / "psf.fits",
+    inject(image, recipe, tmp_path / "lenses.csv", out=tmp_path / "out", psf=tmp_path / "psf.fits",
            full_image=True)
     assert hashlib.sha256(image.read_bytes()).hexdigest() == before  # the input file is never modified
     original = fits.getdata(image).astype(float)
-    injected = fits.getdata(tmp_path / "out" / "injected.fits").astype(float)
-    added = fits.getdata(tmp_path / "out" / "added.fits").astype(float)
+    injected = fits.getdata(tmp_path / "out" / "injected_r.fits").astype(float)
+    added = fits.getdata(tmp_path / "out" / "added_r.fits").astype(float)
     truth = Table.read(tmp_path / "out" / "truth.ecsv")
     assert len(truth) == 3
     # Reference: photutils aperture photometry of (injected - input) against the noiseless added
@@ -71,8 +71,8 @@ def test_injected_flux_matches_the_truth_and_the_input_is_untouched(tmp_path):
         expected = aperture_photometry(added, aperture)["aperture_sum"][0]
         sigma = np.sqrt(expected / 4.0)  # sqrt(N electrons) / gain
         assert measured == pytest.approx(expected, abs=4 * sigma + 0.05)
-        assert expected == pytest.approx(row["added_flux"], rel=0.05)  # most of the light within 18 px
-        assert row["added_flux"] > 0
+        assert expected == pytest.approx(row["added_flux_r"], rel=0.05)  # most of the light within 18 px
+        assert row["added_flux_r"] > 0
     # sky positions round-trip through the image's WCS (astropy.wcs) to better than 0.05 pixel
     x, y = WCS(fits.getheader(image)).world_to_pixel_values(truth["ra"], truth["dec"])
     assert np.max(np.hypot(x - truth["x_pixel"], y - truth["y_pixel"])) < 0.05
@@ -87,9 +87,9 @@ def test_the_added_light_is_centred_on_the_lens(tmp_path):
         "q = { uniform = [0.6, 1.0] }", "q = 1.0").replace("gamma = { uniform = [0.0, 0.05] }", "gamma = 0.0")
     text = text.replace("[source.clumps]", "[source.position]\nx = 0.0\ny = 0.0\n\n[source.clumps]")
     text = text.replace("count = { choice = [0, 2] }", "count = 0")
-    inject(image, parse_recipe(text), tmp_path / "lenses.csv", out=tmp_path / "out", psf_path=tmp_path / "psf.fits",
+    inject(image, parse_recipe(text), tmp_path / "lenses.csv", out=tmp_path / "out", psf=tmp_path / "psf.fits",
            full_image=True)
-    added = fits.getdata(tmp_path / "out" / "added.fits").astype(float)
+    added = fits.getdata(tmp_path / "out" / "added_r.fits").astype(float)
     truth = Table.read(tmp_path / "out" / "truth.ecsv")
     yy, xx = np.mgrid[:added.shape[0], :added.shape[1]]
     for row in truth:
@@ -122,7 +122,7 @@ def test_every_lens_takes_its_catalogue_values_from_one_sampler(tmp_path):
 
     image = synthetic_image(tmp_path)
     recipe = parse_recipe(SMALL_RECIPE)
-    result = inject(image, recipe, tmp_path / "lenses.csv", out=tmp_path / "out", psf_path=tmp_path / "psf.fits")
+    result = inject(image, recipe, tmp_path / "lenses.csv", out=tmp_path / "out", psf=tmp_path / "psf.fits")
     cosmo = recipe.cosmology.build()
     for row in result.truth:
         ratio = (cosmo.angular_diameter_distance(row["z_lens"], row["z_source"])
@@ -142,10 +142,10 @@ def test_an_unlensed_source_adds_its_catalogue_flux(tmp_path):
     text = SMALL_RECIPE.replace("cutout_size = 32", "cutout_size = 41").replace(
         "[source.clumps]", "[source.position]\nx = 0.0\ny = 0.0\n\n[source.clumps]").replace(
         "count = { choice = [0, 2] }", "count = 0")
-    result = inject(image, parse_recipe(text), tmp_path / "one.csv", out=tmp_path / "out", psf_path=tmp_path / "psf.fits")
+    result = inject(image, parse_recipe(text), tmp_path / "one.csv", out=tmp_path / "out", psf=tmp_path / "psf.fits")
     row = result.truth[0]
     expected = 10 ** (-0.4 * (row["source_mag_r"] - 30.0))
-    assert row["added_flux_unclipped"] == pytest.approx(expected, rel=0.01)
+    assert row["added_flux_unclipped_r"] == pytest.approx(expected, rel=0.01)
 
 
 def test_empirical_psf_from_the_image_stars_recovers_the_fwhm(tmp_path):
@@ -189,9 +189,9 @@ def test_inject_with_an_empirical_psf_records_it(tmp_path):
     starry = tmp_path / "starry.fits"
     fits.PrimaryHDU(data=data.astype(np.float32), header=header).writeto(starry)
     recipe = parse_recipe(SMALL_RECIPE.replace("cutout_size = 32", "cutout_size = 41"))
-    result = inject(starry, recipe, tmp_path / "lenses.csv", out=tmp_path / "out", psf_path="stars")
-    assert "psf.fits" in result.files and "empirical" in result.truth.meta["psf"]
-    assert fits.getdata(tmp_path / "out" / "psf.fits").sum() == pytest.approx(1.0, rel=1e-5)
+    result = inject(starry, recipe, tmp_path / "lenses.csv", out=tmp_path / "out", psf="stars")
+    assert "psf_r.fits" in result.files and "empirical" in result.truth.meta["psf_r"]
+    assert fits.getdata(tmp_path / "out" / "psf_r.fits").sum() == pytest.approx(1.0, rel=1e-5)
 
 
 def test_automatic_selection_finds_the_early_type_galaxies(tmp_path):
@@ -252,6 +252,6 @@ def test_blank_pixels_under_a_lens_are_reported_per_lens(tmp_path, capsys):
     assert main(["inject", str(holed), "--recipe", str(recipe_path), "--lenses", str(tmp_path / "lenses.csv"),
                  "--out", str(tmp_path / "out"), "--psf", str(tmp_path / "psf.fits")]) == 0
     err = capsys.readouterr().err
-    assert "simlens: warning:" in err and "lens 0 (100 pixels)" in err and "lens 1" not in err
+    assert "simlens: warning:" in err and "lens 0 in r (100 pixels)" in err and "lens 1" not in err
     truth = Table.read(tmp_path / "out" / "truth.ecsv")
-    assert list(truth["blank_pixels"]) == [100, 0, 0]
+    assert list(truth["blank_pixels_r"]) == [100, 0, 0]
