@@ -219,3 +219,22 @@ def test_physical_recipe_draws_consistent_systems():
     # lens light follows the mass's orientation within the scatter (10 deg)
     d_angle = np.array([s.lens_angle - s.mass_angle for s in systems])
     assert np.std(d_angle) < 20.0
+
+
+def test_lens_light_follows_the_mass_with_the_slacs_scatter():
+    # Koopmans et al. (2006, ApJ 649, 599; from memory): q_SIE / q_light = 0.99 +- 0.11 and the mass
+    # and light major axes aligned within about 10 degrees; simlens draws q_mass / q_light ~ N(1,
+    # 0.11) and an angle offset ~ N(0, 10 deg).  4,000 galaxies with q_mass = 0.5 (no clipping).
+    from simlens.cosmology import DistanceTable
+    from simlens.populations.galaxies import LensLightModel
+
+    recipe = parse_recipe(PHYSICAL_RECIPE)
+    model = LensLightModel(recipe.lens.light.scaling, DistanceTable(recipe.cosmology.build()), {"r": "LSST_r"}, ".")
+    n = 4000
+    normals = np.random.default_rng(4).standard_normal((n, LensLightModel.NORMALS))
+    lights = model.draw_many(np.full(n, 250.0), np.full(n, 0.4), np.full(n, 0.5), np.full(n, 30.0), normals)
+    ratio = 0.5 / np.array([g.q for g in lights])
+    offset = np.array([g.angle for g in lights]) - 30.0
+    assert ratio.mean() == pytest.approx(1.0, abs=4 * 0.11 / math.sqrt(n))
+    assert ratio.std() == pytest.approx(0.11, rel=0.05)
+    assert offset.std() == pytest.approx(10.0, rel=0.05) and abs(offset.mean()) < 4 * 10.0 / math.sqrt(n)

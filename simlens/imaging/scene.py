@@ -19,7 +19,7 @@ from ..lensing.multiplane import MultiPlaneLens
 from ..truth.record import System
 from .light import CompositeLight, LightProfile, Sersic
 
-__all__ = ["Scene", "build_scene", "lens_galaxy", "CLUMP_SERSIC_INDEX"]
+__all__ = ["Scene", "build_scene", "lens_galaxy", "lens_galaxy_components", "CLUMP_SERSIC_INDEX"]
 
 CLUMP_SERSIC_INDEX = 0.5  # Gaussian clumps
 SATELLITE_SERSIC_INDEX = 1.0  # dwarf satellites: exponential disks (common practice)
@@ -54,17 +54,30 @@ def build_scene(system: System) -> Scene:
                  second_source_light={b: _second_source_light(system, b) for b in names} if second else None)
 
 
-def lens_galaxy(system: System, band: str) -> Sersic:
+def lens_galaxy_components(system: System, band: str) -> tuple[Sersic, ...]:
+    """The Sersic components of the lens galaxy's own light in ``band`` (counts): one, or a core
+    and an envelope (``[lens.light.envelope]``); no look-alike features."""
+    counts = system.band(band).counts_from_magnitude
+    envelope = system.lens_envelope
+    if envelope is None:
+        return (Sersic(flux=counts(system.lens_magnitudes[band]), half_light_radius=system.lens_half_light_radius,
+                       sersic_index=system.lens_sersic_index, q=system.lens_q, angle=system.lens_angle),)
+    return (Sersic(flux=counts(envelope.core_magnitudes[band]), half_light_radius=envelope.core_half_light_radius,
+                   sersic_index=system.lens_sersic_index, q=system.lens_q, angle=system.lens_angle),
+            Sersic(flux=counts(envelope.magnitudes[band]), half_light_radius=envelope.half_light_radius,
+                   sersic_index=envelope.sersic_index, q=envelope.q, angle=system.lens_angle))
+
+
+def lens_galaxy(system: System, band: str) -> LightProfile:
     """The lens galaxy's own light in ``band`` (counts), without any look-alike features."""
-    return Sersic(flux=system.band(band).counts_from_magnitude(system.lens_magnitudes[band]),
-                  half_light_radius=system.lens_half_light_radius,
-                  sersic_index=system.lens_sersic_index, q=system.lens_q, angle=system.lens_angle)
+    parts = lens_galaxy_components(system, band)
+    return parts[0] if len(parts) == 1 else CompositeLight(parts)
 
 
 def _lens_light(system: System, band: str) -> LightProfile:
     """The lens galaxy, any look-alike features, and the satellites of its subhalos."""
     conditions = system.band(band)
-    parts = (lens_galaxy(system, band),)
+    parts = lens_galaxy_components(system, band)
     parts += tuple(shape.with_flux(conditions.counts_from_magnitude(mags[band])) for shape, mags in system.extra_light)
     parts += tuple(Sersic(flux=conditions.counts_from_magnitude(h.magnitudes[band]), half_light_radius=h.half_light_radius,
                           sersic_index=SATELLITE_SERSIC_INDEX, center=(h.x, h.y))

@@ -18,9 +18,11 @@ from .photometry import kcorrection
 from .scaling_relations import (SUN_ABSOLUTE_MAGNITUDE_R, FaberJackson, FundamentalPlane, NumberCounts,
                                 RedshiftGivenMagnitude, SizeLuminosity)
 
-__all__ = ["LensLight", "LensLightModel", "SourcePhotometry", "SourceModel", "PointSourceColours"]
+__all__ = ["LensLight", "LensLightModel", "SourcePhotometry", "SourceModel", "PointSourceColours",
+           "core_half_light_radius", "split_core_and_envelope"]
 
 MIN_LIGHT_AXIS_RATIO = 0.2
+MIN_AXIS_RATIO_RATIO = 0.05  # q_mass / q_light, kept positive
 
 
 class _BandK:
@@ -52,6 +54,45 @@ class _BandK:
         i = np.minimum(f.astype(np.int64), self._z.size - 2)
         w = f - i
         return self._k[:, i] * (1.0 - w) + self._k[:, i + 1] * w
+
+
+def core_half_light_radius(half_light_radius: float, fraction: float, ratio: float, n_core: float,
+                           n_envelope: float) -> float:
+    """The core's R_e of a two-Sersic galaxy whose envelope (share ``fraction`` of the light, R_e
+    ``ratio`` times the core's) and core together have half their light within ``half_light_radius``.
+
+    A Sersic profile holds the share P(2n, b_n (R / R_e)^(1/n)) of its light within R (P the
+    regularised lower incomplete gamma function; Graham & Driver 2005, eq. 2), in circularised radii,
+    so exactly so in ellipses where both share one axis ratio.  The root lies between R_e / ratio
+    (the envelope alone encloses half) and R_e (the core alone does)."""
+    from scipy import optimize, special
+
+    b_core, b_env = special.gammaincinv(2.0 * n_core, 0.5), special.gammaincinv(2.0 * n_envelope, 0.5)
+
+    def excess(log_core):
+        core = math.exp(log_core)
+        inner = special.gammainc(2.0 * n_core, b_core * (half_light_radius / core) ** (1.0 / n_core))
+        outer = special.gammainc(2.0 * n_envelope, b_env * (half_light_radius / (ratio * core)) ** (1.0 / n_envelope))
+        return (1.0 - fraction) * inner + fraction * outer - 0.5
+
+    if ratio == 1.0:
+        return half_light_radius
+    low, high = math.log(half_light_radius / ratio), math.log(half_light_radius)
+    return math.exp(optimize.brentq(excess, low, high, xtol=1e-12, rtol=1e-12))
+
+
+def split_core_and_envelope(magnitudes: Mapping[str, float], reference: str, fraction: float,
+                            offsets: Mapping[str, float]) -> tuple[dict, dict]:
+    """``(core, envelope)`` magnitudes per band: the envelope holds ``fraction`` of the light in
+    ``reference`` and its colour is the core's plus ``offsets[band]``, the two adding up to
+    ``magnitudes`` in every band (the galaxy's total colours unchanged)."""
+    core, envelope = {}, {}
+    for band, total in magnitudes.items():
+        # envelope / core flux ratio in this band: f / (1 - f) * 10^(-0.4 offset)
+        ratio = fraction / (1.0 - fraction) * 10 ** (-0.4 * (0.0 if band == reference else offsets[band]))
+        core[band] = total + 2.5 * math.log10(1.0 + ratio)
+        envelope[band] = core[band] - 2.5 * math.log10(ratio)
+    return core, envelope
 
 
 def _arcsec(size_kpc: float, d_a_mpc: float) -> float:
@@ -97,7 +138,8 @@ class LensLightModel:
         r_kpc = 10 ** (plane.mean_log_radius(sigma, absolute) + plane.scatter * normals[:, 1])
         modulus = self.distances.distmod(z)
         k = self.k.at_many(z)
-        q = np.clip(np.asarray(mass_q, dtype=float) + s.q_scatter * normals[:, 2], MIN_LIGHT_AXIS_RATIO, 1.0)
+        ratio = np.maximum(1.0 + s.q_scatter * normals[:, 2], MIN_AXIS_RATIO_RATIO)  # q_mass / q_light
+        q = np.clip(np.asarray(mass_q, dtype=float) / ratio, MIN_LIGHT_AXIS_RATIO, 1.0)
         angle = np.asarray(mass_angle, dtype=float) + s.angle_scatter * normals[:, 3]
         luminosity = 10 ** (-0.4 * (absolute - SUN_ABSOLUTE_MAGNITUDE_R))
         stellar = luminosity * s.mass_to_light if s.mass_to_light is not None else np.full(z.shape, math.nan)

@@ -111,13 +111,20 @@ def _check_colours(recipe: Recipe) -> None:
                   ("source.clumps.colors", source.clumps.colors, False)]
     if source.second is not None:
         color_sets.append(("source.second.colors", source.second.colors, False))
+    envelope = lens.light.envelope
+    if envelope is not None:  # offsets: a band left out has none
+        color_sets.append(("lens.light.envelope.color_offsets", envelope.color_offsets, None))
+        if lens.mass.model == "stars_and_halo":
+            raise RecipeError(origin, "lens.light.envelope", "is not supported with lens.mass.model = "
+                              "'stars_and_halo' (its stars follow one Sersic of the lens light)",
+                              "remove [lens.light.envelope], or use another mass model")
     for path, colors, required in color_sets:
         for band in colors:
             if band not in others:
                 why = "is the reference band (its colour is 0 by definition)" if band == ref else "is not a band"
                 raise RecipeError(origin, f"{path}.{band[:80]}", why,
                                   "the bands " + ", ".join(repr(n) for n in others) if others else "no colours")
-        if required or colors:
+        if required or (colors and required is not None):
             missing = [n for n in others if n not in colors]
             if missing:
                 raise RecipeError(origin, path, f"has no colour for band {missing[0]!r}",

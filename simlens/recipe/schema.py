@@ -339,10 +339,31 @@ class LensLightScalingSettings:
     plane_b: float = number(0.30, low=0.2, low_open=True, high=1.0, doc="fundamental plane b (mu_e in mag/arcsec^2)")
     plane_c: float = number(-8.778, low=-30, high=30, doc="fundamental plane c (R_e in kpc)")
     plane_scatter: float = number(0.1, low=0, high=1, doc="scatter of log10 R_e (dex)")
-    q_scatter: float = number(0.1, low=0, high=1, doc="light axis ratio = mass axis ratio + N(0, this)")
-    angle_scatter: float = number(10.0, low=0, high=90, unit="deg", doc="light angle = mass angle + N(0, this)")
+    q_scatter: float = number(0.11, low=0, high=0.5,
+                              doc="q_mass / q_light ~ N(1, this) (Koopmans et al. 2006, SLACS: 0.99 +- 0.11, "
+                                  "from memory)")
+    angle_scatter: float = number(10.0, low=0, high=90, unit="deg",
+                                  doc="light angle = mass angle + N(0, this) (Koopmans et al. 2006: mass and "
+                                      "light aligned within about 10 deg, from memory)")
     mass_to_light: float = number(optional=True, low=0, low_open=True, high=100,
                                   doc="stellar M/L in the rest filter (M_sun/L_sun), for the stellar-mass truth")
+
+
+@dataclass(frozen=True, kw_only=True)
+class LensEnvelopeSettings:
+    fraction: Parameter = parameter(0.5, low=0, low_open=True, high=1, high_open=True,
+                                    doc="envelope share of the lens light in the reference band (about half in "
+                                        "multi-component fits of massive ellipticals, Huang et al. 2013, from memory)")
+    half_light_radius_ratio: Parameter = parameter(4.0, low=1, high=30,
+                                                   doc="envelope R_e over the core's; together they keep the "
+                                                       "galaxy's drawn R_e")
+    sersic_index: Parameter = parameter(1.0, low=0.3, high=8.0, doc="envelope Sersic n (the core takes lens.light's)")
+    q: Parameter = parameter(optional=True, low=0, low_open=True, high=1,
+                             doc="envelope axis ratio (default: the lens light's)")
+    color_offsets: dict = band_colors(doc="envelope colour minus the core's, per non-reference band (negative: "
+                                          "bluer outskirts; g = -0.2 with r the reference and the other defaults "
+                                          "gives d(g-r)/dlog R = -0.11, near the -0.1 of Tortora et al. 2010, "
+                                          "from memory); the galaxy's total colours stay the drawn ones")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -357,6 +378,9 @@ class LensLightSettings:
     sersic_index: Parameter = parameter(4.0, low=0.3, high=8.0, doc="Sersic n")
     q: Parameter = parameter(0.8, low=0, low_open=True, high=1, doc="light axis ratio")
     angle: Parameter = parameter(0.0, low=-360, high=360, unit="deg", doc="light major-axis angle, CCW from +x")
+    envelope: LensEnvelopeSettings = table(LensEnvelopeSettings, optional=True,
+                                           doc="two-component light: a compact core (the Sersic above) and an "
+                                               "extended envelope, with a colour gradient")
 
 
 @dataclass(frozen=True, kw_only=True)

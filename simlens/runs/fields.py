@@ -58,7 +58,7 @@ from astropy.io import fits
 from ..errors import reported_as
 from ..populations.background import BackgroundModel
 from ..cosmology import DistanceTable
-from ..imaging.scene import lens_galaxy
+from ..imaging.scene import lens_galaxy_components
 from ..imaging.many_objects import draw_alone, draw_beyond, draw_together, drawn_together, light_reach
 from ..imaging.observe import add_noise, effective_psf_image
 from ..output.atomic import atomic_path
@@ -115,13 +115,15 @@ def lens_light_beyond_stamps(galaxies: list, bands: tuple, size: int, stamp: int
 
 
 def lens_galaxies(lenses: list, bands: tuple) -> list:
-    """``(x0, y0, shape, fluxes)`` of each lens's galaxy, for :func:`lens_light_beyond_stamps`."""
+    """``(x0, y0, shape, fluxes)`` of each Sersic component of each lens's galaxy, for
+    :func:`lens_light_beyond_stamps`."""
     out = []
     for x0, y0, rendered in lenses:
-        light = [lens_galaxy(rendered.system, band.name) for band in bands]
-        fluxes = [profile.flux for profile in light]
-        if max(fluxes) > 0:
-            out.append((x0, y0, light[int(np.argmax(fluxes))], fluxes))
+        by_band = [lens_galaxy_components(rendered.system, band.name) for band in bands]
+        for part in zip(*by_band):
+            fluxes = [profile.flux for profile in part]
+            if max(fluxes) > 0:
+                out.append((x0, y0, part[int(np.argmax(fluxes))], fluxes))
     return out
 
 

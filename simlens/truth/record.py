@@ -14,7 +14,21 @@ from typing import Mapping
 
 from .conditions import BandConditions
 
-__all__ = ["System", "Clump", "Subhalo", "LineOfSightGalaxy", "SecondSource"]
+__all__ = ["System", "Clump", "Subhalo", "LineOfSightGalaxy", "SecondSource", "LensEnvelope"]
+
+
+@dataclass(frozen=True)
+class LensEnvelope:
+    """The lens light as two Sersics (``[lens.light.envelope]``): a compact core, with the lens
+    light's index, axis ratio and angle, and an extended envelope; magnitudes per band (AB).  The
+    system's ``lens_magnitudes`` and ``lens_half_light_radius`` are of their sum."""
+
+    core_magnitudes: Mapping[str, float]
+    core_half_light_radius: float  # arcsec, circularised
+    magnitudes: Mapping[str, float]
+    half_light_radius: float  # arcsec, circularised
+    sersic_index: float
+    q: float
 
 
 @dataclass(frozen=True)
@@ -144,6 +158,7 @@ class System:
     lensing: bool = True  # False: nothing is deflected (negatives)
     source_present: bool = True  # False: no background source (look-alikes)
     extra_light: tuple = ()  # lens-plane look-alike light: (unit-flux profile, {band: mag}) pairs
+    lens_envelope: LensEnvelope | None = None  # two-component lens light ([lens.light.envelope])
     # -- a bulge inside the source's disk ([source.bulge]), aligned with it --
     source_bulge_magnitudes: Mapping[str, float] | None = None
     source_bulge_half_light_radius: float = math.nan  # arcsec

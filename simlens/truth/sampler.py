@@ -41,13 +41,14 @@ from ..imaging.light import ImageLight
 from ..populations.background import BackgroundModel
 from ..populations.scaling_relations import SUN_ABSOLUTE_MAGNITUDE_R, SizeLuminosity, StellarToHaloMass
 from ..populations.stamps import load_stamps
-from ..populations.galaxies import LensLightModel, PointSourceColours, SourceModel
+from ..populations.galaxies import (LensLightModel, PointSourceColours, SourceModel, core_half_light_radius,
+                                    split_core_and_envelope)
 from ..populations.negatives import lookalike_light
 from ..populations.velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulation
 from ..recipe import Recipe
 from ..recipe.distributions import Fixed, Grid
 from .conditions import BandConditions
-from .record import Clump, LineOfSightGalaxy, SecondSource, Subhalo, System
+from .record import Clump, LensEnvelope, LineOfSightGalaxy, SecondSource, Subhalo, System
 from .psf import band_fwhm, band_optics, major_axis_fwhm, padding_for, psf_shear, seeing_factors
 from .streams import SYSTEM_STREAMS, grid_cell, system_streams
 
@@ -313,6 +314,8 @@ class PopulationSampler:
         else:
             lens_mags = magnitudes(v["lens.light.magnitude"], "lens.light.colors")
             lens_r_e, lens_q, lens_angle = v["lens.light.half_light_radius"], v["lens.light.q"], v["lens.light.angle"]
+        if recipe.lens.light.envelope is not None:
+            lens_extra["lens_envelope"] = self._envelope(v, lens_mags, lens_r_e, lens_q)
 
         # -- source galaxy: the anchor magnitude is the total (disk + clumps) in the anchor band --
         photometry = g.photometry
@@ -432,6 +435,18 @@ class PopulationSampler:
         if self._neighbours is not None:
             system = dataclasses.replace(system, neighbours=self._draw_neighbours(system, streams["neighbours"]))
         return system, g.rejections
+
+    def _envelope(self, v: dict, lens_mags: dict, lens_r_e: float, lens_q: float) -> LensEnvelope:
+        """The lens light split into a core and an envelope that keep its magnitudes and R_e."""
+        fraction, ratio = v["lens.light.envelope.fraction"], v["lens.light.envelope.half_light_radius_ratio"]
+        n_core, n_envelope = v["lens.light.sersic_index"], v["lens.light.envelope.sersic_index"]
+        offsets = {b: v[f"lens.light.envelope.color_offsets.{b}"] for b in self.recipe.lens.light.envelope.color_offsets}
+        core_mags, envelope_mags = split_core_and_envelope(lens_mags, self.recipe.reference_band, fraction,
+                                                           {b: offsets.get(b, 0.0) for b in lens_mags})
+        core_r_e = core_half_light_radius(lens_r_e, fraction, ratio, n_core, n_envelope)
+        return LensEnvelope(core_magnitudes=core_mags, core_half_light_radius=core_r_e, magnitudes=envelope_mags,
+                            half_light_radius=ratio * core_r_e, sersic_index=n_envelope,
+                            q=v.get("lens.light.envelope.q", lens_q))
 
     def _satellite(self, subhalo: Subhalo, z_lens: float) -> Subhalo:
         """A subhalo with its satellite galaxy: stellar mass from its mass (Moster et al. 2013;
