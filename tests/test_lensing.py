@@ -166,3 +166,41 @@ def test_supersampling_only_near_the_light_equals_supersampling_everywhere(lens,
     assert 0 < components.detailed_pixels < grid.padded_size**2 / 2  # the saving is real
     assert ours.sum() == pytest.approx(reference.sum(), rel=2e-4)
     assert np.abs(ours - reference).max() < 1e-4 * reference.max()
+
+
+def test_subhalo_counts_from_a_mass_fraction_follow_the_sis_host():
+    # With lens.subhalos.mass_fraction = f the number of subhalos is Poisson with mean f M_ann / <m>:
+    # M_ann the projected mass of an SIS (kappa = theta_E / 2 theta, SEF 1992 eq. 8.34) in the
+    # annulus and Sigma_cr = c^2 D_s / (4 pi G D_l D_ls), both integrated here with scipy and
+    # astropy, <m> of dN/dm ~ m^-1.9 by quadrature.  Summed over 60 lenses: within 4 sigma.
+    import astropy.constants as const
+    import astropy.units as u
+    from scipy import integrate
+
+    from simlens.recipe import parse_recipe
+    from simlens.truth.sampler import PopulationSampler
+
+    from .conftest import SMALL_RECIPE
+
+    text = SMALL_RECIPE.replace("[lens.shear]", "[lens.subhalos]\nmass_fraction = 0.01\nmass_min = 1e7\n"
+                                "mass_max = 1e9\n\n[lens.shear]")
+    recipe = parse_recipe(text).with_overrides(count=60)
+    cosmo = recipe.cosmology.build()
+    slope, lo, hi = -1.9, 1e7, 1e9
+    mean_mass = (integrate.quad(lambda m: m ** (slope + 1), lo, hi)[0] / integrate.quad(lambda m: m ** slope, lo, hi)[0])
+    counts, means, mass_in_subhalos, host_mass = 0, 0.0, 0.0, 0.0
+    for system in PopulationSampler(recipe).draw_many(range(60)):
+        d_l = cosmo.angular_diameter_distance(system.z_lens)
+        d_s = cosmo.angular_diameter_distance(system.z_source)
+        d_ls = cosmo.angular_diameter_distance(system.z_lens, system.z_source)
+        sigma_cr = (const.c**2 / (4 * np.pi * const.G) * d_s / (d_l * d_ls)).to(u.M_sun / u.kpc**2)
+        per_arcsec2 = (sigma_cr * (d_l * (1 * u.arcsec).to(u.rad).value) ** 2).to(u.M_sun).value
+        theta_e = system.einstein_radius
+        host = integrate.quad(lambda t: per_arcsec2 * theta_e / (2 * t) * 2 * np.pi * t, 0.5 * theta_e, 1.5 * theta_e)[0]
+        means += 0.01 * host / mean_mass
+        counts += len(system.subhalos)
+        mass_in_subhalos += sum(h.mass for h in system.subhalos)
+        host_mass += host
+        assert all(0.5 * theta_e <= np.hypot(h.x, h.y) <= 1.5 * theta_e for h in system.subhalos)
+    assert counts == pytest.approx(means, abs=4 * np.sqrt(means))
+    assert mass_in_subhalos / host_mass == pytest.approx(0.01, rel=0.15)  # the fraction itself

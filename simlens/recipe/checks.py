@@ -213,6 +213,9 @@ def _check_line_of_sight_and_subhalos(recipe: Recipe) -> None:
     if subs.annulus.support[1] >= subs.annulus_outer.support[0]:
         raise RecipeError(origin, "lens.subhalos.annulus_outer", "can be inside the inner radius (annulus)",
                           "annulus_outer above annulus for every draw")
+    if subs.mass_fraction is not None and subs.count != type(subs)().count:
+        raise RecipeError(origin, "lens.subhalos.count", "is given together with mass_fraction, which draws it",
+                          "remove count, or remove mass_fraction")
     if subs.light and recipe.lens.light.scaling is None:
         raise RecipeError(origin, "lens.subhalos.light", "needs the lens's template and mass-to-light ratio",
                           "a [lens.light.scaling] table, or light = false")

@@ -30,7 +30,7 @@ from typing import Callable, Mapping, Sequence
 import numpy as np
 
 from ..cosmology import ARCSEC_PER_RADIAN, DistanceTable, sis_einstein_radius
-from ..errors import RunError
+from ..errors import RunError, SimlensError
 from ..lensing.lens_models import LENS_MODELS, TRUTH_DEFAULTS, build_deflector, multi_plane
 from ..lensing.caustics import CUT_ANGLES, _UNIT_CIRCLE, find_caustics, inside_polygon, isothermal_caustics, polygon_area
 from ..lensing.mass.base import isothermal_hessian, rotate_back
@@ -241,18 +241,32 @@ class PopulationSampler:
     # -- per-row steps of the geometry phase ----------------------------------------------------
     def _subhalos(self, v: dict, theta_e: float, z_lens: float, z_source: float, rng) -> tuple:
         """Masses from dN/dm ~ m^slope on [mass_min, mass_max] (inverse CDF), positions uniform in
-        area in the annulus [annulus, annulus_outer] theta_E around the lens centre."""
-        n = int(round(v["lens.subhalos.count"]))
-        if n == 0 or theta_e <= 0:
-            return ()
+        area in the annulus [annulus, annulus_outer] theta_E around the lens centre; with
+        ``mass_fraction`` their number is Poisson with the mean that puts that share of the SIS
+        host's projected mass in the annulus into subhalos."""
         settings = self.recipe.lens.subhalos
+        if theta_e <= 0 or (settings.mass_fraction is None and int(round(v["lens.subhalos.count"])) == 0):
+            return ()
+        r_in, r_out = v["lens.subhalos.annulus"] * theta_e, v["lens.subhalos.annulus_outer"] * theta_e
+        sigma_cr = critical_density_arcsec2(self.distances, z_lens, z_source)  # M_sun / arcsec^2
+        if settings.mass_fraction is not None:
+            # SIS: kappa = theta_E / (2 theta), so the annulus holds pi Sigma_cr theta_E (r_out - r_in)
+            host = math.pi * sigma_cr * theta_e * (r_out - r_in)
+            mean = settings.mass_fraction * host / subhalo_mean_mass(settings)
+            if mean > MAX_MEAN_SUBHALOS:
+                raise SimlensError(f"lens.subhalos.mass_fraction = {settings.mass_fraction:g} puts {mean:.0f} subhalos "
+                                   f"on average around a lens of theta_E {theta_e:.2f}\" (more than "
+                                   f"{MAX_MEAN_SUBHALOS}); raise lens.subhalos.mass_min or lower the fraction")
+            n = int(rng.poisson(mean))
+        else:
+            n = int(round(v["lens.subhalos.count"]))
+        if n == 0:
+            return ()
         k = settings.mass_function_slope + 1.0
         lo, hi = settings.mass_min ** k, settings.mass_max ** k
         masses = (lo + rng.uniform(size=n) * (hi - lo)) ** (1.0 / k)
-        r_in, r_out = v["lens.subhalos.annulus"] * theta_e, v["lens.subhalos.annulus_outer"] * theta_e
         radii = np.sqrt(r_in**2 + rng.uniform(size=n) * (r_out**2 - r_in**2))
         phi = rng.uniform(0.0, 2.0 * math.pi, size=n)
-        sigma_cr = critical_density_arcsec2(self.distances, z_lens, z_source)  # M_sun / arcsec^2
         return tuple(_subhalo(float(m), float(r * math.cos(p)), float(r * math.sin(p)), theta_e, sigma_cr)
                      for m, r, p in zip(masses, radii, phi))
 
@@ -959,6 +973,19 @@ def _exhausted_message(system_id: int, limit: int, rejections: dict) -> str:
     return (f"selection: none of {limit} candidates for system {system_id} passed the cuts "
             f"(rejected by: {worst}); loosen the [selection] cuts or widen the populations, or raise "
             f"selection.max_candidates")
+
+
+MAX_MEAN_SUBHALOS = 1000  # the most subhalos a lens may hold on average (as lens.subhalos.count)
+
+
+def subhalo_mean_mass(settings) -> float:
+    """The mean mass of dN/dm ~ m^slope on [mass_min, mass_max] (M_sun)."""
+    a, lo, hi = settings.mass_function_slope, settings.mass_min, settings.mass_max
+
+    def moment(power):  # integral of m^power dm over the range
+        return math.log(hi / lo) if abs(power + 1.0) < 1e-12 else (hi ** (power + 1) - lo ** (power + 1)) / (power + 1)
+
+    return moment(a + 1.0) / moment(a)
 
 
 def _subhalo(mass: float, x: float, y: float, theta_e: float, sigma_cr_arcsec2: float) -> Subhalo:
