@@ -14,7 +14,8 @@ as signal-to-noise.  The subtracted panel is smoothed by a Gaussian of the PSF's
 filter of an unresolved feature: most pixels of an arc's 1-sigma mask are too faint to stand out
 one by one; the README gives the measured contrast).  Each panel is the asinh stretch of Lupton
 et al. (2004), via ``astropy.visualization.make_lupton_rgb``, its linear range a fraction of the panel's
-99.5th-percentile brightness, its softening and black level set per panel (``PANEL_STRETCH``).
+99.5th-percentile brightness (in crowded cutouts, of the pixels the neighbours leave clear), its
+softening and black level set per panel (``PANEL_STRETCH``).
 The segmentation mask (the reference band's MASK plane) is drawn as a contour on the subtracted and
 source panels.  Systems are chosen by simple truth cuts (``"arc_snr_r < 10"``; no code is
 evaluated), optionally restricted to the lenses a finder missed, and sorted by a truth column.
@@ -43,6 +44,10 @@ PANEL_TITLES = {"observed": "observed", "subtracted": "lens subtracted, smoothed
 # Per panel: the asinh stretch's linear range as a fraction of the panel's 99.5th-percentile
 # brightness, its softening Q, and the black level (in noise sigma).
 PANEL_STRETCH = {"observed": (0.5, 8.0, -1.0), "subtracted": (1.0, 3.0, -1.0), "source": (0.2, 8.0, 0.0)}
+
+# In crowded cutouts a panel's stretch comes from the pixels where the neighbours' noiseless light is
+# below this many noise sigma (bright neighbours saturate; the arcs set the range).
+NEIGHBOUR_CLEAR_SIGMA = 0.5
 
 _OPERATORS = {"<=": operator.le, ">=": operator.ge, "==": operator.eq, "!=": operator.ne,
               "<": operator.lt, ">": operator.gt}
@@ -87,7 +92,7 @@ def select_systems(truth: Table, cuts: Sequence[str] = (), missed: Table | None 
 
 
 def _planes_of(run_dir: Path, ids: np.ndarray) -> dict:
-    """``system_id -> {plane: (bands, ny, nx)}`` of the IMAGES, LENS, SOURCE and MASK planes the
+    """``system_id -> {plane: (bands, ny, nx)}`` of the IMAGES, LENS, SOURCE, NEIGHBOURS and MASK planes the
     shards hold (the noiseless ones only if the run wrote them), and ``"pixel_scale"`` (arcsec)."""
     from astropy.io import fits
 
@@ -95,7 +100,7 @@ def _planes_of(run_dir: Path, ids: np.ndarray) -> dict:
     for path in shard_files(run_dir):
         with fits.open(path, memmap=True) as hdul:
             first, n = int(hdul[0].header["FIRSTID"]), int(hdul[0].header["NSYSTEM"])
-            names = [name for name in ("IMAGES", "LENS", "SOURCE", "MASK") if name in hdul]
+            names = [name for name in ("IMAGES", "LENS", "SOURCE", "NEIGHBOURS", "MASK") if name in hdul]
             for i in sorted(wanted & set(range(first, first + n))):
                 out[i] = {name: np.array(hdul[name].data[i - first], dtype=float) for name in names}
                 out[i]["pixel_scale"] = float(hdul[0].header["PIXSCALE"])
@@ -104,10 +109,11 @@ def _planes_of(run_dir: Path, ids: np.ndarray) -> dict:
 
 def noise_sigma(planes: dict, smooth_pixels: float = 0.0) -> np.ndarray:
     """Per-band pixel noise sigma of one cutout (after smoothing by a Gaussian of ``smooth_pixels``):
-    the standard deviation of the image less its noiseless planes, or (without them) 1.4826 times
-    the median absolute deviation of the image."""
+    the standard deviation of the image less its noiseless planes (the neighbours' too), or (without
+    them) 1.4826 times the median absolute deviation of the image."""
     if "LENS" in planes and "SOURCE" in planes:
-        noise = _smoothed(planes["IMAGES"] - planes["LENS"] - planes["SOURCE"], smooth_pixels)
+        noise = _smoothed(planes["IMAGES"] - planes["LENS"] - planes["SOURCE"] - planes.get("NEIGHBOURS", 0.0),
+                          smooth_pixels)
         return np.maximum(noise.std(axis=(1, 2)), 1e-30)
     image = _smoothed(planes["IMAGES"], smooth_pixels)
     median = np.median(image, axis=(1, 2), keepdims=True)
@@ -142,9 +148,14 @@ def panel_images(planes: dict, index: Sequence[int], panels: Sequence[str] = PAN
             signal = planes["SOURCE"]
         else:
             signal = _smoothed(planes["IMAGES"] - (planes["LENS"] if panel == "subtracted" else 0.0), smooth)
-        channels = signal[bands] / noise_sigma(planes, smooth)[bands, None, None]
+        sigma = noise_sigma(planes, smooth)[bands, None, None]
+        channels = signal[bands] / sigma
         fraction, softening, minimum = PANEL_STRETCH[panel]
-        top = float(np.percentile(channels.mean(axis=0), 99.5))
+        brightness = channels.mean(axis=0)
+        if "NEIGHBOURS" in planes and panel != "source":  # the stretch from the pixels neighbours leave
+            clear = (_smoothed(planes["NEIGHBOURS"], smooth)[bands] / sigma).max(axis=0) < NEIGHBOUR_CLEAR_SIGMA
+            brightness = brightness[clear] if clear.mean() > 0.2 else brightness
+        top = float(np.percentile(brightness, 99.5))
         linear = max(stretch_scale * fraction * top, 1e-12 if panel == "source" else 1.0)
         with np.errstate(invalid="ignore", divide="ignore"):  # (astropy divides by zero where a pixel is black)
             rgb = make_lupton_rgb(*channels, minimum=minimum, stretch=linear, Q=softening if q is None else q)

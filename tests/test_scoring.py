@@ -184,6 +184,35 @@ def test_arcs_stand_out_in_the_lens_subtracted_panels(gallery_run):
         assert contrast >= 5, (int(row["system_id"]), float(row["arc_snr_r"]), contrast)
 
 
+def test_a_bright_neighbour_does_not_hide_the_arc(gallery_run):
+    # Crowded cutouts: a star 1000 times the noise in a corner (in IMAGES and the NEIGHBOURS plane,
+    # as [neighbours] writes them) saturates, but the stretch comes from the pixels it leaves clear,
+    # so the arc inside its mask shows as brightly as without the star (within 10 %) and still
+    # stands 5 background sigma out (issue 13's criterion).
+    from scipy import ndimage
+
+    from simlens.gallery import _planes_of, noise_sigma, panel_images
+
+    truth = Table.read(gallery_run / "truth.fits")
+    row = truth[np.argmax(truth["arc_snr_r"])]
+    system = _planes_of(gallery_run, np.asarray([row["system_id"]]))[int(row["system_id"])]
+    sigma = row["psf_fwhm_r"] / (2 * math.sqrt(2 * math.log(2))) / system["pixel_scale"]
+    n = system["IMAGES"].shape[-1]
+    yy, xx = np.mgrid[:n, :n]
+    star = np.exp(-((xx - 4) ** 2 + (yy - 4) ** 2) / (2 * 1.5**2))
+    noise = noise_sigma(system)
+    crowded = dict(system, NEIGHBOURS=1000 * noise[:, None, None] * star)
+    crowded["IMAGES"] = system["IMAGES"] + crowded["NEIGHBOURS"]
+    mask = system["MASK"][1].astype(bool)
+    shown = {}
+    for name, planes in (("alone", system), ("crowded", crowded)):
+        panel = panel_images(planes, [1, 0, 0], ["subtracted"], smooth_pixels=sigma)["subtracted"].mean(axis=2)
+        shown[name] = panel[mask].mean()
+        clear = ~ndimage.binary_dilation(mask, iterations=3) & (np.hypot(xx - 4, yy - 4) > 15)
+        assert (panel[mask].mean() - panel[clear].mean()) / panel[clear].std() >= 5
+    assert shown["crowded"] == pytest.approx(shown["alone"], rel=0.1)
+
+
 def test_gallery_panels_and_their_options(gallery_run, capsys):
     assert main(["gallery", str(gallery_run), "--n", "5", "--panels", "observed,subtracted", "--stretch-scale", "0.5",
                  "--smooth", "0", "--name", "two"]) == 0

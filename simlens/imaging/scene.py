@@ -9,12 +9,16 @@ and the injection into real images, take a scene; each deflector is built once p
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, replace
 from typing import Mapping
+
+import numpy as np
 
 from ..cosmology import distance_ratio
 from ..lensing.lens_models import build_deflector, multi_plane
 from ..lensing.mass import SIS, MassModel, ScaledDeflector
+from ..lensing.lens_equation import find_images
 from ..lensing.multiplane import MultiPlaneLens
 from ..truth.record import System
 from .light import CompositeLight, LightProfile, Sersic
@@ -46,8 +50,9 @@ def build_scene(system: System) -> Scene:
     if system.line_of_sight and system.lensing:
         deflector = multi_plane(main, system.z_lens, system.line_of_sight, system.z_source, system.cosmology)
     second = system.second_source is not None
+    seen = line_of_sight_images(system, main)
     return Scene(system=system, deflector=deflector,
-                 lens_light={b: _lens_light(system, b) for b in names},
+                 lens_light={b: _lens_light(system, b, seen) for b in names},
                  source_light={b: _source_light(system, b) for b in names},
                  point_flux={b: _point_flux(system, b) for b in names},
                  second_deflector=_second_deflector(system, main) if second else None,
@@ -74,10 +79,79 @@ def lens_galaxy(system: System, band: str) -> LightProfile:
     return parts[0] if len(parts) == 1 else CompositeLight(parts)
 
 
-def _lens_light(system: System, band: str) -> LightProfile:
-    """The lens galaxy, any look-alike features, and the satellites of its subhalos."""
+def line_of_sight_images(system: System, main: MassModel) -> tuple:
+    """``(galaxy, x, y, A)`` for each image of each line-of-sight galaxy with light: in front of the
+    lens (or without lensing) the galaxy itself (A the identity); behind it, the images of its
+    centre through the planes in front of it (the main deflector and nearer line-of-sight
+    galaxies, each rescaled to its redshift, SEF 1992 eq. 5.7), with the lens mapping's Jacobian A
+    there (:func:`simlens.lensing.lens_equation.find_images`)."""
+    out = []
+    for g in system.line_of_sight:
+        if g.magnitudes is None:
+            continue
+        if not system.lensing or g.z <= system.z_lens:
+            out.append((g, g.x, g.y, np.eye(2)))
+            continue
+        cosmo = system.cosmology
+        planes = [(system.z_lens, main)] + [(o.z, SIS(einstein_radius=o.einstein_radius, center=(o.x, o.y)))
+                                             for o in system.line_of_sight if o.z < g.z and o is not g]
+        planes.sort(key=lambda p: p[0])
+        scaled = tuple(ScaledDeflector(m, distance_ratio(cosmo, z, g.z) / distance_ratio(cosmo, z, system.z_source))
+                       for z, m in planes)
+        lens = scaled[0] if len(scaled) == 1 else MultiPlaneLens(
+            planes=scaled, redshifts=tuple(z for z, _ in planes), z_source=g.z, cosmology=cosmo)
+        reach = STRONG_LENSING_REACH * system.einstein_radius  # beyond it, one image (outside the caustics)
+        if math.hypot(g.x, g.y) > reach:
+            guess = np.array([g.x]), np.array([g.y])
+            for _ in range(8):  # theta = beta + alpha(theta): converges where |d alpha| < 1
+                ax, ay = lens.deflection(*guess)
+                guess = g.x + ax, g.y + ay
+            images = find_images(lens, g.x, g.y, [(0.3 * reach, 0.3 * reach / 20.0)],
+                                 center=(float(guess[0][0]), float(guess[1][0])))
+        else:
+            half = math.hypot(g.x, g.y) + reach + 1.0
+            images = find_images(lens, g.x, g.y, [(half, half / 200.0), (reach, reach / 100.0)])
+        if len(images) == 0:
+            continue
+        _, _, psi_xx, psi_xy, psi_yy = lens.deflection_and_hessian(images.x, images.y)
+        for j in range(len(images)):
+            jacobian = np.array([[1.0 - psi_xx[j], -psi_xy[j]], [-psi_xy[j], 1.0 - psi_yy[j]]])
+            out.append((g, float(images.x[j]), float(images.y[j]), jacobian))
+    return tuple(out)
+
+
+STRONG_LENSING_REACH = 3.0  # theta_E: the caustics of the recipes' deflectors lie within it (common practice)
+MAX_LINEAR_MAGNIFICATION = 30.0  # images of line-of-sight galaxies: the linear mapping's limit
+
+
+def mapped_sersic(flux: float, half_light_radius: float, sersic_index: float, q: float, angle: float,
+                  x: float, y: float, jacobian: np.ndarray) -> Sersic:
+    """An elliptical Sersic in its own plane seen through the linear lens mapping ``jacobian`` (A =
+    d beta / d theta) at image position ``(x, y)``: surface brightness is conserved, so the
+    isophotes' quadratic form Q (``R^2 = d^T Q d``, det Q = 1) becomes A^T Q A, the flux grows by
+    1 / |det A| and the shape follows from the new form's eigenvalues.  Exact for a galaxy small
+    against the scale on which A changes; near a critical curve, where that fails (a giant arc),
+    |det A| is kept above 1 / MAX_LINEAR_MAGNIFICATION."""
+    a = math.radians(angle)
+    rotation = np.array([[math.cos(a), -math.sin(a)], [math.sin(a), math.cos(a)]])
+    form = rotation @ np.diag([q, 1.0 / q]) @ rotation.T
+    mapped = jacobian.T @ form @ jacobian
+    values, vectors = np.linalg.eigh(mapped)  # ascending: the first is along the major axis
+    scale = max(math.sqrt(values[0] * values[1]), 1.0 / MAX_LINEAR_MAGNIFICATION)  # |det A|
+    values = values / math.sqrt(values[0] * values[1]) * scale
+    major = vectors[:, 0]
+    return Sersic(flux=flux / scale, half_light_radius=half_light_radius / math.sqrt(scale),
+                  sersic_index=sersic_index, q=math.sqrt(values[0] / values[1]),
+                  angle=math.degrees(math.atan2(major[1], major[0])), center=(x, y))
+
+
+def _lens_light(system: System, band: str, line_of_sight: tuple = ()) -> LightProfile:
+    """The lens galaxy, any look-alike features, the satellites of its subhalos and the images of
+    the line-of-sight galaxies with light."""
     conditions = system.band(band)
     parts = lens_galaxy_components(system, band)
+    parts += tuple(mapped_sersic(conditions.counts_from_magnitude(g.magnitudes[band]), g.half_light_radius,
+                                 g.sersic_index, g.q, g.angle, x, y, jacobian) for g, x, y, jacobian in line_of_sight)
     parts += tuple(shape.with_flux(conditions.counts_from_magnitude(mags[band])) for shape, mags in system.extra_light)
     parts += tuple(Sersic(flux=conditions.counts_from_magnitude(h.magnitudes[band]), half_light_radius=h.half_light_radius,
                           sersic_index=SATELLITE_SERSIC_INDEX, center=(h.x, h.y))

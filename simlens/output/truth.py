@@ -290,16 +290,25 @@ LINE_OF_SIGHT_COLUMNS = (
     C("x", "arcsec", "position in its own plane, x, from the line of sight to the lens", lambda g: g[1].x),
     C("y", "arcsec", "position in its own plane, y", lambda g: g[1].y),
     C("einstein_radius", "arcsec", "its Einstein radius for the system's source", lambda g: g[1].einstein_radius),
+    C("half_light_radius", "arcsec", "its light's circularised R_e, unlensed (nan: no light drawn)",
+      lambda g: g[1].half_light_radius),
+    C("q", "", "its light's axis ratio, unlensed", lambda g: g[1].q),
+    C("angle", "deg", "its light's major-axis angle, CCW from +x, unlensed", lambda g: g[1].angle),
+    C("mag_{band}", "mag", "the galaxy in {band}, AB, unlensed (nan: no light drawn)",
+      lambda g, b: g[1].magnitudes[b] if g[1].magnitudes is not None else math.nan),
 )
 
 
 def line_of_sight_rows(rendered: RenderedSystem) -> list[dict]:
-    return [rows_from(LINE_OF_SIGHT_COLUMNS, (rendered.system.system_id, g)) for g in rendered.system.line_of_sight]
+    bands = [b.name for b in rendered.system.bands]
+    return [rows_from(LINE_OF_SIGHT_COLUMNS, (rendered.system.system_id, g), bands=bands)
+            for g in rendered.system.line_of_sight]
 
 
-def line_of_sight_table(rows: Sequence[dict]) -> Table:
-    """Line-of-sight SIS galaxies keyed by system_id."""
-    return described_table(rows, LINE_OF_SIGHT_COLUMNS, dtype=[np.int64] + [float] * 5)
+def line_of_sight_table(rows: Sequence[dict], bands: Sequence[str]) -> Table:
+    """Line-of-sight SIS galaxies keyed by system_id, with their light."""
+    return described_table(rows, LINE_OF_SIGHT_COLUMNS, bands=bands,
+                           dtype=[np.int64] + [float] * (len(LINE_OF_SIGHT_COLUMNS) - 2 + len(bands)))
 
 
 def _key(name: str):

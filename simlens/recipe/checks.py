@@ -216,6 +216,9 @@ def _check_line_of_sight_and_subhalos(recipe: Recipe) -> None:
     if subs.mass_fraction is not None and subs.count != type(subs)().count:
         raise RecipeError(origin, "lens.subhalos.count", "is given together with mass_fraction, which draws it",
                           "remove count, or remove mass_fraction")
+    if recipe.lens.line_of_sight.light and recipe.lens.light.scaling is None:
+        raise RecipeError(origin, "lens.line_of_sight.light", "needs the relations of [lens.light.scaling] "
+                          "(Faber-Jackson, fundamental plane, template)", "a [lens.light.scaling] table, or light = false")
     if subs.light and recipe.lens.light.scaling is None:
         raise RecipeError(origin, "lens.subhalos.light", "needs the lens's template and mass-to-light ratio",
                           "a [lens.light.scaling] table, or light = false")

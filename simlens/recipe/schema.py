@@ -308,6 +308,8 @@ class LineOfSightSettings:
     radius: float = number(8.0, low=0, low_open=True, high=120, unit="arcsec",
                            doc="they fall uniformly in a disc of this radius around the lens")
     redshift_min: float = number(0.02, low=0, low_open=True, high=10, doc="nearest redshift; the farthest is the source's")
+    light: bool = flag(False, doc="draw their light: early types by the Faber-Jackson relation, fundamental plane "
+                                  "and template of lens.light.scaling; those behind the lens seen through it")
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -233,7 +233,7 @@ def _render_field(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
              table_hdu(objects_table(objects.rows(spec.index, wcs), survey.band_names), "OBJECTS"),
              table_hdu(image_table(images), "IMAGE_TRUTH"),
              table_hdu(subhalo_table(subhalos, survey.band_names), "SUBHALOS"),
-             table_hdu(line_of_sight_table(los), "LINE_OF_SIGHT")]
+             table_hdu(line_of_sight_table(los, survey.band_names), "LINE_OF_SIGHT")]
     with atomic_path(run_folder / file) as tmp:
         fits.HDUList(hdus).writeto(tmp)
     region = region_path(recipe, spec.index)

@@ -141,7 +141,7 @@ def _render_shard(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
               "BUNIT": ("adu", "units of IMAGES, SOURCE, LENS (VARIANCE: adu2)"),
               "MASKTHR": (output.mask_threshold, "MASK: source > MASKTHR x pixel noise sigma")}
     tables = {"SUBHALOS": subhalo_table(subhalos, survey.band_names), "IMAGE_TRUTH": image_table(images),
-              "LINE_OF_SIGHT": line_of_sight_table(los)}
+              "LINE_OF_SIGHT": line_of_sight_table(los, survey.band_names)}
     if crowded:
         tables["NEIGHBOUR_TRUTH"] = objects_table(neighbours, survey.band_names, NEIGHBOUR_COLUMNS)
     write_shard(run_folder / shard_file, cubes, truth_table(rows), header, extra_tables=tables)

@@ -68,6 +68,12 @@ class LineOfSightGalaxy:
     x: float
     y: float
     einstein_radius: float
+    # its light (lens.line_of_sight.light): an early-type Sersic, AB magnitudes per band, or None
+    magnitudes: Mapping[str, float] | None = None
+    half_light_radius: float = math.nan  # arcsec, circularised, in its own plane
+    sersic_index: float = 4.0
+    q: float = 1.0
+    angle: float = 0.0  # deg CCW from +x
 
 
 @dataclass(frozen=True)

@@ -287,8 +287,20 @@ class PopulationSampler:
             if not (z < z_source and z != z_lens):
                 continue
             theta = float(sis_einstein_radius(sigma, self.distances.distance_ratio(z, z_source)))
-            galaxies.append(LineOfSightGalaxy(z=z, velocity_dispersion=sigma, x=x, y=y, einstein_radius=theta))
+            light = self._line_of_sight_light(sigma, z, rng) if settings.light else {}
+            galaxies.append(LineOfSightGalaxy(z=z, velocity_dispersion=sigma, x=x, y=y, einstein_radius=theta,
+                                              **light))
         return tuple(galaxies)
+
+    def _line_of_sight_light(self, sigma: float, z: float, rng) -> dict:
+        """A line-of-sight galaxy's light as an early type of its sigma (the lens light's relations,
+        their scatter included), round in mass, so its light's axis ratio is the relation's scatter
+        about 1; its angle uniform."""
+        normals = rng.standard_normal(size=(1, LensLightModel.NORMALS))
+        angle = float(rng.uniform(0.0, 180.0))
+        light = self.lens_light_model.draw_many([sigma], [z], [1.0], [angle], normals)[0]
+        return dict(magnitudes=light.magnitudes, half_light_radius=light.half_light_radius,
+                    sersic_index=LINE_OF_SIGHT_SERSIC_INDEX, q=light.q, angle=light.angle)
 
     def _stars_and_halo(self, v: dict, light, z_lens: float, z_source: float) -> tuple[float, dict]:
         """theta_E and the truth of the stars-plus-halo deflector, whose stars follow the light."""
@@ -975,6 +987,7 @@ def _exhausted_message(system_id: int, limit: int, rejections: dict) -> str:
             f"selection.max_candidates")
 
 
+LINE_OF_SIGHT_SERSIC_INDEX = 4.0  # early types (de Vaucouleurs)
 MAX_MEAN_SUBHALOS = 1000  # the most subhalos a lens may hold on average (as lens.subhalos.count)
 
 
