@@ -25,6 +25,8 @@ __all__ = [
     "Uniform",
     "LogUniform",
     "TruncatedNormal",
+    "LogNormal",
+    "AxisRatio",
     "Choice",
     "Grid",
     "Parameter",
@@ -151,6 +153,67 @@ class TruncatedNormal:
 
 
 @dataclass(frozen=True)
+class LogNormal:
+    """``log10(value)`` normal about ``log10(median)`` with ``sigma_dex``, truncated to ``[low, high]``
+    (``0 <= low < high``): :class:`TruncatedNormal` in the logarithm."""
+
+    median: float
+    sigma_dex: float
+    low: float = 0.0
+    high: float = math.inf
+
+    def __post_init__(self):
+        if not (self.median > 0 and self.low >= 0):
+            raise ValueError(f"log_normal needs a median > 0 and within >= 0, got {self.median}, {self.low}")
+        object.__setattr__(self, "_log", TruncatedNormal(
+            math.log10(self.median), self.sigma_dex, math.log10(self.low) if self.low > 0 else -math.inf,
+            math.log10(self.high) if math.isfinite(self.high) else math.inf))
+
+    def draw(self, rng: np.random.Generator) -> float:
+        return float(self.from_uniform(rng.uniform()))
+
+    def from_uniform(self, u):
+        return np.minimum(np.maximum(10.0 ** self._log.from_uniform(u), self.low), self.high)
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (self.low, self.high)
+
+    def describe(self) -> str:
+        return f"log-normal (median {self.median:g}, {self.sigma_dex:g} dex) within [{self.low:g}, {self.high:g}]"
+
+
+@dataclass(frozen=True)
+class AxisRatio:
+    """An axis ratio ``q`` whose ellipticity ``e = (1 - q) / (1 + q)`` has two Gaussian components of
+    ``dispersion`` each (the intrinsic-shape model of weak-lensing forecasts, common practice), so
+    ``|e|`` is Rayleigh-distributed; truncated at ``|e| <= max_ellipticity``."""
+
+    dispersion: float
+    max_ellipticity: float = 0.8
+
+    def __post_init__(self):
+        if not (0 < self.dispersion <= 1 and 0 < self.max_ellipticity < 1):
+            raise ValueError(f"ellipticity_dispersion needs 0 < dispersion <= 1, got {self.dispersion}")
+
+    def draw(self, rng: np.random.Generator) -> float:
+        return float(self.from_uniform(rng.uniform()))
+
+    def from_uniform(self, u):
+        # Rayleigh CDF F(e) = 1 - exp(-e^2 / 2 s^2), inverted on [0, max_ellipticity]
+        top = -math.expm1(-self.max_ellipticity**2 / (2 * self.dispersion**2))
+        e = self.dispersion * np.sqrt(-2.0 * np.log1p(-np.asarray(u, dtype=float) * top))
+        return (1.0 - e) / (1.0 + e)
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return ((1.0 - self.max_ellipticity) / (1.0 + self.max_ellipticity), 1.0)
+
+    def describe(self) -> str:
+        return f"axis ratio of ellipticity dispersion {self.dispersion:g} per component"
+
+
+@dataclass(frozen=True)
 class Choice:
     """One of ``values``, with optional ``weights`` (normalised here)."""
 
@@ -218,6 +281,6 @@ class Grid:
         return "grid of " + ", ".join(f"{v:g}" for v in self.values)
 
 
-Parameter = Union[Fixed, Uniform, LogUniform, TruncatedNormal, Choice, Grid]
+Parameter = Union[Fixed, Uniform, LogUniform, TruncatedNormal, LogNormal, AxisRatio, Choice, Grid]
 
 

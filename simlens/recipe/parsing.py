@@ -13,7 +13,7 @@ from typing import Any, Mapping
 
 from ..errors import RecipeError
 from .checks import check_recipe
-from .distributions import Choice, Fixed, Grid, LogUniform, Parameter, TruncatedNormal, Uniform
+from .distributions import AxisRatio, Choice, Fixed, Grid, LogNormal, LogUniform, Parameter, TruncatedNormal, Uniform
 from .schema import BandSettings, Recipe
 from .values import check_interval, check_number, check_support, check_text, is_number, shown
 
@@ -146,8 +146,8 @@ def _parse_colors(origin: str, path: str, value: Any) -> dict:
 
 
 _FORMS = ("a number, { uniform = [low, high] }, { log_uniform = [low, high] }, "
-          "{ normal = [mean, sigma], within = [low, high] }, { choice = [...], weights = [...] } "
-          "or { grid = [...] }")
+          "{ normal = [mean, sigma], within = [low, high] }, { log_normal = [median, sigma_dex], within = [low, high] }, "
+          "{ ellipticity_dispersion = sigma } (an axis ratio), { choice = [...], weights = [...] } or { grid = [...] }")
 
 
 def _parse_parameter(origin: str, path: str, value: Any, meta: Mapping) -> Parameter:
@@ -155,13 +155,13 @@ def _parse_parameter(origin: str, path: str, value: Any, meta: Mapping) -> Param
     if is_number(value):
         param: Parameter = Fixed(value)
     elif isinstance(value, Mapping):
-        forms = {"uniform", "log_uniform", "normal", "choice", "grid"}
+        forms = {"uniform", "log_uniform", "normal", "log_normal", "ellipticity_dispersion", "choice", "grid"}
         chosen = [k for k in value if k in forms]
         extras = {k for k in value if k not in forms}
         if len(chosen) != 1:
             raise RecipeError(origin, path, f"needs exactly one distribution, got {shown(value)}", _FORMS)
         form = chosen[0]
-        allowed_extras = {"normal": {"within"}, "choice": {"weights"}}.get(form, set())
+        allowed_extras = {"normal": {"within"}, "log_normal": {"within"}, "choice": {"weights"}}.get(form, set())
         if extras - allowed_extras:
             bad = sorted(extras - allowed_extras)[0]
             hint = sorted(allowed_extras)
@@ -172,7 +172,7 @@ def _parse_parameter(origin: str, path: str, value: Any, meta: Mapping) -> Param
             param = _make_distribution(form, args, value)
         except (TypeError, ValueError) as exc:
             raise RecipeError(origin, path, f"{exc}", _FORMS) from None
-        if integer and form in ("uniform", "log_uniform", "normal"):
+        if integer and form in ("uniform", "log_uniform", "normal", "log_normal", "ellipticity_dispersion"):
             raise RecipeError(origin, path, f"must be an integer, so a {form} distribution does not fit",
                               "an integer, { choice = [...] } or { grid = [...] }")
     else:
@@ -204,6 +204,14 @@ def _make_distribution(form: str, args: Any, table_: Mapping) -> Parameter:
         mean, sigma = _number_list(args, "normal", 2)
         low, high = _number_list(table_.get("within", [-math.inf, math.inf]), "within", 2)
         return TruncatedNormal(mean, sigma, low, high)
+    if form == "log_normal":
+        median, sigma = _number_list(args, "log_normal", 2)
+        low, high = _number_list(table_.get("within", [0.0, math.inf]), "within", 2)
+        return LogNormal(median, sigma, low, high)
+    if form == "ellipticity_dispersion":
+        if not is_number(args):
+            raise ValueError(f"ellipticity_dispersion needs a number, got {shown(args)}")
+        return AxisRatio(float(args))
     if form == "choice":
         values = _number_list(args, "choice")
         weights = table_.get("weights")

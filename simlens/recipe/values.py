@@ -8,7 +8,7 @@ import math
 from typing import Any, Mapping
 
 from ..errors import RecipeError
-from .distributions import Fixed, Parameter, TruncatedNormal
+from .distributions import Fixed, LogNormal, Parameter, TruncatedNormal
 
 __all__ = ["is_number", "range_text", "inside", "check_support", "check_number", "check_interval", "check_text",
            "shown"]
@@ -43,7 +43,7 @@ def check_support(origin: str, path: str, param: Parameter, meta: Mapping) -> No
             raise RecipeError(origin, path, f"out of range: {what}",
                               f"values in {range_text(meta)}{unit}" + (
                                   "; bound a normal with within = [low, high]"
-                                  if isinstance(param, TruncatedNormal) else ""))
+                                  if isinstance(param, (TruncatedNormal, LogNormal)) else ""))
 
 
 def check_number(origin: str, path: str, value: Any, meta: Mapping):
