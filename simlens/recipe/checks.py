@@ -163,8 +163,11 @@ def _check_stamps(recipe: Recipe) -> None:
     if not found:
         raise RecipeError(recipe.origin, "source.stamps.catalogue", f"{shown(stamps.catalogue)}: no such file "
                           f"(looked for {path})", "a FITS stamp catalogue, relative to the recipe")
+    if stamps.deconvolve_to is not None and stamps.format == "table" and stamps.psf_fwhm <= 0:
+        raise RecipeError(recipe.origin, "source.stamps.deconvolve_to", "needs the stamps' own PSF to remove",
+                          "psf_fwhm = the FWHM of their (Gaussian) PSF in arcsec")
     try:
-        load_stamps(str(path))
+        load_stamps(str(path), stamps.format, stamps.psf_fwhm, stamps.deconvolve_to)
     except SimlensError as exc:
         raise RecipeError(recipe.origin, "source.stamps.catalogue", str(exc), "a FITS table with stamp, "
                           "pixel_scale, magnitude and band columns (see the README)") from None

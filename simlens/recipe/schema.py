@@ -489,8 +489,20 @@ class StampSettings:
                               "relative to the recipe")
     choose: str = text("random", choices=("random", "nearest_redshift"),
                        doc="which stamp a source takes: uniform, or among those nearest its redshift")
+    format: str = text("table", choices=("table", "galsim_real"),
+                       doc="table: simlens's FITS table or cube; galsim_real: GalSim's real-galaxy catalogue "
+                           "(read by galsim.RealGalaxyCatalog, its images beside it)")
     psf_fwhm: float = number(0.0, low=0, high=5, unit="arcsec",
-                             doc="the stamps' own PSF FWHM: a resolution limit recorded in the truth (not deconvolved)")
+                             doc="the stamps' own PSF FWHM (a Gaussian): the resolution limit recorded in the "
+                                 "truth, or what deconvolve_to removes from table stamps")
+    deconvolve_to: float = number(optional=True, low=0, low_open=True, high=2, unit="arcsec",
+                                  doc="remove the stamps' PSF (and pixel) and re-convolve them with a Gaussian of "
+                                      "this FWHM, which then is the resolution limit (GalSim's deconvolution)")
+
+    @property
+    def resolution(self) -> float:
+        """The FWHM (arcsec) to which the stamps' light is resolved, as the truth states it."""
+        return self.deconvolve_to if self.deconvolve_to is not None else self.psf_fwhm
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -107,7 +107,8 @@ class PopulationSampler:
                             if recipe.neighbours is not None else None)
         base = str(Path(recipe.origin).parent) if recipe.origin != "<recipe>" else "."
         stamps = recipe.source.stamps
-        self._stamps = load_stamps(str(Path(base) / stamps.catalogue)) if stamps is not None else None
+        self._stamps = (load_stamps(str(Path(base) / stamps.catalogue), stamps.format, stamps.psf_fwhm,
+                                    stamps.deconvolve_to) if stamps is not None else None)
         self._stamp_lights: dict = {}
         filters = {b.name: b.filter for b in recipe.survey.bands if b.filter is not None}
         lens, source = recipe.lens, recipe.source
@@ -499,7 +500,7 @@ class PopulationSampler:
         return dict(source_stamp=light, source_stamp_index=index,
                     source_stamp_magnitude=float(catalogue.magnitude[index]),
                     source_stamp_redshift=float(catalogue.redshift[index]),
-                    source_stamp_psf_fwhm=self.recipe.source.stamps.psf_fwhm)
+                    source_stamp_psf_fwhm=self.recipe.source.stamps.resolution)
 
     def _draw_neighbours(self, system: System, rng):
         """The unlensed galaxies and stars of a crowded cutout: over the cutout and the margin the
