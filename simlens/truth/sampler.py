@@ -713,10 +713,12 @@ class _GeometryPhase:
         reach = caustics.reach[todo]
         if mode == "lens":
             radius = pos.region_radius_in_einstein_radii * theta_e[todo]
-        else:  # sky: one source per 1 / density of area (see DEVELOPERS.md, "placement modes")
+        else:  # sky: a disc of 1 / density of area, or wider, holding a Poisson number of sources
             radius = np.full(todo.size, math.sqrt(3600.0 / (math.pi * s.source_density)))
         widened = reach > radius
         radius = np.maximum(radius, 1.02 * reach)
+        if mode == "sky":
+            return self._place_on_the_sky(out, todo, radius, widened, physics, caustics)
         # Explicit lens distributions keep their deflector and re-place the source; a physical
         # population redraws the whole candidate, which weights lenses by their cross-section.
         tries = 1 if (mode == "sky" or s.deflectors is not None) else s.LENS_MODE_PLACEMENT_TRIES
@@ -731,6 +733,29 @@ class _GeometryPhase:
                 t = left[i]
                 out[todo[t]] = caustics.placed(todo[t], x[i], y[i], radius[t], bool(widened[t]), bool(multiple[i]), mode)
             left = left[~accept]
+        return out
+
+
+    def _place_on_the_sky(self, out: list, todo: np.ndarray, radius: np.ndarray, widened: np.ndarray, physics,
+                          caustics) -> list:
+        """Sky mode: sources fall as a Poisson process of the source density, so a disc of area A
+        around the lens holds Poisson(n A) of them, each placed uniformly; the system's source is the
+        first inside the caustics (then it is a lens; P = 1 - exp(-n A_caustics), whatever A), else
+        the first of them (or, with none in the disc, one placed outside the caustics: a non-lens).
+        The candidate's drawn source properties are that source's (every source is alike in law)."""
+        density = self.sampler.source_density / 3600.0  # per arcsec^2
+        for t, j in enumerate(todo):
+            rng = physics[j]
+            n = int(rng.poisson(density * math.pi * radius[t] ** 2))
+            x, y = np.array([_uniform_in_disc(float(radius[t]), rng) for _ in range(max(n, 1))]).reshape(-1, 2).T
+            multiple = caustics.multiply_imaged(np.full(x.size, j), x, y)
+            for _ in range(SKY_EMPTY_DISC_TRIES if n == 0 else 0):  # no source here: one outside the caustics
+                if not multiple[0]:
+                    break
+                x, y = (np.array([v]) for v in _uniform_in_disc(float(radius[t]), rng))
+                multiple = caustics.multiply_imaged(np.array([j]), x, y)
+            k = int(np.argmax(multiple)) if multiple.any() else 0
+            out[j] = caustics.placed(j, x[k], y[k], radius[t], bool(widened[t]), bool(multiple[k]) and n > 0, "sky")
         return out
 
 
@@ -988,6 +1013,7 @@ def _exhausted_message(system_id: int, limit: int, rejections: dict) -> str:
             f"selection.max_candidates")
 
 
+SKY_EMPTY_DISC_TRIES = 100  # draws of an unlensed source's place outside the caustics (they cover < 1/2e of the disc)
 LINE_OF_SIGHT_SERSIC_INDEX = 4.0  # early types (de Vaucouleurs)
 MAX_MEAN_SUBHALOS = 1000  # the most subhalos a lens may hold on average (as lens.subhalos.count)
 
