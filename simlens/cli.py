@@ -8,6 +8,7 @@
                   [--match-radius ARCSEC]
     simlens inject IMAGE.fits [IMAGE.fits ...] --recipe RECIPE --lenses CATALOG [--bands g,r,i] [--psf PSF.fits] [--out DIR]
     simlens gallery RUN_DIR [--where "COLUMN OP VALUE" ...] [--missed SCORES --threshold T] [--sort COLUMN]
+    simlens forecast RECIPE [--area DEG2] [--n N] [--rules collett2015|selection|multiply_imaged] [--out DIR]
 
 Every error prints one line (``simlens: error: ...``), never a traceback unless ``--debug`` is given.
 Exit status: 0 success; 1 a run that failed or a verify that found damage; 2 an input error (a
@@ -153,6 +154,35 @@ def _score(args) -> int:
     return 0
 
 
+def _forecast(args) -> int:
+    from .forecast import forecast, write_forecast
+    from .recipe import load_recipe
+
+    recipe = load_recipe(args.recipe).with_overrides(seed=args.seed)
+    out = Path(args.out) if args.out else Path("outputs") / f"forecast_{recipe.name}"
+
+    def progress(done, total):
+        if not args.quiet:
+            print(f"  {done} of {total} deflectors drawn", file=sys.stderr)
+
+    result = forecast(recipe, args.n, args.area, args.rules, progress=progress)
+    files = write_forecast(result, out, overwrite=args.overwrite)
+    print(f"{result.recipe_name} ({result.rules}): {result.detected} detectable lenses among {result.drawn} "
+          f"deflectors drawn ({result.galaxies_per_deg2:.4g} per deg^2)")
+    print(f"  {result.per_deg2:.3g} +- {result.sampling_error_per_deg2:.2g} (sampling) lenses per deg^2; "
+          f"{result.in_area:.4g} +- {result.poisson_error_in_area:.2g} (Poisson) in {result.area:g} deg^2")
+    for column in ("einstein_radius", "multiplicity"):
+        table = result.breakdown(column)
+        if column == "multiplicity":
+            parts = [f"{kind} {rate:.3g}" for kind, rate in zip(table["multiplicity"], table["per_deg2"])]
+        else:
+            parts = [f"{lo:g}-{hi:g}\" {rate:.3g}" for lo, hi, rate in
+                     zip(table[f"{column}_low"], table[f"{column}_high"], table["per_deg2"]) if rate > 0]
+        print(f"  per deg^2 by {column.replace('_', ' ')}: " + ", ".join(parts))
+    print(f"  wrote {out}: " + ", ".join(files))
+    return 0
+
+
 def _gallery(args) -> int:
     from astropy.table import Table
 
@@ -223,7 +253,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="simlens", description="Synthetic survey cutouts of strong gravitational lenses.")
     parser.add_argument("--version", action="version", version=f"simlens {__version__}")
     parser.add_argument("--debug", action="store_true", help="show the Python traceback of an error")
-    verbs = parser.add_subparsers(dest="verb", required=True, metavar="{make,check,verify,inject,score,gallery}")
+    verbs = parser.add_subparsers(dest="verb", required=True, metavar="{make,check,verify,inject,score,gallery,forecast}")
 
     make = verbs.add_parser("make", help="render the systems of a recipe into a run folder")
     make.add_argument("recipe", help="recipe file (TOML)")
@@ -292,6 +322,19 @@ def build_parser() -> argparse.ArgumentParser:
     score.add_argument("--name", default="finder", help="output folder RUN_DIR/scores/NAME (default: finder)")
     score.add_argument("--no-plots", action="store_true", help="tables only")
     score.set_defaults(func=_score)
+
+    fc = verbs.add_parser("forecast", help="how many detectable lenses the recipe's populations give per deg^2")
+    fc.add_argument("recipe", help="recipe with [lens.population] and [source.counts] (drawn in sky mode)")
+    fc.add_argument("--area", type=float, default=1.0, help="survey area in deg^2 (default 1)")
+    fc.add_argument("--n", type=int, default=20000, help="deflector galaxies to draw (default 20000)")
+    fc.add_argument("--rules", default="collett2015", choices=("collett2015", "selection", "multiply_imaged"),
+                    help="detectability: Collett (2015)'s rule set, the recipe's own [selection] cuts, or every "
+                         "multiply imaged source (the optical depth)")
+    fc.add_argument("--seed", type=int, help="random seed (overrides the recipe's)")
+    fc.add_argument("--out", help="output folder (default: outputs/forecast_<recipe name>)")
+    fc.add_argument("--overwrite", action="store_true", help="replace an earlier forecast in --out")
+    fc.add_argument("--quiet", action="store_true", help="no progress lines")
+    fc.set_defaults(func=_forecast)
 
     gallery = verbs.add_parser("gallery", help="contact sheets of colour composites, and population plots")
     gallery.add_argument("run_dir", help="finished run folder")

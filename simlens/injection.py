@@ -41,7 +41,6 @@ planes updated beside it) and added-flux image.
 from __future__ import annotations
 
 import dataclasses
-import json
 import math
 import warnings
 from collections.abc import Mapping
@@ -58,7 +57,7 @@ from scipy.signal import fftconvolve
 from .errors import SimlensError, SimlensWarning, clip
 from .user_tables import number_column, read_user_table
 from .output.atomic import atomic_path
-from .output.ownership import confined
+from .output.ownership import claim_folder, write_record
 from .imaging.rays import ComponentImages, PixelGrid
 from .imaging.render import observation_rays
 from .truth.psf import psf_fwhm_range
@@ -538,7 +537,7 @@ def inject(images, recipe: Recipe, lenses_path: str | Path, *, out: str | Path, 
     if not automatic:
         for b, image in survey.items():
             _check_on_image(lenses_path, lenses, positions[b], image.data.shape, image.path)
-    _claim_output_folder(out, overwrite)  # nothing is written before the inputs pass
+    claim_folder(out, overwrite, INJECTION_RECORD, INJECTION_FORMAT, "injection", subfolders=("cutouts",))  # inputs passed
     files: list = []
     if automatic:
         with atomic_path(out / "lenses_selected.ecsv") as tmp:
@@ -604,43 +603,12 @@ def inject(images, recipe: Recipe, lenses_path: str | Path, *, out: str | Path, 
     if full_image:
         for b, image in survey.items():
             files += _write_full_images(out, image, injected[b], added_total[b], len(truth))
-    with atomic_path(out / INJECTION_RECORD) as tmp:
-        tmp.write_text(json.dumps({"format": INJECTION_FORMAT, "files": files}, indent=1) + "\n", encoding="utf-8")
+    write_record(out, INJECTION_RECORD, INJECTION_FORMAT, files)
     return InjectionResult(truth=truth, files=files)
 
 
 INJECTION_RECORD = "injection.json"  # the files an injection wrote: the only ones --overwrite removes
 INJECTION_FORMAT = "simlens-injection/1"
-
-
-def _claim_output_folder(out: Path, overwrite: bool) -> None:
-    """Make ``out`` ready: an empty or new folder, or (with ``overwrite``) a folder of an earlier
-    injection, whose recorded files are removed; a folder holding anything else is refused."""
-    if out.exists() and not out.is_dir():
-        raise SimlensError(f"{out}: exists and is not a folder; choose another --out")
-    if out.exists() and any(out.iterdir()):
-        record = out / INJECTION_RECORD
-        if not overwrite:
-            raise SimlensError(f"{out} exists and is not empty; choose another --out, or pass --overwrite "
-                               f"if it holds an earlier simlens injection")
-        try:
-            written = json.loads(record.read_text(encoding="utf-8"))
-            listed = [str(name) for name in written["files"]] if written.get("format") == INJECTION_FORMAT else None
-        except (OSError, ValueError, TypeError, KeyError, AttributeError):
-            listed = None
-        if listed is None:
-            raise SimlensError(f"{out}: holds no simlens injection ({INJECTION_RECORD} missing or unreadable); "
-                               f"simlens replaces only its own output: choose another --out")
-        ours = {confined(out, name, record).relative_to(out) for name in listed} | {Path(INJECTION_RECORD)}
-        foreign = sorted(str(p.relative_to(out)) for p in out.rglob("*")
-                         if not p.is_dir() and p.relative_to(out) not in ours)
-        if foreign:
-            raise SimlensError(f"{out}: holds files simlens did not write there ({', '.join(foreign[:3])}"
-                               f"{' ...' if len(foreign) > 3 else ''}); nothing was removed: move them away "
-                               f"or choose another --out")
-        for name in ours:
-            (out / name).unlink(missing_ok=True)
-    (out / "cutouts").mkdir(parents=True, exist_ok=True)
 
 
 

@@ -1,0 +1,311 @@
+"""How many lenses a survey holds: a forecast from the recipe's populations (``simlens forecast``).
+
+The recipe's deflector population (``[lens.population]``: a velocity dispersion function over its
+redshift and sigma ranges) and source population (``[source.counts]``, or explicit distributions
+with ``source.position.density``) are drawn in sky mode: each
+drawn system is one deflector galaxy with the sources a Poisson process of the counts puts around
+it.  A system is *detectable* by a rule set:
+
+- ``collett2015`` (Collett 2015, ApJ 811, 20; as summarised from memory): the source is multiply
+  imaged; in some band b the lens is resolved, theta_E^2 > r_s^2 + (FWHM_b / 2)^2 (r_s the
+  source's half-light radius); the source's total magnification exceeds 3; and the lensed source,
+  with the lens light subtracted (its noise kept), has S/N > 20 in that band.  Magnification and
+  S/N need images: they come from a fast noiseless estimate (:func:`estimated_source_view`: the
+  renderer's rays and refined source, the band's PSF sampled once, block sums, the CCD-equation
+  variance of sky, read noise and the lens light at the pixel centres; no GalSim stage, no noise)
+  for the systems that pass the cuts without images.
+- ``selection``: the recipe's own ``[selection]`` cuts, judged as ``make`` judges them (images
+  rendered where a cut needs them); the detectable share is accepted systems over candidates.
+- ``multiply_imaged``: every multiply imaged source, no cut: the lensing optical depth times the
+  source density (the limit Turner, Ostriker & Gott 1984 give in closed form).
+
+The rate is the deflectors' sky density times the detectable share; its errors are the sampling
+error (Poisson on the detected count) and the Poisson scatter of the count in the survey's area.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+from astropy.table import Table
+
+from .errors import SimlensError
+from .recipe import Recipe
+
+__all__ = ["RULE_SETS", "Forecast", "forecast", "estimated_source_view", "SourceView", "forecast_recipe",
+           "write_forecast"]
+
+RULE_SETS = ("collett2015", "selection", "multiply_imaged")
+DETECTION_SNR = 20.0  # Collett 2015
+MIN_MAGNIFICATION = 3.0  # Collett 2015
+RING_COVERAGE = 0.75  # an arc above 1 sigma around this share of the azimuth is a ring (common practice)
+AZIMUTH_BINS = 36
+DEGREE2_PER_STERADIAN = (180.0 / math.pi) ** 2
+BINS = {"einstein_radius": (0.0, 0.5, 1.0, 1.5, 2.0, 3.0, 5.0, 10.0),
+        "z_lens": (0.0, 0.2, 0.4, 0.6, 0.8, 1.0, 1.5, 2.0, 3.0),
+        "z_source": (0.0, 0.5, 1.0, 1.5, 2.0, 2.5, 3.0, 4.0, 6.0),
+        "source_magnitude": (18.0, 22.0, 23.0, 24.0, 25.0, 26.0, 27.0, 28.0, 30.0)}
+MULTIPLICITIES = ("double", "quad", "ring")
+
+
+def forecast_recipe(recipe: Recipe, rules: str) -> Recipe:
+    """The recipe as a forecast draws it: sky mode, no negatives, neighbours or fields; under
+    ``collett2015`` without the recipe's own cuts (the rule set is the selection)."""
+    if recipe.lens.population is None or (recipe.source.counts is None and recipe.source.position.density is None):
+        raise SimlensError(f"{recipe.origin}: a forecast needs populations with rates: a [lens.population] table "
+                           "(the velocity dispersion function) and a [source.counts] table (number counts) or "
+                           "source.position.density")
+    if rules not in RULE_SETS:
+        raise SimlensError(f"unknown rule set {rules!r}; choose from {', '.join(RULE_SETS)}")
+    from .recipe.schema import NegativeSettings, SelectionSettings
+
+    source = dataclasses.replace(recipe.source, position=dataclasses.replace(recipe.source.position, mode="sky"))
+    changes = dict(source=source, negatives=NegativeSettings(), neighbours=None, field=None)
+    if rules != "selection":
+        changes["selection"] = dataclasses.replace(SelectionSettings(), max_candidates=recipe.selection.max_candidates)
+    return dataclasses.replace(recipe, **changes)
+
+
+@dataclass(frozen=True)
+class SourceView:
+    """The fast noiseless view of a system's lensed source in one band."""
+
+    band: str
+    magnification: float  # lensed over unlensed flux of the extended source
+    snr: float  # sqrt(sum S^2 / var) with the lens light subtracted, its noise kept
+    ring: bool  # the arc above 1 sigma surrounds the lens (RING_COVERAGE of the azimuth)
+
+
+def estimated_source_view(system, survey, bands) -> list[SourceView]:
+    """Magnification and S/N of ``system``'s lensed source in ``bands`` without rendering the
+    observation: the renderer's ray map and refined source samples
+    (:class:`~simlens.imaging.rays.ComponentImages`), the band's PSF sampled at the samples' scale
+    (:func:`~simlens.imaging.observe.psf_kernel`), block sums to pixels, and the CCD equation's
+    variance of sky, read noise and the lens light (its analytic surface brightness at the pixel
+    centres)."""
+    from scipy.signal import fftconvolve
+
+    from .imaging.rays import ComponentImages
+    from .imaging.render import observation_rays, pixel_grid_for
+    from .imaging.scene import build_scene
+    from .imaging.observe import psf_kernel, unresampled_variance
+
+    grid = pixel_grid_for(system, survey)
+    scene = build_scene(system)
+    rays, sampling = observation_rays(scene.deflector, grid)
+    components = ComponentImages(rays, sampling=sampling, adaptive=survey.adaptive_supersampling)
+    components.prepare_lensed(scene.source_light[bands[0]])
+    n, pad = grid.size, grid.padding
+    centre = (np.arange(n) - 0.5 * (n - 1)) * grid.pixel_scale
+    x, y = np.meshgrid(centre, centre)
+    ox, oy = grid.lens_offset
+    azimuth = np.arctan2(y + oy, x + ox)
+    views = []
+    for name in bands:
+        band = system.band(name)
+        light = scene.source_light[name]
+        if light.flux <= 0:
+            views.append(SourceView(name, math.nan, 0.0, False))
+            continue
+        samples = components.render(light, lensed=True)
+        kernel = psf_kernel(band, grid.pixel_scale / sampling)
+        blurred = fftconvolve(samples, kernel / kernel.sum(), mode="same")
+        m = blurred.shape[0] // sampling
+        pixels = blurred.reshape(m, sampling, m, sampling).sum(axis=(1, 3))[pad:pad + n, pad:pad + n]
+        lens = scene.lens_light[name].surface_brightness(x, y) * grid.pixel_scale**2
+        variance = unresampled_variance(band, lens + pixels)
+        snr = float(np.sqrt(np.sum(pixels**2 / variance)))
+        above = pixels > np.sqrt(variance)
+        coverage = np.unique(((azimuth[above] + math.pi) / (2 * math.pi) * AZIMUTH_BINS).astype(int)).size
+        views.append(SourceView(name, float(samples.sum()) / light.flux, snr, coverage >= RING_COVERAGE * AZIMUTH_BINS))
+    return views
+
+
+def _collett_detection(system, survey, band_names) -> dict | None:
+    """The detection record of a system under ``collett2015``, or None."""
+    if not (system.lensing and system.multiply_imaged):
+        return None
+    r_s = system.source_half_light_radius
+    resolved = [b for b in band_names if system.einstein_radius**2 > r_s**2 + (system.band(b).psf_fwhm / 2) ** 2]
+    if not resolved:
+        return None
+    views = estimated_source_view(system, survey, resolved)
+    passing = [v for v in views if v.magnification > MIN_MAGNIFICATION and v.snr > DETECTION_SNR]
+    if not passing:
+        return None
+    best = max(passing, key=lambda v: v.snr)
+    return dict(band=best.band, snr=best.snr, magnification=best.magnification, ring=best.ring)
+
+
+@dataclass
+class Forecast:
+    """The outcome of a forecast: detected systems and the rates they give."""
+
+    recipe_name: str
+    rules: str
+    drawn: int  # deflector galaxies drawn (candidates, under ``selection``)
+    galaxies_per_deg2: float  # of the deflector population
+    area: float  # deg^2
+    detections: Table  # one row per detectable system
+
+    @property
+    def detected(self) -> int:
+        return len(self.detections)
+
+    @property
+    def per_deg2(self) -> float:
+        return self.galaxies_per_deg2 * self.detected / self.drawn
+
+    @property
+    def sampling_error_per_deg2(self) -> float:
+        """The rate's error from the finite draw (Poisson on the detected count)."""
+        return self.galaxies_per_deg2 * math.sqrt(max(self.detected, 1)) / self.drawn
+
+    @property
+    def in_area(self) -> float:
+        return self.per_deg2 * self.area
+
+    @property
+    def poisson_error_in_area(self) -> float:
+        """The scatter of the count a survey of ``area`` would find, given the rate."""
+        return math.sqrt(self.in_area)
+
+    def breakdown(self, column: str) -> Table:
+        """Counts and rates per deg^2 in bins of ``column`` (or per multiplicity)."""
+        per_system = self.galaxies_per_deg2 / self.drawn
+        if column == "multiplicity":
+            values = list(self.detections["multiplicity"]) if self.detected else []
+            counts = [values.count(kind) for kind in MULTIPLICITIES]
+            return Table({"multiplicity": list(MULTIPLICITIES), "detected": counts,
+                          "per_deg2": [c * per_system for c in counts]})
+        edges = np.array(BINS[column])
+        values = np.asarray(self.detections[column], float) if self.detected else np.empty(0)
+        counts, _ = np.histogram(values, bins=edges)
+        return Table({f"{column}_low": edges[:-1], f"{column}_high": edges[1:], "detected": counts,
+                      "per_deg2": counts * per_system})
+
+    def summary(self) -> dict:
+        return {"recipe": self.recipe_name, "rules": self.rules, "drawn": self.drawn, "detected": self.detected,
+                "deflectors_per_deg2": self.galaxies_per_deg2, "lenses_per_deg2": self.per_deg2,
+                "sampling_error_per_deg2": self.sampling_error_per_deg2, "area_deg2": self.area,
+                "lenses_in_area": self.in_area, "poisson_error_in_area": self.poisson_error_in_area}
+
+
+def forecast(recipe: Recipe, n: int, area: float, rules: str = "collett2015", progress=None) -> Forecast:
+    """Draw ``n`` deflector galaxies of ``recipe`` in sky mode and count the detectable lenses."""
+    from .runs.rendering import rendered_systems
+    from .truth.sampler import PopulationSampler
+
+    if not n >= 1:
+        raise SimlensError(f"--n must be at least 1, got {n}")
+    if not area > 0:
+        raise SimlensError(f"--area must be positive, got {area}")
+    drawn_recipe = forecast_recipe(recipe, rules).with_overrides(count=n)
+    sampler = PopulationSampler(drawn_recipe)
+    galaxies = sampler.deflectors.sky_density() / DEGREE2_PER_STERADIAN
+    survey, rows, drawn = drawn_recipe.survey, [], 0
+    band_names = survey.band_names
+    counts = drawn_recipe.source.counts
+    counts_band = (counts.band if counts is not None else None) or drawn_recipe.reference_band
+    reference = drawn_recipe.reference_band
+    chunk = 5000
+    for start in range(0, n, chunk):
+        ids = range(start, min(start + chunk, n))
+        if rules == "selection":
+            for r in rendered_systems(sampler, list(ids), {}):
+                drawn += r.system.candidate + 1
+                found = dict(band=reference, snr=r.band(reference).arc_snr, magnification=r.magnification, ring=False)
+                rows.append(_row(r.system, found, len(r.images), counts_band))
+        else:
+            for system in sampler.draw_many(ids):
+                drawn += 1
+                if rules == "multiply_imaged":
+                    found = (dict(band="", snr=math.nan, magnification=math.nan, ring=False)
+                             if system.lensing and system.multiply_imaged else None)
+                else:
+                    found = _collett_detection(system, survey, band_names)
+                if found is not None:
+                    rows.append(_row(system, found, None, counts_band))
+        if progress is not None:
+            progress(min(start + chunk, n), n)
+    names = ("system_id", "einstein_radius", "z_lens", "z_source", "source_magnitude", "band", "snr",
+             "magnification", "n_images", "multiplicity")
+    table = Table(rows=rows, names=names) if rows else Table(names=names, dtype=[int, float, float, float, float, str,
+                                                                                   float, float, int, str])
+    return Forecast(recipe_name=recipe.name, rules=rules, drawn=drawn, galaxies_per_deg2=galaxies, area=area,
+                    detections=table)
+
+
+def _row(system, found: dict, n_images: int | None, magnitude_band: str) -> tuple:
+    """A detection's row; ``n_images`` of the source centre (found here when None)."""
+    if n_images is None:
+        from .imaging.scene import build_scene
+        from .lensing.lens_equation import find_images
+
+        theta = system.einstein_radius
+        reach = 2.5 * theta / math.sqrt(system.mass_q) + math.hypot(system.source_x, system.source_y)
+        windows = [(reach, reach / 100.0)] + [(f * theta, f * theta / 50.0) for f in (0.2, 0.02)]
+        n_images = len(find_images(build_scene(system).deflector, system.source_x, system.source_y, windows))
+    multiplicity = "ring" if found["ring"] else "quad" if n_images >= 4 else "double"
+    return (system.system_id, system.einstein_radius, system.z_lens, system.z_source,
+            system.source_magnitude(magnitude_band), found["band"], found["snr"], found["magnification"], n_images,
+            multiplicity)
+
+
+FORECAST_RECORD = "forecast.json"  # the files a forecast wrote: the only ones --overwrite removes
+FORECAST_FORMAT = "simlens-forecast/1"
+BREAKDOWNS = ("einstein_radius", "z_lens", "z_source", "source_magnitude", "multiplicity")
+
+
+def write_forecast(result: Forecast, out: Path, overwrite: bool = False) -> list[str]:
+    """``detections.ecsv`` (one row per detectable system), ``breakdown_<column>.ecsv``,
+    ``summary.json`` and ``forecast.png`` in ``out`` (a new folder, or an earlier forecast's)."""
+    from .output.atomic import atomic_path
+    from .output.ownership import claim_folder, write_record
+
+    claim_folder(out, overwrite, FORECAST_RECORD, FORECAST_FORMAT, "forecast")
+    files = []
+    tables = {"detections.ecsv": result.detections}
+    tables.update({f"breakdown_{column}.ecsv": result.breakdown(column) for column in BREAKDOWNS})
+    for name, table in tables.items():
+        with atomic_path(out / name) as tmp:
+            table.write(tmp, format="ascii.ecsv")
+        files.append(name)
+    with atomic_path(out / "summary.json") as tmp:
+        tmp.write_text(json.dumps(result.summary(), indent=1) + "\n", encoding="utf-8")
+    files.append("summary.json")
+    with atomic_path(out / "forecast.png") as tmp:
+        _plot(result, tmp)
+    files.append("forecast.png")
+    write_record(out, FORECAST_RECORD, FORECAST_FORMAT, files)
+    return files
+
+
+def _plot(result: Forecast, path) -> None:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    labels = {"einstein_radius": "Einstein radius (arcsec)", "z_lens": "lens redshift", "z_source": "source redshift",
+              "source_magnitude": "unlensed source magnitude", "multiplicity": "image configuration"}
+    fig, axes = plt.subplots(1, len(BREAKDOWNS), figsize=(4.0 * len(BREAKDOWNS), 3.4))
+    for ax, column in zip(axes, BREAKDOWNS):
+        table = result.breakdown(column)
+        if column == "multiplicity":
+            ax.bar(list(table["multiplicity"]), table["per_deg2"], color="0.35")
+        else:
+            low, high = np.asarray(table[f"{column}_low"]), np.asarray(table[f"{column}_high"])
+            ax.bar(low, table["per_deg2"], width=high - low, align="edge", color="0.35", edgecolor="white")
+        ax.set_xlabel(labels[column])
+        ax.set_ylabel("lenses per deg$^2$")
+    fig.suptitle(f"{result.recipe_name}: {result.per_deg2:.2f} +- {result.sampling_error_per_deg2:.2f} detectable "
+                 f"lenses per deg$^2$ ({result.rules}; {result.detected} of {result.drawn} deflectors drawn)")
+    fig.tight_layout()
+    fig.savefig(path, dpi=90, format="png")
+    plt.close(fig)
