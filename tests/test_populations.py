@@ -213,7 +213,8 @@ def test_physical_recipe_draws_consistent_systems():
         assert s.einstein_radius == pytest.approx(4 * math.pi * (s.velocity_dispersion / 299792.458) ** 2 * ratio
                                                   * 206264.806, rel=1e-5)
         # Lens apparent magnitude = M + distance modulus + K (astropy's distmod)
-        assert s.lens_stellar_mass == pytest.approx(3.0 * s.lens_luminosity)
+        # M/L = 3 of today's luminosity, the luminosity seen brightened by 0.85 z mag (passive evolution)
+        assert s.lens_stellar_mass == pytest.approx(3.0 * s.lens_luminosity * 10 ** (-0.4 * 0.85 * s.z_lens))
         assert math.isfinite(s.source_absolute_magnitude)
         assert math.hypot(s.source_x, s.source_y) <= s.region_radius
     # lens light follows the mass's orientation within the scatter (10 deg)
@@ -238,3 +239,18 @@ def test_lens_light_follows_the_mass_with_the_slacs_scatter():
     assert ratio.mean() == pytest.approx(1.0, abs=4 * 0.11 / math.sqrt(n))
     assert ratio.std() == pytest.approx(0.11, rel=0.05)
     assert offset.std() == pytest.approx(10.0, rel=0.05) and abs(offset.mean()) < 4 * 10.0 / math.sqrt(n)
+
+
+def test_lens_light_brightens_passively_with_redshift_at_fixed_size_and_mass():
+    # Bernardi et al. (2003, AJ 125, 1849; from memory): early types at fixed sigma are brighter by
+    # about 0.85 z mag in r (luminosity_evolution): the same draws without it are fainter by exactly
+    # 0.85 z in every band, with the same half-light radius and stellar mass.
+    evolving = PopulationSampler(parse_recipe(PHYSICAL_RECIPE))
+    still = PopulationSampler(parse_recipe(PHYSICAL_RECIPE.replace("mass_to_light = 3.0",
+                                                                   "mass_to_light = 3.0\nluminosity_evolution = 0.0")))
+    for a, b in zip(evolving.draw_many(range(8)), still.draw_many(range(8))):
+        assert (a.z_lens, a.velocity_dispersion) == (b.z_lens, b.velocity_dispersion)
+        for band in a.lens_magnitudes:
+            assert a.lens_magnitudes[band] - b.lens_magnitudes[band] == pytest.approx(-0.85 * a.z_lens, abs=1e-9)
+        assert a.lens_half_light_radius == pytest.approx(b.lens_half_light_radius, rel=1e-12)
+        assert a.lens_stellar_mass == pytest.approx(b.lens_stellar_mass, rel=1e-12)

@@ -134,15 +134,18 @@ class LensLightModel:
         s = self.settings
         sigma, z = np.asarray(sigma, dtype=float), np.asarray(z, dtype=float)
         fj, plane = self.faber_jackson, self.plane
-        absolute = fj.mean_magnitude(sigma) + fj.scatter * normals[:, 0]
-        r_kpc = 10 ** (plane.mean_log_radius(sigma, absolute) + plane.scatter * normals[:, 1])
+        today = fj.mean_magnitude(sigma) + fj.scatter * normals[:, 0]  # the z = 0 relations'
+        r_kpc = 10 ** (plane.mean_log_radius(sigma, today) + plane.scatter * normals[:, 1])
+        absolute = today - s.luminosity_evolution * z  # passive brightening; size and mass as today
         modulus = self.distances.distmod(z)
         k = self.k.at_many(z)
         ratio = np.maximum(1.0 + s.q_scatter * normals[:, 2], MIN_AXIS_RATIO_RATIO)  # q_mass / q_light
         q = np.clip(np.asarray(mass_q, dtype=float) / ratio, MIN_LIGHT_AXIS_RATIO, 1.0)
         angle = np.asarray(mass_angle, dtype=float) + s.angle_scatter * normals[:, 3]
         luminosity = 10 ** (-0.4 * (absolute - SUN_ABSOLUTE_MAGNITUDE_R))
-        stellar = luminosity * s.mass_to_light if s.mass_to_light is not None else np.full(z.shape, math.nan)
+        # the stars' mass is today's luminosity times today's M/L (passive evolution changes M/L, not M)
+        stellar = (10 ** (-0.4 * (today - SUN_ABSOLUTE_MAGNITUDE_R)) * s.mass_to_light if s.mass_to_light is not None
+                   else np.full(z.shape, math.nan))
         radius = _arcsec(r_kpc, self.distances.angular_diameter_distance(z))
         mags = absolute + modulus + k  # (bands, n)
         return [LensLight(absolute_magnitude=float(absolute[j]), luminosity=float(luminosity[j]),

@@ -354,6 +354,9 @@ class LensLightScalingSettings:
                                       "light aligned within about 10 deg, from memory)")
     mass_to_light: float = number(optional=True, low=0, low_open=True, high=100,
                                   doc="stellar M/L in the rest filter (M_sun/L_sun), for the stellar-mass truth")
+    luminosity_evolution: float = number(0.85, low=-5, high=5, unit="mag",
+                                         doc="passive evolution: M(z) = M(0) - this z at fixed sigma and size "
+                                             "(early types, r band: 0.85, Bernardi et al. 2003, from memory)")
 
 
 @dataclass(frozen=True, kw_only=True)

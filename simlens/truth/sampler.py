@@ -305,7 +305,8 @@ class PopulationSampler:
 
     def _stars_and_halo(self, v: dict, light, z_lens: float, z_source: float) -> tuple[float, dict]:
         """theta_E and the truth of the stars-plus-halo deflector, whose stars follow the light."""
-        parts = stars_and_halo(light.luminosity, self.recipe.lens.light.scaling.mass_to_light,
+        mass_to_light = self.recipe.lens.light.scaling.mass_to_light  # today's: with today's luminosity
+        parts = stars_and_halo(light.stellar_mass / mass_to_light, mass_to_light,
                                light.half_light_radius, v["lens.light.sersic_index"], v["lens.mass.halo_mass"],
                                v.get("lens.mass.concentration"), z_lens, z_source, self.distances)
         return parts.einstein_radius, dict(
@@ -478,11 +479,12 @@ class PopulationSampler:
     def _satellite(self, subhalo: Subhalo, z_lens: float) -> Subhalo:
         """A subhalo with its satellite galaxy: stellar mass from its mass (Moster et al. 2013;
         the truncated mass, below the infall mass the relation was fitted to, so faint), luminosity
-        from the lens's mass-to-light ratio, magnitudes through the lens's template, size from the
+        from the lens's mass-to-light ratio and passive evolution, magnitudes through the lens's template, size from the
         late-type relation of Shen et al. (2003; it bends for dwarfs), an exponential disk."""
         stellar = float(SATELLITE_STELLAR_MASS.stellar_mass(subhalo.mass, z_lens))
-        luminosity = stellar / self.recipe.lens.light.scaling.mass_to_light
-        absolute = SUN_ABSOLUTE_MAGNITUDE_R - 2.5 * math.log10(luminosity)
+        scaling = self.recipe.lens.light.scaling
+        luminosity = stellar / scaling.mass_to_light
+        absolute = SUN_ABSOLUTE_MAGNITUDE_R - 2.5 * math.log10(luminosity) - scaling.luminosity_evolution * z_lens
         k = self.lens_light_model.k.at(z_lens)
         modulus = float(self.distances.distmod(z_lens))
         radius_kpc = 10 ** float(SATELLITE_SIZES.mean_log_radius(absolute, z_lens))
