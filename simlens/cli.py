@@ -8,7 +8,7 @@
                   [--match-radius ARCSEC]
     simlens inject IMAGE.fits [IMAGE.fits ...] --recipe RECIPE --lenses CATALOG [--bands g,r,i] [--psf PSF.fits] [--out DIR]
     simlens gallery RUN_DIR [--where "COLUMN OP VALUE" ...] [--missed SCORES --threshold T] [--sort COLUMN]
-    simlens forecast RECIPE [--area DEG2] [--n N] [--rules collett2015|selection|multiply_imaged] [--out DIR]
+    simlens forecast RECIPE [--area DEG2] [--n N] [--rules collett2015|collett2015_matched|selection|multiply_imaged] [--out DIR]
 
 Every error prints one line (``simlens: error: ...``), never a traceback unless ``--debug`` is given.
 Exit status: 0 success; 1 a run that failed or a verify that found damage; 2 an input error (a
@@ -327,9 +327,10 @@ def build_parser() -> argparse.ArgumentParser:
     fc.add_argument("recipe", help="recipe with [lens.population] and [source.counts] (drawn in sky mode)")
     fc.add_argument("--area", type=float, default=1.0, help="survey area in deg^2 (default 1)")
     fc.add_argument("--n", type=int, default=20000, help="deflector galaxies to draw (default 20000)")
-    fc.add_argument("--rules", default="collett2015", choices=("collett2015", "selection", "multiply_imaged"),
-                    help="detectability: Collett (2015)'s rule set, the recipe's own [selection] cuts, or every "
-                         "multiply imaged source (the optical depth)")
+    fc.add_argument("--rules", default="collett2015",
+                    choices=("collett2015", "collett2015_matched", "selection", "multiply_imaged"),
+                    help="detectability: Collett (2015)'s rule set (or with the matched-filter S/N), the recipe's "
+                         "own [selection] cuts, or every multiply imaged source (the optical depth)")
     fc.add_argument("--seed", type=int, help="random seed (overrides the recipe's)")
     fc.add_argument("--out", help="output folder (default: outputs/forecast_<recipe name>)")
     fc.add_argument("--overwrite", action="store_true", help="replace an earlier forecast in --out")

@@ -9,10 +9,13 @@ it.  A system is *detectable* by a rule set:
 - ``collett2015`` (Collett 2015, ApJ 811, 20; as summarised from memory): the source is multiply
   imaged; in some band b the lens is resolved, theta_E^2 > r_s^2 + (FWHM_b / 2)^2 (r_s the
   source's half-light radius); the source's total magnification exceeds 3; and the lensed source,
-  with the lens light subtracted (its noise kept), has S/N > 20 in that band.  Magnification and
+  with the lens light subtracted (its noise kept), has S/N > 20 in that band, the S/N summed over
+  the pixels where the lensed source exceeds the noise (sum S / sqrt(sum var); Collett's
+  definition as we read it).  ``collett2015_matched`` takes the optimal matched-filter S/N
+  (simlens's arc S/N, sqrt(sum S^2 / var) over all pixels) instead: higher for faint, spread arcs.  Magnification and
   S/N need images: they come from a fast noiseless estimate (:func:`estimated_source_view`: the
   renderer's rays and refined source, the band's PSF sampled once, block sums, the CCD-equation
-  variance of sky, read noise and the lens light at the pixel centres; no GalSim stage, no noise)
+  variance of sky, read noise and the lens light; no GalSim stage, no noise)
   for the systems that pass the cuts without images.
 - ``selection``: the recipe's own ``[selection]`` cuts, judged as ``make`` judges them (images
   rendered where a cut needs them); the detectable share is accepted systems over candidates.
@@ -40,7 +43,7 @@ from .recipe import Recipe
 __all__ = ["RULE_SETS", "Forecast", "forecast", "estimated_source_view", "SourceView", "forecast_recipe",
            "write_forecast"]
 
-RULE_SETS = ("collett2015", "selection", "multiply_imaged")
+RULE_SETS = ("collett2015", "collett2015_matched", "selection", "multiply_imaged")
 DETECTION_SNR = 20.0  # Collett 2015
 MIN_MAGNIFICATION = 3.0  # Collett 2015
 RING_COVERAGE = 0.75  # an arc above 1 sigma around this share of the azimuth is a ring (common practice)
@@ -66,7 +69,7 @@ def forecast_recipe(recipe: Recipe, rules: str) -> Recipe:
 
     source = dataclasses.replace(recipe.source, position=dataclasses.replace(recipe.source.position, mode="sky"))
     changes = dict(source=source, negatives=NegativeSettings(), neighbours=None, field=None)
-    if rules != "selection":
+    if rules != "selection":  # the rule set is the selection
         changes["selection"] = dataclasses.replace(SelectionSettings(), max_candidates=recipe.selection.max_candidates)
     return dataclasses.replace(recipe, **changes)
 
@@ -77,7 +80,8 @@ class SourceView:
 
     band: str
     magnification: float  # lensed over unlensed flux of the extended source
-    snr: float  # sqrt(sum S^2 / var) with the lens light subtracted, its noise kept
+    snr: float  # sum S / sqrt(sum var) over the pixels where S > sqrt(var) (Collett 2015's S/N)
+    matched_snr: float  # sqrt(sum S^2 / var) over all pixels (simlens's arc_snr: the optimal filter)
     ring: bool  # the arc above 1 sigma surrounds the lens (RING_COVERAGE of the azimuth)
 
 
@@ -86,8 +90,7 @@ def estimated_source_view(system, survey, bands) -> list[SourceView]:
     observation: the renderer's ray map and refined source samples
     (:class:`~simlens.imaging.rays.ComponentImages`), the band's PSF sampled at the samples' scale
     (:func:`~simlens.imaging.observe.psf_kernel`), block sums to pixels, and the CCD equation's
-    variance of sky, read noise and the lens light (its analytic surface brightness at the pixel
-    centres)."""
+    variance of sky, read noise and the lens light (sampled and blurred alike)."""
     from scipy.signal import fftconvolve
 
     from .imaging.rays import ComponentImages
@@ -110,24 +113,32 @@ def estimated_source_view(system, survey, bands) -> list[SourceView]:
         band = system.band(name)
         light = scene.source_light[name]
         if light.flux <= 0:
-            views.append(SourceView(name, math.nan, 0.0, False))
+            views.append(SourceView(name, math.nan, 0.0, 0.0, False))
             continue
         samples = components.render(light, lensed=True)
         kernel = psf_kernel(band, grid.pixel_scale / sampling)
-        blurred = fftconvolve(samples, kernel / kernel.sum(), mode="same")
-        m = blurred.shape[0] // sampling
-        pixels = blurred.reshape(m, sampling, m, sampling).sum(axis=(1, 3))[pad:pad + n, pad:pad + n]
-        lens = scene.lens_light[name].surface_brightness(x, y) * grid.pixel_scale**2
+        kernel = kernel / kernel.sum()
+        m = samples.shape[0] // sampling
+
+        def observed(fine):
+            blurred = fftconvolve(fine, kernel, mode="same")
+            return blurred.reshape(m, sampling, m, sampling).sum(axis=(1, 3))[pad:pad + n, pad:pad + n]
+
+        pixels = observed(samples)
+        lens = observed(components.render(scene.lens_light[name], lensed=False))
         variance = unresampled_variance(band, lens + pixels)
-        snr = float(np.sqrt(np.sum(pixels**2 / variance)))
+        matched = float(np.sqrt(np.sum(pixels**2 / variance)))
         above = pixels > np.sqrt(variance)
+        snr = float(pixels[above].sum() / math.sqrt(variance[above].sum())) if above.any() else 0.0
         coverage = np.unique(((azimuth[above] + math.pi) / (2 * math.pi) * AZIMUTH_BINS).astype(int)).size
-        views.append(SourceView(name, float(samples.sum()) / light.flux, snr, coverage >= RING_COVERAGE * AZIMUTH_BINS))
+        views.append(SourceView(name, float(samples.sum()) / light.flux, snr, matched,
+                                coverage >= RING_COVERAGE * AZIMUTH_BINS))
     return views
 
 
-def _collett_detection(system, survey, band_names) -> dict | None:
-    """The detection record of a system under ``collett2015``, or None."""
+def _collett_detection(system, survey, band_names, matched: bool = False) -> dict | None:
+    """The detection record of a system under ``collett2015`` (``matched``: its matched-filter
+    variant), or None."""
     if not (system.lensing and system.multiply_imaged):
         return None
     r_s = system.source_half_light_radius
@@ -135,11 +146,13 @@ def _collett_detection(system, survey, band_names) -> dict | None:
     if not resolved:
         return None
     views = estimated_source_view(system, survey, resolved)
-    passing = [v for v in views if v.magnification > MIN_MAGNIFICATION and v.snr > DETECTION_SNR]
+    snr = (lambda v: v.matched_snr) if matched else (lambda v: v.snr)
+    passing = [v for v in views if v.magnification > MIN_MAGNIFICATION and snr(v) > DETECTION_SNR]
     if not passing:
         return None
-    best = max(passing, key=lambda v: v.snr)
-    return dict(band=best.band, snr=best.snr, magnification=best.magnification, ring=best.ring)
+    best = max(passing, key=snr)
+    return dict(band=best.band, snr=best.snr, matched_snr=best.matched_snr, magnification=best.magnification,
+                ring=best.ring)
 
 
 @dataclass
@@ -219,24 +232,25 @@ def forecast(recipe: Recipe, n: int, area: float, rules: str = "collett2015", pr
         if rules == "selection":
             for r in rendered_systems(sampler, list(ids), {}):
                 drawn += r.system.candidate + 1
-                found = dict(band=reference, snr=r.band(reference).arc_snr, magnification=r.magnification, ring=False)
+                found = dict(band=reference, snr=math.nan, matched_snr=r.band(reference).arc_snr,
+                             magnification=r.magnification, ring=False)
                 rows.append(_row(r.system, found, len(r.images), counts_band))
         else:
             for system in sampler.draw_many(ids):
                 drawn += 1
                 if rules == "multiply_imaged":
-                    found = (dict(band="", snr=math.nan, magnification=math.nan, ring=False)
+                    found = (dict(band="", snr=math.nan, matched_snr=math.nan, magnification=math.nan, ring=False)
                              if system.lensing and system.multiply_imaged else None)
                 else:
-                    found = _collett_detection(system, survey, band_names)
+                    found = _collett_detection(system, survey, band_names, matched=rules == "collett2015_matched")
                 if found is not None:
                     rows.append(_row(system, found, None, counts_band))
         if progress is not None:
             progress(min(start + chunk, n), n)
     names = ("system_id", "einstein_radius", "z_lens", "z_source", "source_magnitude", "band", "snr",
-             "magnification", "n_images", "multiplicity")
+             "matched_snr", "magnification", "n_images", "multiplicity")
     table = Table(rows=rows, names=names) if rows else Table(names=names, dtype=[int, float, float, float, float, str,
-                                                                                   float, float, int, str])
+                                                                                   float, float, float, int, str])
     return Forecast(recipe_name=recipe.name, rules=rules, drawn=drawn, galaxies_per_deg2=galaxies, area=area,
                     detections=table)
 
@@ -253,8 +267,8 @@ def _row(system, found: dict, n_images: int | None, magnitude_band: str) -> tupl
         n_images = len(find_images(build_scene(system).deflector, system.source_x, system.source_y, windows))
     multiplicity = "ring" if found["ring"] else "quad" if n_images >= 4 else "double"
     return (system.system_id, system.einstein_radius, system.z_lens, system.z_source,
-            system.source_magnitude(magnitude_band), found["band"], found["snr"], found["magnification"], n_images,
-            multiplicity)
+            system.source_magnitude(magnitude_band), found["band"], found["snr"], found["matched_snr"],
+            found["magnification"], n_images, multiplicity)
 
 
 FORECAST_RECORD = "forecast.json"  # the files a forecast wrote: the only ones --overwrite removes

@@ -746,15 +746,21 @@ class _GeometryPhase:
         the first of them (or, with none in the disc, one placed outside the caustics: a non-lens).
         The candidate's drawn source properties are that source's (every source is alike in law)."""
         density = self.sampler.source_density / 3600.0  # per arcsec^2
-        for t, j in enumerate(todo):
-            rng = physics[j]
-            n = int(rng.poisson(density * math.pi * radius[t] ** 2))
-            x, y = np.array([_uniform_in_disc(float(radius[t]), rng) for _ in range(max(n, 1))]).reshape(-1, 2).T
-            multiple = caustics.multiply_imaged(np.full(x.size, j), x, y)
+        counts = [int(physics[j].poisson(density * math.pi * radius[t] ** 2)) for t, j in enumerate(todo)]
+        points = [np.array([_uniform_in_disc(float(radius[t]), physics[j]) for _ in range(max(n, 1))])
+                  for t, (j, n) in enumerate(zip(todo, counts))]
+        rows = np.repeat(todo, [len(p) for p in points])
+        xy = np.concatenate(points)
+        inside = caustics.multiply_imaged(rows, xy[:, 0], xy[:, 1])  # all rows' points at once
+        first = 0
+        for t, (j, n) in enumerate(zip(todo, counts)):
+            x, y = points[t][:, 0], points[t][:, 1]
+            multiple = inside[first:first + len(x)]
+            first += len(x)
             for _ in range(SKY_EMPTY_DISC_TRIES if n == 0 else 0):  # no source here: one outside the caustics
                 if not multiple[0]:
                     break
-                x, y = (np.array([v]) for v in _uniform_in_disc(float(radius[t]), rng))
+                x, y = (np.array([v]) for v in _uniform_in_disc(float(radius[t]), physics[j]))
                 multiple = caustics.multiply_imaged(np.array([j]), x, y)
             k = int(np.argmax(multiple)) if multiple.any() else 0
             out[j] = caustics.placed(j, x[k], y[k], radius[t], bool(widened[t]), bool(multiple[k]) and n > 0, "sky")
