@@ -46,10 +46,11 @@ __all__ = ["RULE_SETS", "Forecast", "forecast", "estimated_source_view", "Source
 RULE_SETS = ("collett2015", "collett2015_matched", "selection", "multiply_imaged")
 DETECTION_SNR = 20.0  # Collett 2015
 MIN_MAGNIFICATION = 3.0  # Collett 2015
-RING_COVERAGE = 0.75  # an arc above 1 sigma around this share of the azimuth is a ring (common practice)
+RING_COVERAGE = 0.75  # lensed light around this share of the azimuth is a ring (common practice)
+RING_LEVEL = 0.05  # ... counting the pixels above this share of its brightest (the lensed image before the PSF)
 AZIMUTH_BINS = 36
 DEGREE2_PER_STERADIAN = (180.0 / math.pi) ** 2
-BINS = {"einstein_radius": (0.0, 0.5, 1.0, 1.5, 2.0, 3.0, 5.0, 10.0),
+BINS = {"einstein_radius": (0.0, 0.25, 0.5, 0.75, 1.0, 1.25, 1.5, 2.0, 2.5, 3.0, 4.0, 6.0),
         "z_lens": (0.0, 0.2, 0.4, 0.6, 0.8, 1.0, 1.5, 2.0, 3.0),
         "z_source": (0.0, 0.5, 1.0, 1.5, 2.0, 2.5, 3.0, 4.0, 6.0),
         "source_magnitude": (18.0, 22.0, 23.0, 24.0, 25.0, 26.0, 27.0, 28.0, 30.0)}
@@ -82,7 +83,7 @@ class SourceView:
     magnification: float  # lensed over unlensed flux of the extended source
     snr: float  # sum S / sqrt(sum var) over the pixels where S > sqrt(var) (Collett 2015's S/N)
     matched_snr: float  # sqrt(sum S^2 / var) over all pixels (simlens's arc_snr: the optimal filter)
-    ring: bool  # the arc above 1 sigma surrounds the lens (RING_COVERAGE of the azimuth)
+    ring: bool  # the lensed image (before the PSF) surrounds the lens (RING_COVERAGE of the azimuth)
 
 
 def estimated_source_view(system, survey, bands) -> list[SourceView]:
@@ -130,7 +131,9 @@ def estimated_source_view(system, survey, bands) -> list[SourceView]:
         matched = float(np.sqrt(np.sum(pixels**2 / variance)))
         above = pixels > np.sqrt(variance)
         snr = float(pixels[above].sum() / math.sqrt(variance[above].sum())) if above.any() else 0.0
-        coverage = np.unique(((azimuth[above] + math.pi) / (2 * math.pi) * AZIMUTH_BINS).astype(int)).size
+        intrinsic = samples.reshape(m, sampling, m, sampling).sum(axis=(1, 3))[pad:pad + n, pad:pad + n]
+        bright = intrinsic > RING_LEVEL * intrinsic.max()
+        coverage = np.unique(((azimuth[bright] + math.pi) / (2 * math.pi) * AZIMUTH_BINS).astype(int)).size
         views.append(SourceView(name, float(samples.sum()) / light.flux, snr, matched,
                                 coverage >= RING_COVERAGE * AZIMUTH_BINS))
     return views
