@@ -72,14 +72,16 @@ CENTRAL_WINDOWS = (0.2, 0.02, 0.002)
 
 
 def image_search_windows(einstein_radius: float, q: float, source_offset: float,
-                         grid: PixelGrid) -> list[tuple[float, float]]:
+                         grid: PixelGrid, whole_cutout: bool = True) -> list[tuple[float, float]]:
     """Meshes for :func:`simlens.lens_equation.find_images`, all within the cutout: a coarse one over
-    the cutout, a fine one around the Einstein ring, and nested ones around the centre."""
+    the cutout (``whole_cutout``: where images may form far from the main lens, as near
+    line-of-sight galaxies), a fine one over the reach of the main lens's images (2.5 theta_E /
+    sqrt(q) beyond the source's offset), and nested ones around the centre."""
     half = 0.5 * grid.size * grid.pixel_scale
     if einstein_radius <= 0:  # no deflection (a source in front of the lens): the source itself
         return [(half, grid.pixel_scale)]
     reach = min(2.5 * einstein_radius / math.sqrt(q) + source_offset, half)
-    windows = [(half, grid.pixel_scale), (reach, reach / 100.0)]
+    windows = ([(half, grid.pixel_scale)] if whole_cutout or reach >= half else []) + [(reach, reach / 100.0)]
     windows += [(min(f * einstein_radius, half), min(f * einstein_radius, half) / 50.0) for f in CENTRAL_WINDOWS]
     return windows
 
@@ -134,7 +136,8 @@ class SystemRendering:
             t0 = time.perf_counter()
             system = self.system
             windows = image_search_windows(system.einstein_radius, system.mass_q,
-                                           math.hypot(system.source_x, system.source_y), self.grid)
+                                           math.hypot(system.source_x, system.source_y), self.grid,
+                                           whole_cutout=bool(system.line_of_sight))
             self._images = find_images(self.mass, system.source_x, system.source_y, windows)
             if system.line_of_sight:  # multi-plane: no single Fermat potential (not computed)
                 self.delays = np.full(len(self._images), math.nan)
