@@ -5,12 +5,9 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import math
-import textwrap
 
 import numpy as np
 import pytest
-from astropy import constants, units as u
 from astropy.table import Table
 from scipy import integrate
 
@@ -22,7 +19,7 @@ from simlens.recipe import parse_recipe
 from simlens.truth.sampler import PopulationSampler
 
 from .conftest import PHYSICAL_RECIPE
-from .test_placement import BASE
+from .test_placement import TOG84_DENSITY, TOG84_SOURCE_REDSHIFT, tog84_optical_depth, tog84_recipe
 
 
 def test_the_fast_source_view_matches_the_rendered_images():
@@ -47,31 +44,17 @@ def test_the_fast_source_view_matches_the_rendered_images():
 
 
 def test_with_no_cuts_the_rate_is_the_optical_depth_times_the_source_density():
-    # TOG84: for non-evolving SIS deflectors in a flat universe a source at z_s is multiply imaged
-    # with probability tau = (16 pi^3 / 30) n <sigma^4> D_C(z_s)^3 / c^4, so behind n_s sources per
-    # deg^2 there are tau n_s lenses per deg^2 (the forecast's "multiply_imaged" rules).
-    z_s, density = 2.0, 130.0  # sources per arcmin^2
-    recipe = parse_recipe(BASE + textwrap.dedent(f"""
-        [lens.population]
-        velocity_function = "choi2007"
-        redshift_range = [0.001, {z_s - 0.001}]
-        velocity_dispersion_range = [120.0, 300.0]
-        [source.position]
-        mode = "sky"
-        density = {density}
-        """))
+    # TOG84 (tests/test_placement.py's sky-mode test, reused): behind n_s sources per deg^2 there
+    # are tau n_s lenses per deg^2 (the forecast's "multiply_imaged" rules).
+    recipe = tog84_recipe()
     result = forecast(recipe, 6000, 1.0, "multiply_imaged")
     cosmo = recipe.cosmology.build()
-    vdf = VELOCITY_FUNCTIONS["choi2007"]
-    n = vdf.density(cosmo.h) * vdf.fraction_between(120.0, 300.0)
-    sigma4 = vdf.moment(4, 120.0, 300.0)
-    c = constants.c.to_value(u.km / u.s)
-    chi_s = cosmo.comoving_distance(z_s).value
-    tau = 16 * math.pi**3 / 30 * n * sigma4 * chi_s**3 / c**4
-    expected = tau * density * 3600.0  # lenses per deg^2
+    expected = tog84_optical_depth(cosmo) * TOG84_DENSITY * 3600.0  # lenses per deg^2
     assert result.per_deg2 == pytest.approx(expected, abs=4 * result.sampling_error_per_deg2)
     # the deflectors' sky density is the velocity function integrated over the comoving volume (scipy)
-    chi_lo, chi_hi = cosmo.comoving_distance([0.001, z_s - 0.001]).value
+    vdf = VELOCITY_FUNCTIONS["choi2007"]
+    n = vdf.density(cosmo.h) * vdf.fraction_between(120.0, 300.0)
+    chi_lo, chi_hi = cosmo.comoving_distance([0.001, TOG84_SOURCE_REDSHIFT - 0.001]).value
     volume_per_sr = integrate.quad(lambda chi: chi**2, chi_lo, chi_hi)[0]
     assert result.galaxies_per_deg2 == pytest.approx(n * volume_per_sr / DEGREE2_PER_STERADIAN, rel=2e-3)
 

@@ -170,32 +170,29 @@ def test_sis_time_delay_formula():
 
 
 # -- sky mode: the optical depth ----------------------------------------------------------------
-def test_sky_mode_strong_lens_fraction_is_the_optical_depth():
-    # TOG84: for non-evolving SIS deflectors in a flat universe the probability that a source at
-    # z_s is multiply imaged is tau = (16 pi^3 / 30) n <sigma^4> D_C(z_s)^3 / c^4.  In sky mode each
-    # lens has one source per 1/n_s of source-plane area, so the fraction of lenses with a
-    # multiply-imaged source is f = n_s <A>, and tau = f (galaxies per sr) / n_s.
-    z_s, density = 2.0, 130.0  # sources per arcmin^2
-    recipe = parse_recipe(BASE.replace("count = 10", "count = 6000") + textwrap.dedent(f"""
+TOG84_SOURCE_REDSHIFT, TOG84_DENSITY = 2.0, 130.0  # sources per arcmin^2
+
+
+def tog84_recipe(count: int = 6000):
+    """Non-evolving SIS deflectors (q = 1) of Choi et al. (2007) between 120 and 300 km/s in front
+    of sources at z = 2, 130 per arcmin^2, in sky mode."""
+    z_s = TOG84_SOURCE_REDSHIFT
+    return parse_recipe(BASE.replace("count = 10", f"count = {count}") + textwrap.dedent(f"""
         [lens.population]
         velocity_function = "choi2007"
         redshift_range = [0.001, {z_s - 0.001}]
         velocity_dispersion_range = [120.0, 300.0]
         [source.position]
         mode = "sky"
-        density = {density}
+        density = {TOG84_DENSITY}
         """))
-    sampler = PopulationSampler(recipe)
-    lensed = 0
-    for s in sampler.draw_many(range(recipe.count)):
-        assert not s.region_widened
-        lensed += s.multiply_imaged
-    f = lensed / recipe.count
-    per_sr = sampler.deflectors.sky_density()
-    n_s_per_sr = density / (1.0 / 60 * math.pi / 180) ** 2  # arcmin^-2 -> sr^-1
-    tau_mc = f * per_sr / n_s_per_sr
-    # quadrature (scipy) of the closed form's ingredients
-    cosmo = sampler.cosmology
+
+
+def tog84_optical_depth(cosmo) -> float:
+    """TOG84: for non-evolving SIS deflectors in a flat universe a source at z_s is multiply imaged
+    with probability tau = (16 pi^3 / 30) n <sigma^4> D_C(z_s)^3 / c^4; checked here against the
+    quadrature (scipy) of its ingredients over the drawn redshift range."""
+    z_s = TOG84_SOURCE_REDSHIFT
     vdf = VELOCITY_FUNCTIONS["choi2007"]
     n = vdf.density(cosmo.h) * vdf.fraction_between(120.0, 300.0)
     sigma4 = vdf.moment(4, 120.0, 300.0)
@@ -205,8 +202,24 @@ def test_sky_mode_strong_lens_fraction_is_the_optical_depth():
     integral = integrate.quad(lambda chi: chi**2 * (1 - chi / chi_s) ** 2, chi_lo, chi_hi)[0]
     tau = 16 * math.pi**3 * n * sigma4 / c**4 * integral
     assert tau == pytest.approx(16 * math.pi**3 / 30 * n * sigma4 * chi_s**3 / c**4, rel=1e-3)  # closed form
+    return tau
+
+
+def test_sky_mode_strong_lens_fraction_is_the_optical_depth():
+    # In sky mode each lens has one source per 1/n_s of source-plane area, so the fraction of lenses
+    # with a multiply-imaged source is f = n_s <A>, and tau = f (galaxies per sr) / n_s (TOG84).
+    recipe = tog84_recipe()
+    sampler = PopulationSampler(recipe)
+    lensed = 0
+    for s in sampler.draw_many(range(recipe.count)):
+        assert not s.region_widened
+        lensed += s.multiply_imaged
+    f = lensed / recipe.count
+    per_sr = sampler.deflectors.sky_density()
+    n_s_per_sr = TOG84_DENSITY / (1.0 / 60 * math.pi / 180) ** 2  # arcmin^-2 -> sr^-1
+    tau_mc = f * per_sr / n_s_per_sr
     error = math.sqrt(f * (1 - f) / recipe.count) * per_sr / n_s_per_sr
-    assert tau_mc == pytest.approx(tau, abs=3.5 * error)
+    assert tau_mc == pytest.approx(tog84_optical_depth(sampler.cosmology), abs=3.5 * error)
 
 
 def test_sky_mode_sources_are_a_poisson_process_where_the_caustics_reach_far():
