@@ -254,3 +254,35 @@ def test_lens_light_brightens_passively_with_redshift_at_fixed_size_and_mass():
             assert a.lens_magnitudes[band] - b.lens_magnitudes[band] == pytest.approx(-0.85 * a.z_lens, abs=1e-9)
         assert a.lens_half_light_radius == pytest.approx(b.lens_half_light_radius, rel=1e-12)
         assert a.lens_stellar_mass == pytest.approx(b.lens_stellar_mass, rel=1e-12)
+
+
+def test_uv_sizes_follow_the_shibuya_relation_and_meet_shen_at_z_1():
+    # Shibuya, Ouchi & Harikane (2015; from memory): star-forming galaxies' rest-UV sizes r_e ~
+    # L_UV^0.27 (1 + z)^-1.3, 1.66 kpc at z = 2 for 0.6 L*_UV(z=3).  A least-squares fit
+    # (numpy.linalg.lstsq) to sources drawn without scatter recovers both exponents; the UV magnitude
+    # is the counts-band magnitude less the distance modulus plus 2.5 log10(1 + z) (flat f_nu; astropy
+    # distmod).  The mixed relation turns from Shen et al. (2003) at z = 1 with a median jump under 25 %.
+    import dataclasses
+
+    from simlens.cosmology import DistanceTable
+    from simlens.populations.galaxies import SourceModel
+
+    recipe = parse_recipe(PHYSICAL_RECIPE)
+    distances = DistanceTable(recipe.cosmology.build())
+    settings = dataclasses.replace(recipe.source.counts, size_relation="shibuya2015", size_scatter=False)
+    model = SourceModel(settings, distances, {"i": "LSST_i"}, "i", None, ".")
+    rng = np.random.default_rng(3)
+    m, z = rng.uniform(23.0, 27.0, 400), rng.uniform(1.0, 4.0, 400)
+    sources = model.complete_many(m, z, np.zeros((400, 0)))
+    r_kpc = np.array([s.half_light_radius_kpc for s in sources])
+    uv = m - np.asarray(recipe.cosmology.build().distmod(z).value) + 2.5 * np.log10(1 + z)
+    design = np.column_stack([-0.4 * uv, np.log10(1 + z), np.ones_like(z)])
+    (alpha, beta, _), *_ = np.linalg.lstsq(design, np.log10(r_kpc), rcond=None)
+    assert alpha == pytest.approx(0.27, abs=1e-3) and beta == pytest.approx(-1.3, abs=1e-3)
+    at_two = model.uv_sizes.mean_log_radius(-21.0 + 2.5 * math.log10(1 / 0.6), 2.0)
+    assert 10 ** float(at_two) == pytest.approx(6.9 * 3 ** -1.3, rel=1e-9)
+    mixed = SourceModel(dataclasses.replace(settings, size_relation="mixed"), distances, {"i": "LSST_i"}, "i", None, ".")
+    shen = SourceModel(dataclasses.replace(settings, size_relation="shen2003"), distances, {"i": "LSST_i"}, "i", None, ".")
+    below = [s.half_light_radius for s in shen.complete_many(np.full(50, 24.5), np.full(50, 0.999), np.zeros((50, 0)))]
+    above = [s.half_light_radius for s in mixed.complete_many(np.full(50, 24.5), np.full(50, 1.0), np.zeros((50, 0)))]
+    assert np.median(above) == pytest.approx(np.median(below), rel=0.25)

@@ -16,7 +16,7 @@ import numpy as np
 from ..cosmology import ARCSEC_PER_RADIAN, DistanceTable
 from .photometry import kcorrection
 from .scaling_relations import (SUN_ABSOLUTE_MAGNITUDE_R, FaberJackson, FundamentalPlane, NumberCounts,
-                                RedshiftGivenMagnitude, SizeLuminosity)
+                                RedshiftGivenMagnitude, SizeLuminosity, UVSizeLuminosity)
 
 __all__ = ["LensLight", "LensLightModel", "SourcePhotometry", "SourceModel", "PointSourceColours",
            "core_half_light_radius", "split_core_and_envelope"]
@@ -166,7 +166,9 @@ class SourcePhotometry:
 
 
 class SourceModel:
-    """Number counts, p(z | m), the Shen et al. size-luminosity relation and templates."""
+    """Number counts, p(z | m), size-luminosity relations (Shen et al. 2003 in rest-frame r, and
+    Shibuya et al. 2015 in the rest-frame UV where the sources are star-forming galaxies seen in
+    their UV) and templates."""
 
     def __init__(self, settings, distances: DistanceTable, band_filters: Mapping[str, str], anchor_band: str,
                  clump_template: str | None, base: str, bulge_template: str | None = None):
@@ -176,6 +178,7 @@ class SourceModel:
         self.counts = NumberCounts(settings.density, settings.pivot, settings.slope)
         self.redshifts = RedshiftGivenMagnitude(settings.z0_slope, settings.z0_intercept)
         self.sizes = SizeLuminosity()
+        self.uv_sizes = UVSizeLuminosity()
         self.k_disk = _BandK({b: kcorrection(settings.template, f, settings.rest_filter, base)
                               for b, f in band_filters.items()})
         clumps = clump_template or settings.template
@@ -219,11 +222,18 @@ class SourceModel:
         k_disk, k_clump = self.k_disk.at_many(z), self.k_clump.at_many(z)
         anchor = self.k_disk.bands.index(self.anchor_band)
         k_anchor, clump_anchor = k_disk[anchor], k_clump[anchor]
-        absolute = m - self.distances.distmod(z) - k_anchor
-        log_r = self.sizes.mean_log_radius(absolute, z)
+        modulus = self.distances.distmod(z)
+        absolute = m - modulus - k_anchor
+        # rest-frame UV: the anchor band's light at lambda / (1 + z), f_nu flat (a UV slope of -2,
+        # typical of star-forming galaxies at z > 1; common practice)
+        uv_absolute = m - modulus + 2.5 * np.log10(1.0 + z)
+        relation = self.settings.size_relation
+        use_uv = np.full(z.shape, relation == "shibuya2015") | ((relation == "mixed") & (z >= self.settings.size_redshift))
+        log_r = np.where(use_uv, self.uv_sizes.mean_log_radius(uv_absolute, z), self.sizes.mean_log_radius(absolute, z))
         r_kpc = 10 ** log_r
         if self.normals:
-            r_kpc = r_kpc * np.exp(self.sizes.scatter_ln(absolute) * normals[:, 0])
+            scatter = np.where(use_uv, self.uv_sizes.scatter_ln(uv_absolute), self.sizes.scatter_ln(absolute))
+            r_kpc = r_kpc * np.exp(scatter * normals[:, 0])
         radius = _arcsec(r_kpc, self.distances.angular_diameter_distance(z))
         disk, clump = k_disk - k_anchor, k_clump - clump_anchor
         bands = self.k_disk.bands

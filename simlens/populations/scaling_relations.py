@@ -145,6 +145,30 @@ class SizeLuminosity:
 
 
 @dataclass(frozen=True)
+class UVSizeLuminosity:
+    """Rest-frame ultraviolet sizes of star-forming galaxies (Shibuya, Ouchi & Harikane 2015, ApJS
+    219, 15; from memory): r_e = B (1 + z)^beta kpc for galaxies of (0.3-1) L*_UV(z = 3), scaled
+    by (L_UV / L_ref)^alpha, with a log-normal scatter; L* at M_UV = -21.0 (Steidel et al. 1999, from
+    memory), L_ref its middle, 0.6 L*."""
+
+    normalisation: float = 6.9  # kpc at z = 0
+    evolution: float = -1.3
+    alpha: float = 0.27
+    star_magnitude: float = -21.0  # M*_UV at z = 3
+    reference_fraction: float = 0.6
+    scatter: float = 0.45  # natural log (0.2 dex)
+
+    def mean_log_radius(self, uv_absolute_magnitude, redshift) -> np.ndarray:
+        m = np.asarray(uv_absolute_magnitude, dtype=float)
+        luminosity = 10 ** (-0.4 * (m - self.star_magnitude)) / self.reference_fraction
+        return (math.log10(self.normalisation) + self.evolution * np.log10(1.0 + np.asarray(redshift))
+                + self.alpha * np.log10(luminosity))
+
+    def scatter_ln(self, uv_absolute_magnitude) -> np.ndarray:
+        return np.full(np.shape(uv_absolute_magnitude), self.scatter)
+
+
+@dataclass(frozen=True)
 class StellarToHaloMass:
     """Stellar mass of a halo of mass M at redshift z (Moster, Naab & White 2013, MNRAS 428, 3121,
     eq. 2 with the redshift dependence of eqs. 11-14 and the best fit of their Table 1; from memory):

@@ -423,7 +423,12 @@ class SourceCountsSettings:
     z0_intercept: float = number(-0.744, low=-20, high=20, doc="see z0_slope")
     template: str = text("spiral", choices=TEMPLATE_NAMES, doc="spectral template of the disk")
     rest_filter: str = text("LSST_r", doc="rest-frame filter of the size-luminosity relation (r band)")
-    size_scatter: bool = flag(True, doc="log-normal scatter of the size-luminosity relation (Shen et al. 2003)")
+    size_scatter: bool = flag(True, doc="log-normal scatter of the size-luminosity relation")
+    size_relation: str = text("mixed", choices=("mixed", "shen2003", "shibuya2015"),
+                              doc="source sizes: Shen et al. 2003 (rest-frame r, at fixed luminosity), Shibuya "
+                                  "et al. 2015 (rest-frame UV, star-forming galaxies), or mixed: Shen below "
+                                  "size_redshift, Shibuya above")
+    size_redshift: float = number(1.0, low=0, high=10, doc="where the mixed size relation turns from Shen to Shibuya")
 
 
 @dataclass(frozen=True, kw_only=True)
