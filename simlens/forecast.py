@@ -108,7 +108,7 @@ def estimated_source_view(system, survey, bands) -> list[SourceView]:
     centre = (np.arange(n) - 0.5 * (n - 1)) * grid.pixel_scale
     x, y = np.meshgrid(centre, centre)
     ox, oy = grid.lens_offset
-    azimuth = np.arctan2(y + oy, x + ox)
+    azimuth = np.arctan2(y - oy, x - ox)  # about the lens (the rays take x - offset, as PixelGrid)
     views = []
     for name in bands:
         band = system.band(name)
