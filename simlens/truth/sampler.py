@@ -1021,7 +1021,7 @@ def _exhausted_message(system_id: int, limit: int, rejections: dict) -> str:
             f"selection.max_candidates")
 
 
-SKY_EMPTY_DISC_TRIES = 100  # draws of an unlensed source's place outside the caustics (they cover < 1/2e of the disc)
+SKY_EMPTY_DISC_TRIES = 100  # draws of an unlensed source's place outside the caustics (a small part of the disc)
 LINE_OF_SIGHT_SERSIC_INDEX = 4.0  # early types (de Vaucouleurs)
 MAX_MEAN_SUBHALOS = 1000  # the most subhalos a lens may hold on average (as lens.subhalos.count)
 
