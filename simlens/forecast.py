@@ -238,9 +238,11 @@ def forecast(recipe: Recipe, n: int, area: float, rules: str = "collett2015", pr
                 found = dict(band=reference, snr=math.nan, matched_snr=r.band(reference).arc_snr,
                              magnification=r.magnification, ring=False)
                 rows.append(_row(r.system, found, len(r.images), counts_band))
-        else:
-            for system in sampler.draw_many(ids):
+        else:  # only multiply imaged systems can be detected: the others are left unfinished
+            for system in sampler.draw_lensed(ids):
                 drawn += 1
+                if system is None:
+                    continue
                 if rules == "multiply_imaged":
                     found = (dict(band="", snr=math.nan, matched_snr=math.nan, magnification=math.nan, ring=False)
                              if system.lensing and system.multiply_imaged else None)

@@ -59,6 +59,26 @@ def test_with_no_cuts_the_rate_is_the_optical_depth_times_the_source_density():
     assert result.galaxies_per_deg2 == pytest.approx(n * volume_per_sr / DEGREE2_PER_STERADIAN, rel=2e-3)
 
 
+def test_draw_lensed_finishes_the_multiply_imaged_systems_as_draw_many_does():
+    # The forecast's fast path leaves the systems that cannot be lenses unfinished; those it
+    # finishes are the same records draw_many gives (equal fields, nan alike).
+    import math
+
+    recipe = forecast_recipe(parse_recipe(PHYSICAL_RECIPE), "collett2015").with_overrides(count=3000)
+    every = PopulationSampler(recipe).draw_many(range(3000))
+    lensed = PopulationSampler(recipe).draw_lensed(range(3000))
+    found = 0
+    for a, b in zip(every, lensed):
+        if not a.multiply_imaged:
+            assert b is None
+            continue
+        found += 1
+        for f in dataclasses.fields(a):
+            u, v = getattr(a, f.name), getattr(b, f.name)
+            assert u == v or (isinstance(u, float) and math.isnan(u) and math.isnan(v)), f.name
+    assert found >= 3
+
+
 def test_the_forecast_command_writes_its_tables_and_plot(tmp_path, capsys):
     recipe_path = tmp_path / "r.toml"
     recipe_path.write_text(PHYSICAL_RECIPE.replace('mode = "lens"', 'mode = "sky"'))

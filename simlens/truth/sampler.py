@@ -167,6 +167,32 @@ class PopulationSampler:
             done.update(self._draw_block(unique[start:start + self.BLOCK_SIZE], image_cuts))
         return [done[i] for i in ids]
 
+    def draw_lensed(self, system_ids) -> list[System | None]:
+        """Sky mode without cuts (a forecast's fast path): the systems of ``system_ids`` whose
+        source is multiply imaged, as :meth:`draw_many` draws them, and None for the others, which
+        are left unfinished (no photometry, conditions or class: most of a system's cost)."""
+        selection = self.recipe.selection
+        if self.mode != "sky" or (selection.enforce and selection.cut_names) or self.recipe.negatives.fraction:
+            raise ValueError("draw_lensed draws sky-mode recipes without enforced cuts or negatives only")
+        out: list = []
+        ids = [int(i) for i in system_ids]
+        for start in range(0, len(ids), self.BLOCK_SIZE):
+            block = ids[start:start + self.BLOCK_SIZE]
+            streams = [system_streams(self.recipe.seed, i, SYSTEM_STREAMS, 0) for i in block]
+            geometries = _GeometryPhase(self, block, streams).run()
+            if any(g is None for g, _ in geometries):  # sky mode takes every candidate
+                raise ValueError("draw_lensed: a candidate was rejected; use draw_many")
+            lensed = [k for k, (g, _) in enumerate(geometries) if g.placed["multiply_imaged"]]
+            self._photometry_and_light([geometries[k] for k in lensed], [streams[k] for k in lensed])
+            found: dict = {}
+            for k in lensed:
+                system, counts = self._finish(block[k], 0, streams[k], geometries[k][0])
+                if system is not None:
+                    object.__setattr__(system, "rejections", dict(counts))  # the record is still private here
+                found[k] = system
+            out += [found.get(k) for k in range(len(block))]
+        return out
+
     # -- the candidate loop ----------------------------------------------------------------------
     def _draw_block(self, ids: list[int], image_cuts: ImageCuts | None) -> dict[int, System]:
         limit = self.recipe.selection.max_candidates
