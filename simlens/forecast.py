@@ -89,15 +89,14 @@ class SourceView:
 def estimated_source_view(system, survey, bands) -> list[SourceView]:
     """Magnification and S/N of ``system``'s lensed source in ``bands`` without rendering the
     observation: the renderer's ray map and refined source samples
-    (:class:`~simlens.imaging.rays.ComponentImages`), the band's PSF sampled at the samples' scale
-    (:func:`~simlens.imaging.observe.psf_kernel`), block sums to pixels, and the CCD equation's
-    variance of sky, read noise and the lens light (sampled and blurred alike)."""
-    from scipy.signal import fftconvolve
-
+    (:class:`~simlens.imaging.rays.ComponentImages`) and its noiseless pixels
+    (:func:`~simlens.imaging.observe.noiseless_pixels`: the band's PSF, pixel response), with the
+    CCD equation's variance of sky, read noise and the lens light; no noise is drawn, no image of
+    the source centre searched, nothing written."""
+    from .imaging.observe import noiseless_pixels, unresampled_variance
     from .imaging.rays import ComponentImages
     from .imaging.render import observation_rays, pixel_grid_for
     from .imaging.scene import build_scene
-    from .imaging.observe import psf_kernel, unresampled_variance
 
     grid = pixel_grid_for(system, survey)
     scene = build_scene(system)
@@ -117,20 +116,14 @@ def estimated_source_view(system, survey, bands) -> list[SourceView]:
             views.append(SourceView(name, math.nan, 0.0, 0.0, False))
             continue
         samples = components.render(light, lensed=True)
-        kernel = psf_kernel(band, grid.pixel_scale / sampling)
-        kernel = kernel / kernel.sum()
-        m = samples.shape[0] // sampling
-
-        def observed(fine):
-            blurred = fftconvolve(fine, kernel, mode="same")
-            return blurred.reshape(m, sampling, m, sampling).sum(axis=(1, 3))[pad:pad + n, pad:pad + n]
-
-        pixels = observed(samples)
-        lens = observed(components.render(scene.lens_light[name], lensed=False))
+        pixels = np.clip(noiseless_pixels(samples, band, grid, sampling, compact=True), 0.0, None)
+        lens = np.clip(noiseless_pixels(components.render(scene.lens_light[name], lensed=False), band, grid,
+                                        sampling), 0.0, None)
         variance = unresampled_variance(band, lens + pixels)
         matched = float(np.sqrt(np.sum(pixels**2 / variance)))
         above = pixels > np.sqrt(variance)
         snr = float(pixels[above].sum() / math.sqrt(variance[above].sum())) if above.any() else 0.0
+        m = samples.shape[0] // sampling
         intrinsic = samples.reshape(m, sampling, m, sampling).sum(axis=(1, 3))[pad:pad + n, pad:pad + n]
         bright = intrinsic > RING_LEVEL * intrinsic.max()
         coverage = np.unique(((azimuth[bright] + math.pi) / (2 * math.pi) * AZIMUTH_BINS).astype(int)).size

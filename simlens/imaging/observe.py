@@ -40,7 +40,7 @@ from ..truth.conditions import BandConditions
 from ..truth.psf import PSF_RADIUS_IN_FWHM, major_axis_fwhm, padding_for
 
 __all__ = ["psf_profile", "psf_kernel", "major_axis_fwhm", "effective_psf_image", "ObservedBand", "observe_scene",
-           "add_noise", "unresampled_variance", "padding_for", "PSF_RADIUS_IN_FWHM"]
+           "noiseless_pixels", "add_noise", "unresampled_variance", "padding_for", "PSF_RADIUS_IN_FWHM"]
 
 CONVOLUTION_SAMPLING = 2  # samples per pixel side on which the PSF convolution runs
 PSF_IMAGE_SIZE = 25  # pixels per side of the PSF image written with each cutout (odd: centred)
@@ -262,6 +262,26 @@ class ObservedBand:
         return float(np.sqrt(np.sum(self.lensed_source**2 / self.variance) * self.noise_variance_factor))
 
 
+def noiseless_pixels(fine: np.ndarray, band: BandConditions, grid, fine_sampling: int,
+                     compact: bool = False) -> np.ndarray:
+    """The band's pixels (ADU, PSF and pixel response applied, no noise) of ``fine``, counts per
+    sample of the padded field at ``fine_sampling`` samples per pixel side: summed to the
+    convolution grid, convolved with the band's PSF (a ``compact`` component on the box holding
+    its light), summed to pixels and cropped to the cutout."""
+    sampling = convolution_sampling(grid.supersampling)
+    scale, margin = grid.pixel_scale / sampling, grid.padding * sampling
+    first, last = grid.padding * sampling, (grid.padding + grid.size) * sampling
+    plane = _block_sum(fine, fine_sampling // sampling)
+    box = _light_box(plane, margin) if compact else None
+    if box is None:
+        convolved = _convolver(band, scale, plane.shape, margin)(plane)
+    else:
+        part = plane[box]
+        convolved = np.zeros(plane.shape, np.float32)
+        convolved[box] = _convolver(band, scale, part.shape, margin)(part)
+    return _block_sum(convolved[first:last, first:last], sampling).astype(float)
+
+
 def observe_scene(scene: Scene, band: BandConditions, noise_seed: int,
                   neighbours: np.ndarray | None = None) -> ObservedBand:
     """Apply PSF, pixel response and noise to one band's scene; ``neighbours``, the noiseless
@@ -270,23 +290,8 @@ def observe_scene(scene: Scene, band: BandConditions, noise_seed: int,
     sampling = convolution_sampling(grid.supersampling)
     if scene.sampling % sampling:
         raise ValueError(f"scene sampling {scene.sampling} is not a multiple of the convolution sampling {sampling}")
-    to_convolution_grid = scene.sampling // sampling
-    scale, margin = grid.pixel_scale / sampling, grid.padding * sampling
-    first, last = grid.padding * sampling, (grid.padding + grid.size) * sampling
-
-    def to_pixels(fine: np.ndarray, compact: bool = False) -> np.ndarray:
-        plane = _block_sum(fine, to_convolution_grid)
-        box = _light_box(plane, margin) if compact else None
-        if box is None:
-            convolved = _convolver(band, scale, plane.shape, margin)(plane)
-        else:
-            part = plane[box]
-            convolved = np.zeros(plane.shape, np.float32)
-            convolved[box] = _convolver(band, scale, part.shape, margin)(part)
-        return _block_sum(convolved[first:last, first:last], sampling).astype(float)
-
-    lens = to_pixels(scene.lens_light)
-    source = to_pixels(scene.lensed_source, compact=True)
+    lens = noiseless_pixels(scene.lens_light, band, grid, scene.sampling)
+    source = noiseless_pixels(scene.lensed_source, band, grid, scene.sampling, compact=True)
     # FFT round-off can leave values of order -1e-7 of the peak; clip before Poisson noise.
     lens = np.clip(lens, 0.0, None)
     source = np.clip(source, 0.0, None)
