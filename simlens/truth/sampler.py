@@ -872,13 +872,20 @@ class _Caustics:
         return left
 
     def multiply_imaged(self, rows: np.ndarray, x: np.ndarray, y: np.ndarray) -> np.ndarray:
-        """Whether the source-plane point ``(x[i], y[i])`` lies inside a caustic of row ``rows[i]``."""
+        """Whether the source-plane point ``(x[i], y[i])`` lies inside a caustic of row ``rows[i]``
+        (points beyond the caustics' reach are outside without testing the polygons)."""
         x, y = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
-        inside = inside_polygon(x, y, self.x[rows, 0], self.y[rows, 0])
+        inside = np.zeros(x.shape, bool)
+        near = np.flatnonzero(np.hypot(x, y) <= self.reach[rows])
+        if near.size == 0:
+            return inside
+        rows, x, y = rows[near], x[near], y[near]
+        found = inside_polygon(x, y, self.x[rows, 0], self.y[rows, 0])
         inner = self.has_inner[rows]
         if inner.any():
             with_inner = rows[inner]
-            inside[inner] |= inside_polygon(x[inner], y[inner], self.x[with_inner, 1], self.y[with_inner, 1])
+            found[inner] |= inside_polygon(x[inner], y[inner], self.x[with_inner, 1], self.y[with_inner, 1])
+        inside[near] = found
         return inside
 
     def placed(self, j: int, x: float, y: float, radius: float, widened: bool, multiple: bool, mode: str) -> dict:
