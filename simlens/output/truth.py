@@ -54,6 +54,15 @@ def _second(name: str, default=NAN):
     return lambda e: getattr(e.system.second_source, name) if e.system.second_source else default
 
 
+def _envelope(entry, field: str, band: str | None = None) -> float:
+    """A field of the system's two-component lens light (per band where ``band``), nan without one."""
+    envelope = entry.system.lens_envelope
+    if envelope is None:
+        return NAN
+    value = getattr(envelope, field)
+    return value[band] if band is not None else value
+
+
 def _band(b, name):  # the BandConditions of band b
     return next(c for c in b.system.bands if c.name == name)
 
@@ -171,17 +180,16 @@ TRUTH_COLUMNS = (
     C("sky_variance_{band}", "", "expected noise variance of an empty {band} pixel (ADU^2; below the CCD "
       "equation's where resampled exposures correlate the noise)", lambda e, b: e.rendered.band(b).sky_variance),
     C("lens_core_mag_{band}", "mag", "the lens light's core in {band}, AB (nan: no [lens.light.envelope])",
-      lambda e, b: e.system.lens_envelope.core_magnitudes[b] if e.system.lens_envelope else math.nan),
+      lambda e, b: _envelope(e, "core_magnitudes", b)),
     C("lens_core_half_light_radius", "arcsec", "the lens core's circularised R_e (nan: one Sersic)",
-      lambda e: e.system.lens_envelope.core_half_light_radius if e.system.lens_envelope else math.nan),
+      lambda e: _envelope(e, "core_half_light_radius")),
     C("lens_envelope_mag_{band}", "mag", "the lens light's envelope in {band}, AB (nan: one Sersic)",
-      lambda e, b: e.system.lens_envelope.magnitudes[b] if e.system.lens_envelope else math.nan),
+      lambda e, b: _envelope(e, "magnitudes", b)),
     C("lens_envelope_half_light_radius", "arcsec", "the lens envelope's circularised R_e (nan: one Sersic)",
-      lambda e: e.system.lens_envelope.half_light_radius if e.system.lens_envelope else math.nan),
+      lambda e: _envelope(e, "half_light_radius")),
     C("lens_envelope_sersic_index", "", "the lens envelope's Sersic n (nan: one Sersic)",
-      lambda e: e.system.lens_envelope.sersic_index if e.system.lens_envelope else math.nan),
-    C("lens_envelope_q", "", "the lens envelope's axis ratio (nan: one Sersic)",
-      lambda e: e.system.lens_envelope.q if e.system.lens_envelope else math.nan),
+      lambda e: _envelope(e, "sersic_index")),
+    C("lens_envelope_q", "", "the lens envelope's axis ratio (nan: one Sersic)", lambda e: _envelope(e, "q")),
     C("source_bulge_mag_{band}", "mag", "the source's bulge in {band}, AB (nan: no [source.bulge])",
       lambda e, b: e.system.source_bulge_magnitudes[b] if e.system.source_bulge_magnitudes else math.nan),
     C("source_bulge_half_light_radius", "arcsec", "the source bulge's circularised R_e (nan: none)",
