@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import difflib
 import re
 from pathlib import Path
@@ -37,6 +39,7 @@ def check_recipe(recipe: Recipe) -> None:
     _check_negatives(recipe)
     _check_selection(recipe)
     _check_mass(recipe)
+    _check_lens_scaling(recipe)
     _check_line_of_sight_and_subhalos(recipe)
     _check_redshifts(recipe)
     _check_position(recipe)
@@ -201,6 +204,35 @@ def _check_mass(recipe: Recipe) -> None:
             raise RecipeError(origin, "lens.light.scaling.mass_to_light",
                               "is needed for model = 'stars_and_halo' (the stars' mass follows the light)",
                               "a [lens.light.scaling] table with mass_to_light")
+
+
+# The sizes a fundamental plane may give a lens of 200 km/s at the Faber-Jackson luminosity (kpc):
+# early types of that sigma have R_e of a few kpc (common practice); the plane's coefficients are
+# tied, so one changed alone moves R_e by orders of magnitude.
+PLANE_RADIUS_RANGE = (0.1, 100.0)
+
+
+def _check_lens_scaling(recipe: Recipe) -> None:
+    """The Faber-Jackson relation and the fundamental plane together give a lens of 200 km/s a
+    size in PLANE_RADIUS_RANGE."""
+    import numpy as np
+
+    from ..populations.scaling_relations import FaberJackson, FundamentalPlane
+
+    s = recipe.lens.light.scaling
+    if s is None:
+        return
+    fj = FaberJackson(s.faber_jackson_slope, s.faber_jackson_magnitude, s.faber_jackson_sigma, 0.0)
+    with np.errstate(all="ignore"):
+        log_r = float(FundamentalPlane(s.plane_a, s.plane_b, s.plane_c).mean_log_radius(200.0, fj.mean_magnitude(200.0)))
+    low, high = PLANE_RADIUS_RANGE
+    if not (math.log10(low) <= log_r <= math.log10(high)):
+        shown_r = f"{10 ** log_r:.3g} kpc" if abs(log_r) < 300 else "a size out of all range"
+        raise RecipeError(recipe.origin, "lens.light.scaling",
+                          f"the Faber-Jackson relation and the fundamental plane (plane_a, plane_b, plane_c) give a "
+                          f"lens of 200 km/s {shown_r}, outside {low:g}-{high:g} kpc",
+                          "the coefficients of one published plane together (default: Bernardi et al. 2003), "
+                          "and a Faber-Jackson magnitude near -21.6")
 
 
 def _check_line_of_sight_and_subhalos(recipe: Recipe) -> None:

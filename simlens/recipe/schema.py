@@ -290,7 +290,7 @@ class SubhaloSettings:
     annulus: Parameter = parameter(0.5, low=0, high=20, doc="inner radius of the placement annulus, in Einstein radii")
     annulus_outer: Parameter = parameter(1.5, low=0, low_open=True, high=20,
                                          doc="outer radius of the placement annulus, in Einstein radii")
-    mass_fraction: float = number(optional=True, low=0, low_open=True, high=0.5,
+    mass_fraction: float = number(optional=True, low=0, low_open=True, high=0.1,
                                   doc="draw the count instead: Poisson, with this share of the SIS host's "
                                       "projected mass in the annulus in subhalos of [mass_min, mass_max] "
                                       "(f_sub: Dalal & Kochanek 2002: 0.02, 0.006-0.07 at 90 %; Vegetti et al. "

@@ -1056,7 +1056,7 @@ def _exhausted_message(system_id: int, limit: int, rejections: dict) -> str:
 
 SKY_EMPTY_DISC_TRIES = 100  # draws of an unlensed source's place outside the caustics (a small part of the disc)
 LINE_OF_SIGHT_SERSIC_INDEX = 4.0  # early types (de Vaucouleurs)
-MAX_MEAN_SUBHALOS = 1000  # the most subhalos a lens may hold on average (as lens.subhalos.count)
+MAX_MEAN_SUBHALOS = 20_000  # the most subhalos a lens may hold on average (a mass_fraction's count)
 
 
 def subhalo_mean_mass(settings) -> float:
