@@ -86,7 +86,7 @@ class SourceView:
     ring: bool  # the lensed image (before the PSF) surrounds the lens (RING_COVERAGE of the azimuth)
 
 
-def estimated_source_view(system, survey, bands) -> list[SourceView]:
+def estimated_source_view(system, survey, bands, scene=None) -> list[SourceView]:
     """Magnification and S/N of ``system``'s lensed source in ``bands`` without rendering the
     observation: the renderer's ray map and refined source samples
     (:class:`~simlens.imaging.rays.ComponentImages`) and its noiseless pixels
@@ -99,7 +99,7 @@ def estimated_source_view(system, survey, bands) -> list[SourceView]:
     from .imaging.scene import build_scene
 
     grid = pixel_grid_for(system, survey)
-    scene = build_scene(system)
+    scene = scene if scene is not None else build_scene(system)
     rays, sampling = observation_rays(scene.deflector, grid)
     components = ComponentImages(rays, sampling=sampling, adaptive=survey.adaptive_supersampling)
     components.prepare_lensed(scene.source_light[bands[0]])
@@ -141,14 +141,27 @@ def _collett_detection(system, survey, band_names, matched: bool = False) -> dic
     resolved = [b for b in band_names if system.einstein_radius**2 > r_s**2 + (system.band(b).psf_fwhm / 2) ** 2]
     if not resolved:
         return None
-    views = estimated_source_view(system, survey, resolved)
+    from .imaging.scene import build_scene
+
+    scene = build_scene(system)
+    views = estimated_source_view(system, survey, resolved, scene)
     snr = (lambda v: v.matched_snr) if matched else (lambda v: v.snr)
     passing = [v for v in views if v.magnification > MIN_MAGNIFICATION and snr(v) > DETECTION_SNR]
     if not passing:
         return None
     best = max(passing, key=snr)
     return dict(band=best.band, snr=best.snr, matched_snr=best.matched_snr, magnification=best.magnification,
-                ring=best.ring)
+                ring=best.ring, n_images=_image_count(system, survey, scene.deflector))
+
+
+def _image_count(system, survey, deflector) -> int:
+    """Images of the source centre, searched as the renderer searches them."""
+    from .imaging.render import image_search_windows, pixel_grid_for
+    from .lensing.lens_equation import find_images
+
+    windows = image_search_windows(system.einstein_radius, system.mass_q, math.hypot(system.source_x, system.source_y),
+                                   pixel_grid_for(system, survey), whole_cutout=bool(system.line_of_sight))
+    return len(find_images(deflector, system.source_x, system.source_y, windows))
 
 
 @dataclass
@@ -207,6 +220,7 @@ class Forecast:
 
 def forecast(recipe: Recipe, n: int, area: float, rules: str = "collett2015", progress=None) -> Forecast:
     """Draw ``n`` deflector galaxies of ``recipe`` in sky mode and count the detectable lenses."""
+    from .imaging.scene import build_scene
     from .runs.rendering import rendered_systems
     from .truth.sampler import PopulationSampler
 
@@ -229,20 +243,21 @@ def forecast(recipe: Recipe, n: int, area: float, rules: str = "collett2015", pr
             for r in rendered_systems(sampler, list(ids), {}):
                 drawn += r.system.candidate + 1
                 found = dict(band=reference, snr=math.nan, matched_snr=r.band(reference).arc_snr,
-                             magnification=r.magnification, ring=False)
-                rows.append(_row(r.system, found, len(r.images), counts_band))
+                             magnification=r.magnification, ring=False, n_images=len(r.images))
+                rows.append(_row(r.system, found, counts_band))
         else:  # only multiply imaged systems can be detected: the others are left unfinished
             for system in sampler.draw_lensed(ids):
                 drawn += 1
                 if system is None:
                     continue
                 if rules == "multiply_imaged":
-                    found = (dict(band="", snr=math.nan, matched_snr=math.nan, magnification=math.nan, ring=False)
+                    found = (dict(band="", snr=math.nan, matched_snr=math.nan, magnification=math.nan, ring=False,
+                                  n_images=_image_count(system, survey, build_scene(system).deflector))
                              if system.lensing and system.multiply_imaged else None)
                 else:
                     found = _collett_detection(system, survey, band_names, matched=rules == "collett2015_matched")
                 if found is not None:
-                    rows.append(_row(system, found, None, counts_band))
+                    rows.append(_row(system, found, counts_band))
         if progress is not None:
             progress(min(start + chunk, n), n)
     names = ("system_id", "einstein_radius", "z_lens", "z_source", "source_magnitude", "band", "snr",
@@ -253,16 +268,9 @@ def forecast(recipe: Recipe, n: int, area: float, rules: str = "collett2015", pr
                     detections=table)
 
 
-def _row(system, found: dict, n_images: int | None, magnitude_band: str) -> tuple:
-    """A detection's row; ``n_images`` of the source centre (found here when None)."""
-    if n_images is None:
-        from .imaging.scene import build_scene
-        from .lensing.lens_equation import find_images
-
-        theta = system.einstein_radius
-        reach = 2.5 * theta / math.sqrt(system.mass_q) + math.hypot(system.source_x, system.source_y)
-        windows = [(reach, reach / 100.0)] + [(f * theta, f * theta / 50.0) for f in (0.2, 0.02)]
-        n_images = len(find_images(build_scene(system).deflector, system.source_x, system.source_y, windows))
+def _row(system, found: dict, magnitude_band: str) -> tuple:
+    """A detection's row."""
+    n_images = found["n_images"]
     multiplicity = "ring" if found["ring"] else "quad" if n_images >= 4 else "double"
     return (system.system_id, system.einstein_radius, system.z_lens, system.z_source,
             system.source_magnitude(magnitude_band), found["band"], found["snr"], found["matched_snr"],

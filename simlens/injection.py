@@ -95,10 +95,11 @@ class SurveyImage:
     weight: np.ndarray | None = None  # inverse variance
     mask: np.ndarray | None = None  # the input's mask values (non-zero = masked)
 
-    @property
-    def masked(self) -> np.ndarray:
-        """Boolean: the pixels the mask marks (none without a mask)."""
-        return np.zeros(self.data.shape, bool) if self.mask is None else self.mask != 0
+    def masked(self, region) -> np.ndarray:
+        """Boolean over ``region`` (a pair of slices): the pixels the mask marks (none without a mask)."""
+        if self.mask is None:
+            return np.zeros(self.data[region].shape, bool)
+        return self.mask[region] != 0
 
     def updated_noise_plane(self, added: np.ndarray, region) -> tuple[str, np.ndarray] | None:
         """``(kind, plane)`` over ``region`` with the Poisson variance of ``added`` (noiseless image
@@ -644,7 +645,7 @@ def _add_lensed_source(image: SurveyImage, scene, magnitude: float, position, re
     # the stamp's pixel (r, c) is image pixel (r0 + r, c0 + c)
     rs, cs = slice(max(r0, 0), min(r0 + size, ny)), slice(max(c0, 0), min(c0 + size, nx))
     sub = stamp[rs.start - r0:rs.stop - r0, cs.start - c0:cs.stop - c0]
-    masked = image.masked[rs, cs]
+    masked = image.masked((rs, cs))
     pixels = np.where(masked, 0.0, sub)
     injected[rs, cs] += rng.poisson(pixels * image.gain) / image.gain
     added_total[rs, cs] += pixels

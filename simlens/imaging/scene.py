@@ -138,7 +138,6 @@ def mapped_sersic(flux: float, half_light_radius: float, sersic_index: float, q:
     mapped = jacobian.T @ form @ jacobian
     values, vectors = np.linalg.eigh(mapped)  # ascending: the first is along the major axis
     scale = max(math.sqrt(values[0] * values[1]), 1.0 / MAX_LINEAR_MAGNIFICATION)  # |det A|
-    values = values / math.sqrt(values[0] * values[1]) * scale
     major = vectors[:, 0]
     return Sersic(flux=flux / scale, half_light_radius=half_light_radius / math.sqrt(scale),
                   sersic_index=sersic_index, q=math.sqrt(values[0] / values[1]),
