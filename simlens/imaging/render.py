@@ -42,6 +42,7 @@ class RenderedSystem:
     second_magnification: float = math.nan  # of the second source (reference band), if any
     time_delays: np.ndarray = field(default_factory=lambda: np.empty(0), compare=False)  # days after the first image
     timings: dict = field(default_factory=dict, compare=False)
+    epochs: object = field(default=None, compare=False)  # imaging.epochs.EpochImages of a run with epochs
 
     def band(self, name: str) -> ObservedBand:
         for b in self.bands:
@@ -50,8 +51,10 @@ class RenderedSystem:
         raise KeyError(name)
 
 
-def pixel_grid_for(system: System, survey: SurveySettings) -> PixelGrid:
-    fwhm_max = max(major_axis_fwhm(b) for b in system.bands)
+def pixel_grid_for(system: System, survey: SurveySettings, widest_fwhm: float = 0.0) -> PixelGrid:
+    """The system's padded pixel grid: its padding holds the PSF stamp of the widest of its bands'
+    PSFs and ``widest_fwhm`` (the widest PSF of a run's epochs)."""
+    fwhm_max = max([major_axis_fwhm(b) for b in system.bands] + [widest_fwhm])
     return PixelGrid(size=survey.cutout_size, pixel_scale=survey.pixel_scale,
                      supersampling=survey.supersampling, padding=padding_for(fwhm_max, survey.pixel_scale))
 
@@ -100,12 +103,12 @@ class SystemRendering:
     then observes the bands asked for, each once.  Cuts on images can so be judged on the bands they need before the
     others are rendered (:mod:`simlens.runs.rendering`)."""
 
-    def __init__(self, system: System, survey: SurveySettings, reference_band: str):
+    def __init__(self, system: System, survey: SurveySettings, reference_band: str, widest_fwhm: float = 0.0):
         self.system, self.survey, self.reference_band = system, survey, reference_band
         self.timings = dict.fromkeys(("ray_tracing", "image_finding", "adaptive_refinement", "scene",
                                       "galsim_stage"), 0.0)
         t0 = time.perf_counter()
-        self.grid = pixel_grid_for(system, survey)
+        self.grid = pixel_grid_for(system, survey, widest_fwhm)
         self.scene = scene = build_scene(system)
         self.mass = scene.deflector
         self.rays, sampling = observation_rays(self.mass, self.grid)
@@ -149,16 +152,18 @@ class SystemRendering:
             self.timings["image_finding"] += time.perf_counter() - t0
         return self._images
 
-    def _observe(self, conditions, seed: int) -> ObservedBand:
-        system, name = self.system, conditions.name
-        ta = time.perf_counter()
-        points = ()
-        if system.quasar_magnitudes is not None:
+    def band_scene(self, name: str, points: bool = True):
+        """The band's noiseless scene on the ray grid (:class:`~simlens.imaging.rays.Scene`): lens
+        light, lensed source and any second source, with the images of a quasar unless ``points``
+        is False (the static scene of :mod:`simlens.imaging.epochs`)."""
+        system = self.system
+        lensed_points = ()
+        if points and system.quasar_magnitudes is not None:
             flux = self.scene.point_flux[name]
-            points = tuple(PointSource(flux=flux * abs(float(mu)), center=(float(x), float(y)))
-                           for x, y, mu in zip(self.images.x, self.images.y, self.images.magnification))
+            lensed_points = tuple(PointSource(flux=flux * abs(float(mu)), center=(float(x), float(y)))
+                                  for x, y, mu in zip(self.images.x, self.images.y, self.images.magnification))
         scene = render_scene(name, self.rays, self.scene.lens_light[name], self.scene.source_light[name], self.components,
-                             lensed_points=points)
+                             lensed_points=lensed_points)
         if name == self.reference_band:
             self.magnification = scene.magnification  # of the first source alone
         if self.second is not None:
@@ -167,6 +172,12 @@ class SystemRendering:
             if name == self.reference_band and light2.flux > 0:
                 self.second_magnification = float(lensed2.sum()) / light2.flux
             scene = dataclasses.replace(scene, lensed_source=scene.lensed_source + lensed2)
+        return scene
+
+    def _observe(self, conditions, seed: int) -> ObservedBand:
+        name = conditions.name
+        ta = time.perf_counter()
+        scene = self.band_scene(name)
         neighbours = self.neighbour_images()
         tb = time.perf_counter()
         observed = observe_scene(scene, conditions, seed, neighbours=neighbours.get(name))

@@ -90,8 +90,11 @@ def band_keywords(h: fits.Header, band, content: str, noise_variance_factor: flo
     h["VARFACT"] = (noise_variance_factor, "SKYVAR over the unresampled variance")
 
 
-def write_cutout(rendered: RenderedSystem, path: Path, run_name: str = "", variance: bool = True) -> None:
-    """Write one system's cutout file (atomically); ``variance``: with each band's B_VAR."""
+def write_cutout(rendered: RenderedSystem, path: Path, run_name: str = "", variance: bool = True,
+                 epochs=None) -> None:
+    """Write one system's cutout file (atomically); ``variance``: with each band's B_VAR; with the
+    run's ``epochs`` (:class:`~simlens.transients.cadence.Epochs`) each band's static reference
+    B_REF and one HDU EPOCH_NNNN per epoch."""
     system = rendered.system
     primary = fits.PrimaryHDU()
     h = primary.header
@@ -115,8 +118,26 @@ def write_cutout(rendered: RenderedSystem, path: Path, run_name: str = "", varia
         if variance:
             hdus.append(_image_hdu(observed.variance, f"{name}_VAR", "noise variance", rendered, observed))
         hdus.append(_image_hdu(observed.psf, f"{name}_PSF", "psf", rendered, observed))
+        if rendered.epochs is not None:
+            hdus.append(_image_hdu(rendered.epochs.reference[name], f"{name}_REF",
+                                   "noiseless static reference", rendered, observed))
+    if rendered.epochs is not None and epochs is not None:
+        hdus += _epoch_hdus(rendered, epochs)
     with atomic_path(Path(path)) as tmp:
         fits.HDUList(hdus).writeto(tmp)
+
+
+def _epoch_hdus(rendered: RenderedSystem, epochs) -> list:
+    """One image HDU per epoch (EPOCH_0000, ...): the observed image, with its visit's keywords."""
+    system = rendered.system
+    out = []
+    for e, (mjd, conditions) in enumerate(zip(epochs.time, epochs.conditions)):
+        header = cutout_wcs(system.ra, system.dec, conditions.pixel_scale, rendered.grid.size).to_header()
+        hdu = fits.ImageHDU(data=rendered.epochs.images[e], header=header, name=f"EPOCH_{e:04d}")
+        band_keywords(hdu.header, conditions, "observed epoch")
+        hdu.header["MJD-OBS"] = (float(mjd), "[d] time of the visit (MJD)")
+        out.append(hdu)
+    return out
 
 
 def read_cutout(path: Path) -> dict:

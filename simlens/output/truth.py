@@ -20,7 +20,8 @@ from .columns import ColumnSpec, ColumnSpec as C, described_table, reference_tab
 from .cutout_fits import cutout_wcs
 
 __all__ = ["truth_row", "truth_table", "subhalo_rows", "subhalo_table", "image_rows", "image_table",
-           "line_of_sight_rows", "line_of_sight_table", "TRUTH_COLUMNS", "FIELD_COLUMNS", "OBJECT_COLUMNS", "NEIGHBOUR_COLUMNS", "objects_table", "neighbour_rows",
+           "line_of_sight_rows", "line_of_sight_table", "EPOCH_COLUMNS", "epoch_table", "LIGHT_CURVE_COLUMNS",
+           "light_curve_table", "TRUTH_COLUMNS", "FIELD_COLUMNS", "OBJECT_COLUMNS", "NEIGHBOUR_COLUMNS", "objects_table", "neighbour_rows",
            "column_reference"]
 
 NAN = math.nan
@@ -131,6 +132,20 @@ TRUTH_COLUMNS = (
       lambda e: e.system.source_absolute_magnitude),
     C("quasar_mag_{band}", "mag", "unlensed point source at the source centre in {band}, AB (nan: none)",
       lambda e, b: e.system.quasar_magnitudes[b] if e.system.quasar_magnitudes is not None else NAN),
+    C("transient", "", "the point source that varies in time: sn_ia, quasar, or empty (none)",
+      lambda e: e.system.transient_kind),
+    C("transient_peak_mjd", "d", "supernova: observer-frame MJD of its rest-frame B maximum (nan: none)",
+      lambda e: e.system.transient_peak_mjd),
+    C("transient_stretch", "", "supernova: stretch of its time axis", lambda e: e.system.transient_stretch),
+    C("transient_peak_absolute_magnitude", "mag", "supernova: rest-frame B (AB) at maximum, stretch term included",
+      lambda e: e.system.transient_peak_absolute_magnitude),
+    C("black_hole_mass", "", "quasar: log10 of its black-hole mass in M_sun (its variability's)", lambda e: e.system.black_hole_mass),
+    C("variability_tau", "d", "quasar: rest-frame damping time of its random walk (observed: (1 + z_source) times)",
+      lambda e: e.system.variability_tau),
+    C("variability_sf_inf_{band}", "mag", "quasar: asymptotic structure function in {band} (nan: not varying)",
+      lambda e, b: dict(e.system.light_curve.sf_inf)[b] if e.system.transient_kind == "quasar" else NAN),
+    C("quasar_absolute_magnitude_i", "mag", "quasar: M_i (AB, rest 750 nm) of its power-law continuum",
+      lambda e: e.system.quasar_absolute_magnitude_i),
     C("placement", "", "placement mode: fixed, lens or sky (source.position.mode)", lambda e: e.system.placement),
     C("region_radius", "arcsec", "radius of the disc in which source centres fall uniformly",
       lambda e: e.system.region_radius),
@@ -291,6 +306,47 @@ def image_table(rows: Sequence[dict]) -> Table:
                                                        np.int64, float])
 
 
+EPOCH_COLUMNS = (
+    C("epoch", "", "index along the epoch axis of EPOCH_IMAGES", lambda r: r["epoch"]),
+    C("mjd", "d", "time of the visit (MJD)", lambda r: r["mjd"]),
+    C("band", "", "band of the visit", lambda r: r["band"]),
+    C("psf_fwhm", "arcsec", "PSF FWHM of the visit", lambda r: r["conditions"].psf_fwhm),
+    C("sky_brightness", "mag / arcsec2", "sky surface brightness (AB)", lambda r: r["conditions"].sky_brightness),
+    C("magzero", "mag", "AB magnitude of one ADU in the visit", lambda r: r["conditions"].magzero),
+    C("sky_sigma", "adu", "noise of an empty pixel", lambda r: r["conditions"].background_sigma),
+    C("depth", "mag", "5-sigma point-source depth (AB) over the PSF's noise-equivalent area", lambda r: r["depth"]),
+)
+
+
+def epoch_table(epochs) -> Table:
+    """The run's epochs (:class:`~simlens.transients.cadence.Epochs`), one row each (:data:`EPOCH_COLUMNS`)."""
+    from ..transients.cadence import five_sigma_depth
+
+    rows = [rows_from(EPOCH_COLUMNS, dict(r, depth=five_sigma_depth(r["conditions"]))) for r in epochs.rows()]
+    return described_table(rows, EPOCH_COLUMNS, dtype=[np.int64, float, "U16"] + [float] * 5)
+
+
+LIGHT_CURVE_COLUMNS = (
+    C("system_id", "", "the system", lambda r: r["system_id"]),
+    C("image", "", "the image (a row of the image table of the same system)", lambda r: r["image"]),
+    C("epoch", "", "the epoch (a row of the EPOCHS table)", lambda r: r["epoch"]),
+    C("mjd", "d", "time of the visit", lambda r: r["mjd"]),
+    C("band", "", "band of the visit", lambda r: r["band"]),
+    C("source_time", "d", "the source's time this image shows: mjd minus the image's delay", lambda r: r["source_time"]),
+    C("magnification", "", "the image's signed magnification", lambda r: r["magnification"]),
+    C("unlensed_magnitude", "mag", "the source at source_time, AB, unlensed (inf: no light)",
+      lambda r: r["unlensed_magnitude"]),
+    C("flux", "adu", "the image's noiseless flux in the visit (magnified)", lambda r: r["flux"]),
+    C("magnitude", "mag", "the image at that visit, AB, magnified (inf: no light)", lambda r: r["magnitude"]),
+)
+
+
+def light_curve_table(rows: Sequence[dict]) -> Table:
+    """The light-curve truth: one row per system, image and epoch (:data:`LIGHT_CURVE_COLUMNS`)."""
+    return described_table([rows_from(LIGHT_CURVE_COLUMNS, r) for r in rows], LIGHT_CURVE_COLUMNS,
+                           dtype=[np.int64, np.int64, np.int64, float, "U16"] + [float] * 5)
+
+
 LINE_OF_SIGHT_COLUMNS = (
     C("system_id", "", "the system whose line of sight holds the galaxy", lambda g: g[0]),
     C("z", "", "redshift of the galaxy's plane", lambda g: g[1].z),
@@ -375,6 +431,9 @@ def column_reference() -> str:
                          ("Field runs add", FIELD_COLUMNS),
                          ("Images of the source centre (`images.*`, `IMAGE_TRUTH`)", IMAGE_COLUMNS),
                          ("Subhalos (`subhalos.*`, `SUBHALOS`)", SUBHALO_COLUMNS),
+                         ("Epochs of a run with `[survey.cadence]` (shard `EPOCHS`, `epochs.ecsv`)", EPOCH_COLUMNS),
+                         ("Light curves: one row per system, image and epoch (`light_curves.*`, `LIGHT_CURVES`)",
+                          LIGHT_CURVE_COLUMNS),
                          ("Line-of-sight galaxies (`line_of_sight.*`, `LINE_OF_SIGHT`)", LINE_OF_SIGHT_COLUMNS),
                          ("Field objects: unlensed galaxies and stars (`field_objects.*`, `OBJECTS`)",
                           OBJECT_COLUMNS),

@@ -44,6 +44,7 @@ def check_recipe(recipe: Recipe) -> None:
     _check_redshifts(recipe)
     _check_position(recipe)
     _check_cosmology(recipe)
+    _check_transients(recipe)
 
 
 def _require_band(origin: str, path: str, value: str | None, names) -> None:
@@ -375,3 +376,38 @@ def _check_filter(origin: str, path: str, spec: str, base: str) -> None:
         raise RecipeError(origin, path, str(exc), "a GalSim filter name or a two-column text file") from None
 
 
+
+
+def _check_transients(recipe: Recipe) -> None:
+    """Sources that vary need epochs, filter curves (their colours come from spectra) and cutouts."""
+    origin, source, cadence = recipe.origin, recipe.source, recipe.survey.cadence
+    varying = [path for path, on in (("source.supernova", source.supernova is not None),
+                                     ("source.quasar.variability", source.quasar is not None
+                                      and source.quasar.variability is not None)) if on]
+    if varying and cadence is None:
+        raise RecipeError(origin, varying[0], "needs the survey's epochs", "a [survey.cadence] table")
+    if varying:
+        _require_filters(recipe, f"{varying[0]} (its colours come from its spectrum)")
+    if cadence is None:
+        return
+    if recipe.field is not None:
+        raise RecipeError(origin, "survey.cadence", "is not supported in field runs ([field])",
+                          "cutout runs for epochs; a field image is one epoch")
+    if recipe.neighbours is not None:
+        raise RecipeError(origin, "survey.cadence", "is not supported with [neighbours]",
+                          "a crowded cutout or epochs, not both (the neighbours would keep one PSF)")
+    if cadence.visits is None and not any(b.revisit is not None for b in recipe.survey.bands):
+        raise RecipeError(origin, "survey.cadence", "has no visits file and no band with a revisit gap",
+                          "survey.bands.NAME.revisit = days, or survey.cadence.visits = 'file'")
+    if source.supernova is not None and source.supernova.spectra is not None:
+        base = Path(origin).parent if origin != "<recipe>" else Path(".")
+        from ..transients.supernova import SpectralTimeSeries
+
+        try:
+            SpectralTimeSeries.from_file(base / source.supernova.spectra)
+        except (OSError, ValueError) as exc:
+            raise RecipeError(origin, "source.supernova.spectra", str(exc),
+                              "'phase_day wavelength_nm f_lambda' lines, all wavelengths at every phase") from None
+    from ..transients.cadence import survey_epochs
+
+    survey_epochs(recipe)  # refuses no visits, too many, grids over conditions, bad visit files

@@ -60,6 +60,9 @@ __all__ = [
     "LensLightScalingSettings",
     "SourceCountsSettings",
     "QuasarSettings",
+    "VariabilitySettings",
+    "SupernovaSettings",
+    "CadenceSettings",
     "MultipoleSettings",
     "SubhaloSettings",
 ]
@@ -186,7 +189,23 @@ class BandSettings:
     filter: str = text(optional=True, doc="filter curve: a GalSim filter name (e.g. 'LSST_r') or a file "
                                           "of 'nm throughput' lines, relative to the recipe; needed "
                                           "for template colours")
+    revisit: float = number(optional=True, low=0.5, high=365, unit="day",
+                            doc="days between this band's visits in the cadence model ([survey.cadence]; "
+                                "absent: not visited)")
     name: str = ""  # filled from the table key
+
+
+@dataclass(frozen=True, kw_only=True)
+class CadenceSettings:
+    visits: str = text(optional=True, doc="a file of visits, 'mjd band' per line (optionally 'fwhm "
+                                          "sky_brightness' after), relative to the recipe: instead of the model")
+    start: float = number(61000.0, low=0, high=100_000, unit="day", doc="MJD of the first night")
+    length: float = number(365.0, low=1, high=3660, unit="day", doc="days from the first night to the last")
+    season: float = number(365.25, low=1, high=365.25, unit="day",
+                           doc="days each year, from the start's anniversary, that the field is observable")
+    jitter: float = number(0.0, low=0, high=10, unit="day",
+                           doc="rms offset of each visit's time from the regular revisit gap")
+    weather_loss: float = number(0.0, low=0, high=0.95, doc="fraction of nights lost to weather (all their visits)")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -215,6 +234,9 @@ class SurveySettings:
     seeing: SeeingSettings = table(SeeingSettings, optional=True,
                                    doc="one seeing for all bands, scaled with wavelength (instead of each "
                                        "band's psf.fwhm)")
+    cadence: CadenceSettings = table(CadenceSettings, optional=True,
+                                     doc="the survey's epochs: visits, each with its own seeing and sky "
+                                         "(multi-epoch cutouts of transients)")
 
     def band(self, name: str) -> BandSettings:
         for b in self.bands:
@@ -432,12 +454,43 @@ class SourceCountsSettings:
 
 
 @dataclass(frozen=True, kw_only=True)
+class VariabilitySettings:
+    black_hole_mass: Parameter = parameter(8.5, low=5, high=11, unit="log10 M_sun",
+                                           doc="log10 of the black-hole mass (MacLeod et al. 2010 relations)")
+    tau: Parameter = parameter(optional=True, low=1, high=1e5, unit="day",
+                               doc="rest-frame damping time (default: MacLeod et al. 2010)")
+    sf_inf: Parameter = parameter(optional=True, low=0, high=3, unit="mag",
+                                  doc="asymptotic structure function in the reference band (default: "
+                                      "MacLeod et al. 2010; other bands scaled by its wavelength term)")
+
+
+@dataclass(frozen=True, kw_only=True)
+class SupernovaSettings:
+    peak_absolute_magnitude: Parameter = parameter(
+        -19.4, low=-22, high=-16, unit="mag",
+        doc="rest-frame B (AB) at maximum for stretch 1: -19.3 Vega (H0 = 70) is common practice")
+    stretch: Parameter = parameter(1.0, low=0.5, high=1.6, doc="time-axis stretch s (Perlmutter et al. 1997)")
+    stretch_luminosity: float = number(1.5, low=0, high=5,
+                                       doc="alpha of M = M_0 - alpha (s - 1) (about 1.5: Goldhaber et al. 2001, from memory)")
+    peak_margin: float = number(60.0, low=0, high=1000, unit="day",
+                                doc="maxima fall uniformly from this long before the first epoch to this long after the last")
+    spectra: str = text(optional=True, doc="a spectral time series file ('phase_day wavelength_nm f_lambda' "
+                                           "lines), relative to the recipe (default: the built-in simplified one)")
+    host: bool = flag(True, doc="keep the source galaxy as the supernova's host (false: a bare point source)")
+    fraction: float = number(1.0, low=0, high=1,
+                             doc="share of systems whose point source is the supernova; the others have "
+                                 "the [source.quasar], if given, or none")
+
+
+@dataclass(frozen=True, kw_only=True)
 class QuasarSettings:
     magnitude: Parameter = parameter(low=0, high=40, unit="mag",
                                      doc="unlensed AB magnitude of the point source, reference band")
     spectral_index: float = number(-0.44, low=-3, high=2,
                                    doc="f_nu ~ nu^index (Vanden Berk et al. 2001, from memory); colours from it")
     host: bool = flag(True, doc="keep the source galaxy as the quasar's host (false: a bare point source)")
+    variability: VariabilitySettings = table(VariabilitySettings, optional=True,
+                                             doc="a damped random walk in time ([survey.cadence] epochs)")
 
 
 PLACEMENT_MODES = ("lens", "sky")
@@ -541,6 +594,8 @@ class SourceSettings:
                                          doc="magnitudes, redshifts, sizes and colours from published "
                                              "number counts, p(z|m), a size-luminosity relation, a template")
     quasar: QuasarSettings = table(QuasarSettings, optional=True, doc="a point source at the source centre")
+    supernova: SupernovaSettings = table(SupernovaSettings, optional=True,
+                                         doc="a type Ia supernova at the source centre ([survey.cadence] epochs)")
     second: SecondSourceSettings = table(SecondSourceSettings, optional=True,
                                          doc="a second source plane behind the first (double source plane lens)")
     sersic_index: Parameter = parameter(1.0, low=0.3, high=8.0, doc="Sersic n")

@@ -6,7 +6,9 @@
 ...     pass
 
 Shards are read with FITS memory mapping, one at a time, so memory stays at about one shard whatever
-the size of the run.  ``plane`` picks IMAGES (observed), SOURCE, LENS, VARIANCE, MASK or PSF.
+the size of the run.  ``plane`` picks IMAGES (observed), SOURCE, LENS, VARIANCE, MASK or PSF; in a
+run with epochs ([survey.cadence]) also EPOCH_IMAGES and EPOCH_POINTS, batches of time series
+``(batch, epochs, ny, nx)`` whose epochs :func:`run_epochs` lists, and REFERENCE.
 """
 
 from __future__ import annotations
@@ -21,7 +23,7 @@ from astropy.table import Table, vstack
 from ..errors import SimlensError
 from ..output.shard_fits import PLANES, read_shard
 
-__all__ = ["shard_files", "iter_batches", "load_run"]
+__all__ = ["shard_files", "iter_batches", "load_run", "run_epochs"]
 
 
 def shard_files(run_folder: str | Path) -> list[Path]:
@@ -80,3 +82,13 @@ def load_run(run_folder: str | Path, plane: str = "IMAGES") -> tuple[np.ndarray,
     """All systems of a (small) run at once."""
     batches = list(iter_batches(run_folder, batch_size=1 << 30, plane=plane))
     return batches[0] if batches else (np.empty(0), Table())
+
+
+def run_epochs(run_folder: str | Path) -> Table:
+    """The epochs of a run with ``[survey.cadence]`` (time, band, seeing, sky, zero point, depth),
+    in the order of the epoch axis of EPOCH_IMAGES."""
+    run_folder = Path(run_folder)
+    path = run_folder / "epochs.ecsv"
+    if not path.is_file():
+        raise SimlensError(f"{run_folder}: no epochs.ecsv; runs have epochs when their recipe has [survey.cadence]")
+    return Table.read(path)

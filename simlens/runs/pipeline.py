@@ -119,8 +119,9 @@ def _run_open_folder(recipe: Recipe, out: Path, folder: RunFolder, workers: int,
     try:
         shards = [out / shard_path(recipe, spec.index) for spec in plan]
 
-        def catalogue(stem: str, table: str, keep=()):
-            return write_catalogue(shards, table, out, stem, keep=keep)
+        def catalogue(stem: str, table: str, keep=(), single: bool = False):
+            # single: a table every shard holds alike (the run's epochs), written from the first
+            return write_catalogue(shards[:1] if single else shards, table, out, stem, keep=keep)
 
         summary_columns = catalogue("truth", "TRUTH", keep=("n_images", "einstein_radius", reference))
         catalogue("subhalos", "SUBHALOS")
@@ -130,13 +131,17 @@ def _run_open_folder(recipe: Recipe, out: Path, folder: RunFolder, workers: int,
             catalogue("field_objects", "OBJECTS")
         if recipe.neighbours is not None:
             catalogue("neighbours", "NEIGHBOUR_TRUTH")
+        if recipe.survey.cadence is not None:
+            catalogue("light_curves", "LIGHT_CURVES")
+            catalogue("epochs", "EPOCHS", single=True)
     except OSError as exc:
         raise _write_error(out, exc) from None
     seconds = time.perf_counter() - t_start
     sampler = PopulationSampler(recipe)
     attrition = sum_attrition(entry.get("selection", {}) for entry in folder.manifest["shards"].values())
     catalogues = (["truth", "subhalos", "images", "line_of_sight"] + (["field_objects"] if fields else [])
-                  + (["neighbours"] if recipe.neighbours is not None else []))
+                  + (["neighbours"] if recipe.neighbours is not None else [])
+                  + (["light_curves", "epochs"] if recipe.survey.cadence is not None else []))
     files = {name: [f"{name}.fits", f"{name}.ecsv"] for name in catalogues}
     if fields:
         files.update(fields="fields/field_*.fits", regions="fields/field_*.reg")

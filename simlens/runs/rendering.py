@@ -13,6 +13,7 @@ import time
 from typing import Iterator, Sequence
 
 from ..errors import reported_as
+from ..imaging.epochs import EpochRenderer
 from ..imaging.render import RenderedSystem, SystemRendering
 from ..truth.sampler import PopulationSampler
 from ..truth.selection import image_cut_results, needs_images
@@ -20,13 +21,16 @@ from ..truth.selection import image_cut_results, needs_images
 __all__ = ["rendered_systems", "STAGES"]
 
 # The stages a unit's time is reported in (seconds, in the manifest's seconds_by_stage).
-STAGES = ("sampling", "ray_tracing", "image_finding", "adaptive_refinement", "scene", "galsim_stage")
+STAGES = ("sampling", "ray_tracing", "image_finding", "adaptive_refinement", "scene", "galsim_stage", "epochs")
 
 
 def rendered_systems(sampler: PopulationSampler, system_ids: Sequence[int], timings: dict) -> Iterator[RenderedSystem]:
     """The rendered systems ``system_ids``, in order, each carrying its final truth record
-    (rejections and selection flags included); adds the time of each stage to ``timings``."""
+    (rejections and selection flags included) and, in a run with epochs, its epoch images; adds
+    the time of each stage to ``timings``."""
     recipe = sampler.recipe
+    epochs = EpochRenderer(sampler.epochs) if sampler.epochs is not None else None
+    widest = sampler.epochs.widest_fwhm if sampler.epochs is not None else 0.0
     survey, reference = recipe.survey, recipe.reference_band
     selection = recipe.selection
     cut_bands = set()
@@ -38,7 +42,7 @@ def rendered_systems(sampler: PopulationSampler, system_ids: Sequence[int], timi
     spent: list[SystemRendering] = []  # every rendering made, its stage times counted at the end
 
     def judge(system) -> dict[str, bool]:
-        rendering = SystemRendering(system, survey, reference)
+        rendering = SystemRendering(system, survey, reference, widest)
         spent.append(rendering)
         judged[system.system_id] = rendering
         return image_cut_results(rendering.render(cut_bands, images=selection.min_images is not None), recipe)
@@ -53,8 +57,12 @@ def rendered_systems(sampler: PopulationSampler, system_ids: Sequence[int], timi
             _add(timings, rendering.timings)
     for system in systems:
         with reported_as(f"rendering system {system.system_id}"):
-            rendering = judged.pop(system.system_id, None) or SystemRendering(system, survey, reference)
+            rendering = judged.pop(system.system_id, None) or SystemRendering(system, survey, reference, widest)
             rendered = rendering.render()
+            if epochs is not None:
+                t0 = time.perf_counter()
+                rendered = dataclasses.replace(rendered, epochs=epochs.render(rendering))
+                timings["epochs"] = timings.get("epochs", 0.0) + time.perf_counter() - t0
         _add(timings, rendering.timings)
         yield dataclasses.replace(rendered, system=system)
 

@@ -220,7 +220,7 @@ class RunFolder:
 # What a run writes, by folder: the only files --overwrite and resume may delete (besides those
 # the manifest names).  A temporary is ".<final name>.tmp-<pid>" (simlens.output.atomic).
 LAYOUT_FOLDERS = ("shards", "fields", "cutouts")
-CATALOGUES = ("truth", "subhalos", "images", "line_of_sight", "field_objects", "neighbours")
+CATALOGUES = ("truth", "subhalos", "images", "line_of_sight", "field_objects", "neighbours", "light_curves", "epochs")
 _LAYOUT = {
     ".": re.compile(rf"(manifest\.json|({'|'.join(CATALOGUES)})\.(fits|ecsv))"),
     "shards": re.compile(r"shard_\d+\.fits"),

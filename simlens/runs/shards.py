@@ -19,8 +19,9 @@ from ..errors import reported_as
 from ..output.checksums import sha256_of
 from ..output.cutout_fits import write_cutout
 from ..output.shard_fits import write_shard
-from ..output.truth import (NEIGHBOUR_COLUMNS, image_rows, image_table, line_of_sight_rows, line_of_sight_table,
-                           neighbour_rows, objects_table, subhalo_rows, subhalo_table, truth_row, truth_table)
+from ..output.truth import (NEIGHBOUR_COLUMNS, epoch_table, image_rows, image_table, light_curve_table,
+                           line_of_sight_rows, line_of_sight_table, neighbour_rows, objects_table, subhalo_rows,
+                           subhalo_table, truth_row, truth_table)
 from ..truth.sampler import PopulationSampler
 from ..recipe import Recipe
 from ..truth.selection import merge_attrition
@@ -96,8 +97,14 @@ def _render_shard(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
     crowded = recipe.neighbours is not None
     if crowded and output.noiseless:
         cubes["NEIGHBOURS"] = np.zeros(shape, np.float32)
+    epochs = sampler.epochs
+    if epochs is not None:
+        cubes["EPOCH_IMAGES"] = np.zeros((spec.n_systems, len(epochs), n, n), np.float32)
+        cubes["REFERENCE"] = np.zeros(shape, np.float32)
+        if output.noiseless:
+            cubes["EPOCH_POINTS"] = np.zeros((spec.n_systems, len(epochs), n, n), np.float32)
     psf_cube = None
-    rows, subhalos, images, los, neighbours, files = [], [], [], [], [], {}
+    rows, subhalos, images, los, neighbours, light_curves, files = [], [], [], [], [], [], {}
     attrition: dict = {}
     shard_file = shard_path(recipe, spec.index)
     timings = dict.fromkeys(STAGES + ("writing",), 0.0)
@@ -119,10 +126,17 @@ def _render_shard(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
             if psf_cube is None:
                 psf_cube = np.zeros((spec.n_systems, nb) + observed.psf.shape, np.float32)
             psf_cube[k, b] = observed.psf
+        if epochs is not None:
+            cubes["EPOCH_IMAGES"][k] = rendered.epochs.images
+            if "EPOCH_POINTS" in cubes:
+                cubes["EPOCH_POINTS"][k] = rendered.epochs.points
+            for b, band in enumerate(survey.band_names):
+                cubes["REFERENCE"][k, b] = rendered.epochs.reference[band]
+            light_curves += rendered.epochs.light_curve_rows
         relative = shard_file  # the file holding this system's images: its own cutout, or the shard
         if output.per_system_files:
             relative = cutout_path(recipe, system_id)
-            write_cutout(rendered, run_folder / relative, run_name=recipe.name, variance=output.variance)
+            write_cutout(rendered, run_folder / relative, run_name=recipe.name, variance=output.variance, epochs=epochs)
             files[relative] = None
         rows.append(truth_row(rendered, relative, shard=shard_file, shard_index=k,
                               flags=rendered.system.selection_flags, cut_names=recipe.selection.cut_names))
@@ -144,6 +158,10 @@ def _render_shard(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
               "LINE_OF_SIGHT": line_of_sight_table(los, survey.band_names)}
     if crowded:
         tables["NEIGHBOUR_TRUTH"] = objects_table(neighbours, survey.band_names, NEIGHBOUR_COLUMNS)
+    if epochs is not None:
+        tables["EPOCHS"] = epoch_table(epochs)
+        tables["LIGHT_CURVES"] = light_curve_table(light_curves)
+        header["NEPOCHS"] = (len(epochs), "epochs along the second axis of EPOCH_IMAGES")
     write_shard(run_folder / shard_file, cubes, truth_table(rows), header, extra_tables=tables)
     checksums = {shard_file: sha256_of(run_folder / shard_file)}
     for relative in files:

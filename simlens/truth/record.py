@@ -178,6 +178,15 @@ class System:
     source_stamp_psf_fwhm: float = math.nan  # arcsec: the stamp's own resolution
     # -- crowded cutouts ([neighbours]): unlensed galaxies and stars, 0-based cutout pixels --
     neighbours: object = None  # populations.background.BackgroundObjects, or None
+    # -- a source that varies in time ([source.supernova], [source.quasar.variability]) --
+    transient_kind: str = ""  # "sn_ia", "quasar" or "" (none)
+    light_curve: object = None  # transients: TabulatedLightCurve or DampedRandomWalk (magnitudes_at)
+    transient_peak_mjd: float = math.nan  # supernova: observer-frame time of the rest-frame B maximum
+    transient_stretch: float = math.nan
+    transient_peak_absolute_magnitude: float = math.nan  # rest-frame B (AB) after the stretch term
+    black_hole_mass: float = math.nan  # quasar: log10 M_sun
+    variability_tau: float = math.nan  # quasar: rest-frame damping time, days
+    quasar_absolute_magnitude_i: float = math.nan  # M_i (rest 750 nm) of the power-law continuum
 
     def band(self, name: str) -> BandConditions:
         for b in self.bands:

@@ -51,6 +51,12 @@ from .conditions import BandConditions
 from .record import Clump, LensEnvelope, LineOfSightGalaxy, SecondSource, Subhalo, System
 from .psf import band_fwhm, band_optics, major_axis_fwhm, padding_for, psf_shear, seeing_factors
 from .streams import SYSTEM_STREAMS, grid_cell, system_streams
+from ..populations.photometry import load_filter
+from ..transients.cadence import survey_epochs
+from ..transients.supernova import SpectralTimeSeries, SupernovaModel, stretched_peak_magnitude
+from ..transients.variability import MACLEOD_SF_INF, MACLEOD_TAU, DampedRandomWalk
+
+QUASAR_I_WAVELENGTH_NM = 750.0  # the rest wavelength of M_i in the variability relations (SDSS i, about)
 
 __all__ = ["PopulationSampler", "SelectionExhausted", "System", "offset_on_sky"]
 
@@ -132,6 +138,14 @@ class PopulationSampler:
                                             source.bulge.template if source.bulge is not None else None)
         self.quasar_colours = (PointSourceColours(source.quasar.spectral_index, filters, recipe.reference_band, base)
                                if source.quasar is not None else None)
+        self.epochs = survey_epochs(recipe) if recipe.survey.cadence is not None else None
+        self.supernovae = None
+        if source.supernova is not None:
+            spectra = (SpectralTimeSeries.from_file(Path(base) / source.supernova.spectra)
+                       if source.supernova.spectra is not None else SpectralTimeSeries.simplified_ia())
+            self.supernovae = SupernovaModel(spectra, {b: load_filter(f, base) for b, f in filters.items()})
+        self._rest_wavelengths = ({b: load_filter(f, base).mean_wavelength for b, f in filters.items()}
+                                  if source.quasar is not None and source.quasar.variability is not None else {})
 
     @property
     def n_grid_cells(self) -> int:
@@ -421,10 +435,16 @@ class PopulationSampler:
                 Clump(x=float(dx), y=float(dy), half_light_radius=v["source.clumps.half_light_radius"],
                       magnitudes={b: clump_anchor + clump_colors[b] - 2.5 * math.log10(w) for b in band_names})
                 for (dx, dy), w in zip(offsets, weights))
-        quasar_mags = None
-        if source_settings.quasar is not None:
+        supernova = source_settings.supernova
+        is_supernova = supernova is not None and float(streams["transient"].uniform()) < supernova.fraction
+        quasar_mags, transient = None, {}
+        if source_settings.quasar is not None and not is_supernova:
             colours = self.quasar_colours.colors(z_source)
             quasar_mags = {b: v["source.quasar.magnitude"] + colours[b] for b in band_names}
+        if is_supernova:
+            transient = self._supernova(v, z_source, streams["transient"])
+        elif quasar_mags is not None and source_settings.quasar.variability is not None:
+            transient = self._variability(v, z_source, quasar_mags, streams["transient"])
 
         # -- observing conditions ------------------------------------------------------------
         fwhm = (band_fwhm(recipe, self._seeing_factors, v["survey.seeing.fwhm"], streams["seeing"])
@@ -482,13 +502,51 @@ class PopulationSampler:
             clumps=clumps, bands=bands, noise_seeds=noise_seeds, selection_flags=checks, **placed,
             source_absolute_magnitude=photometry.absolute_magnitude if photometry is not None else math.nan,
             quasar_magnitudes=quasar_mags,
-            host=source_settings.quasar.host if source_settings.quasar is not None else True,
+            host=(supernova.host if is_supernova else
+                  source_settings.quasar.host if source_settings.quasar is not None else True),
+            **transient,
             days_per_arcsec2=g.days_per_arcsec2, candidate=candidate, rejections=g.rejections, **lens_extra, **stamp,
             **bulge)
         system = self._classify(system, streams)
         if self._neighbours is not None:
             system = dataclasses.replace(system, neighbours=self._draw_neighbours(system, streams["neighbours"]))
         return system, g.rejections
+
+    def _supernova(self, v: dict, z_source: float, rng) -> dict:
+        """A type Ia supernova at the source centre: its stretch, peak (stretch-luminosity relation)
+        and the time of its maximum, uniform from ``peak_margin`` before the first epoch to as long
+        after the last, so that some maxima fall outside the epochs."""
+        settings = self.recipe.source.supernova
+        stretch = v["source.supernova.stretch"]
+        peak = stretched_peak_magnitude(v["source.supernova.peak_absolute_magnitude"], stretch,
+                                        settings.stretch_luminosity)
+        t = self.epochs.time
+        peak_time = float(rng.uniform(t[0] - settings.peak_margin, t[-1] + settings.peak_margin))
+        curve = self.supernovae.light_curve(z_source, stretch, peak, float(self.distances.distmod(z_source)), peak_time)
+        return dict(transient_kind="sn_ia", light_curve=curve, transient_peak_mjd=peak_time, transient_stretch=stretch,
+                    transient_peak_absolute_magnitude=peak)
+
+    def _variability(self, v: dict, z_source: float, quasar_mags: dict, rng) -> dict:
+        """The quasar's damped random walk: its absolute magnitude M_i (rest 750 nm) from the
+        reference band through the power-law continuum, tau and SF_inf from MacLeod et al. (2010)
+        unless the recipe gives them (see simlens.transients.variability)."""
+        ref = self.recipe.reference_band
+        index = self.recipe.source.quasar.spectral_index
+        rest = {b: lam / (1.0 + z_source) for b, lam in self._rest_wavelengths.items()}
+        # m_AB(lambda_obs) = M_AB(lambda_obs / (1+z)) + DM - 2.5 log10(1+z) for a flat-in-nu
+        # bandwidth; f_nu ~ nu^index then carries M from the rest wavelength to 750 nm
+        absolute_i = (quasar_mags[ref] - float(self.distances.distmod(z_source)) + 2.5 * math.log10(1.0 + z_source)
+                      - 2.5 * index * math.log10(rest[ref] / QUASAR_I_WAVELENGTH_NM))
+        log_mass = v["source.quasar.variability.black_hole_mass"]
+        tau = v.get("source.quasar.variability.tau")
+        tau = float(MACLEOD_TAU(rest[ref], absolute_i, log_mass, z_source)) if tau is None else tau
+        sf_ref = v.get("source.quasar.variability.sf_inf")
+        sf_ref = float(MACLEOD_SF_INF(rest[ref], absolute_i, log_mass, z_source)) if sf_ref is None else sf_ref
+        sf = {b: sf_ref * (rest[b] / rest[ref]) ** MACLEOD_SF_INF.b for b in quasar_mags}
+        walk = DampedRandomWalk(mean_magnitudes=tuple(quasar_mags.items()), sf_inf=tuple(sf.items()),
+                                tau=(1.0 + z_source) * tau, seed=int(rng.integers(1, 2**63 - 1)))
+        return dict(transient_kind="quasar", light_curve=walk, black_hole_mass=log_mass, variability_tau=tau,
+                    quasar_absolute_magnitude_i=absolute_i)
 
     def _envelope(self, v: dict, lens_mags: dict, lens_r_e: float, lens_q: float) -> LensEnvelope:
         """The lens light split into a core and an envelope that keep its magnitudes and R_e."""

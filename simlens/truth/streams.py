@@ -14,18 +14,21 @@ from typing import Sequence
 
 import numpy as np
 
-__all__ = ["SYSTEM_STREAMS", "FIELD_STREAMS", "INJECTION_STREAMS", "system_streams", "field_streams", "injection_streams", "grid_cell"]
+__all__ = ["SYSTEM_STREAMS", "FIELD_STREAMS", "INJECTION_STREAMS", "CADENCE_STREAMS", "system_streams", "field_streams", "injection_streams", "cadence_streams", "grid_cell"]
 
 # Named random streams of a system; append new names at the end to keep old draws unchanged.
 # "physics" feeds, in code order, the deflector and source geometry, subhalos, placement, lens light,
 # source size and clumps; "observation" the sky position and the noise seeds; "seeing" the bands'
 # scatter about one drawn seeing (simlens.truth.psf); "neighbours" the unlensed objects of a crowded
-# cutout ([neighbours]); "stamps" the choice of a source's image stamp ([source.stamps]).
-SYSTEM_STREAMS = ("parameters", "physics", "observation", "negatives", "seeing", "neighbours", "stamps")
+# cutout ([neighbours]); "stamps" the choice of a source's image stamp ([source.stamps]); "transient" a
+# supernova's peak time, a quasar's black-hole mass and walk ([source.supernova], variability).
+SYSTEM_STREAMS = ("parameters", "physics", "observation", "negatives", "seeing", "neighbours", "stamps", "transient")
 # Of a field image: lens places, unlensed background objects, noise (append new names at the end).
 FIELD_STREAMS = ("layout", "background", "noise")
 # Of an injection run: the added electrons' noise, the redshifts of automatically selected lenses.
 INJECTION_STREAMS = ("noise", "lens_redshifts")
+# Of a survey's epochs ([survey.cadence]): visit times and weather, each visit's conditions.
+CADENCE_STREAMS = ("visits", "conditions")
 
 
 class _Streams(dict):
@@ -58,6 +61,7 @@ def system_streams(seed: int, system_id: int, names: Sequence[str], candidate: i
 # one of them.
 FIELD_TAG = 0x6669656C64  # "field"
 INJECTION_TAG = 0x696E6A656374  # "inject"
+CADENCE_TAG = 0x636164656E6365  # "cadence"
 
 
 def field_streams(seed: int, field_index: int) -> dict[str, np.random.Generator]:
@@ -72,6 +76,13 @@ def injection_streams(seed: int) -> dict[str, np.random.Generator]:
     streams; the injected systems themselves draw from their own system streams."""
     root = np.random.SeedSequence(entropy=int(seed), spawn_key=(0, 0, INJECTION_TAG))
     return _Streams(INJECTION_STREAMS, root.generate_state(2 * len(INJECTION_STREAMS), np.uint64))
+
+
+def cadence_streams(seed: int) -> dict[str, np.random.Generator]:
+    """Generators for a survey's epochs (CADENCE_STREAMS), shared by all systems of a run and apart
+    from every system's, field's and injection's streams; they depend only on ``seed``."""
+    root = np.random.SeedSequence(entropy=int(seed), spawn_key=(0, 0, CADENCE_TAG))
+    return _Streams(CADENCE_STREAMS, root.generate_state(2 * len(CADENCE_STREAMS), np.uint64))
 
 
 def grid_cell(system_id: int, grid_sizes: Sequence[int]) -> tuple[int, ...]:
