@@ -200,8 +200,13 @@ def _gallery(args) -> int:
     rows = rows[: args.n]
     files = population_plots(run_dir) if args.population else []
     panels = [p.strip() for p in args.panels.split(",") if p.strip()] if args.panels else None
-    files += contact_sheets(run_dir, rows, name=args.name, bands=args.bands, panels=panels, smooth=args.smooth,
-                            stretch_scale=args.stretch_scale, q=args.q)
+    if args.epochs:
+        from .epoch_gallery import epoch_strips
+
+        files += epoch_strips(run_dir, rows, name=args.name)
+    else:
+        files += contact_sheets(run_dir, rows, name=args.name, bands=args.bands, panels=panels, smooth=args.smooth,
+                                stretch_scale=args.stretch_scale, q=args.q)
     print(f"{len(rows)} systems drawn")
     for f in files:
         print(f"  wrote {f}")
@@ -358,6 +363,9 @@ def build_parser() -> argparse.ArgumentParser:
     gallery.add_argument("--q", type=float, help="asinh softening Q for every panel (default: 8 observed, 3 subtracted, "
                                                  "8 source)")
     gallery.add_argument("--population", action="store_true", help="also plot the population's distributions")
+    gallery.add_argument("--epochs", action="store_true",
+                         help="a run with epochs: strips of difference images over each system's light curves "
+                              "(instead of colour composites)")
     gallery.set_defaults(func=_gallery)
     return parser
 

@@ -191,3 +191,15 @@ def test_transients_need_epochs_and_filters():
         parse_recipe(EPOCH_RECIPE.replace('filter = "LSST_r"\n', ""))
     with pytest.raises(RecipeError, match="gives 4001 visits"):
         parse_recipe(EPOCH_RECIPE.replace("length = 400.0", "length = 2000.0").replace("revisit = 1.0", "revisit = 0.5"))
+
+
+def test_epoch_gallery_draws_the_lit_epochs(epoch_run):
+    from simlens.epoch_gallery import epoch_strips, strip_epochs
+
+    assert strip_epochs(np.array([0, 0, 1, 5, 10, 5, 1, 0.0]), 3).tolist() == [2, 4, 6]
+    assert strip_epochs(np.zeros(5), 8).tolist() == [0, 1, 2, 3, 4]  # no point source: all epochs
+    files = epoch_strips(epoch_run, Table.read(epoch_run / "truth.ecsv")[:2], name="strip")
+    assert [f.rsplit("/", 1)[-1] for f in files] == ["strip_epochs_001.png"]
+    from matplotlib.image import imread
+
+    assert imread(files[0]).shape[0] > 500

@@ -31,11 +31,13 @@ __all__ = ["EpochImages", "EpochRenderer"]
 
 @dataclass(frozen=True, eq=False)
 class EpochImages:
-    """One system's epochs: observed images and noiseless point-source light ``(epochs, ny, nx)``
-    (ADU, sky-subtracted), the noiseless static reference per band, and the light-curve truth
-    (one row per image and epoch)."""
+    """One system's epochs ``(epochs, ny, nx)``, ADU, sky-subtracted: observed images, their ideal
+    difference images (less the static scene seen with each epoch's PSF: the point sources and the
+    noise, as a perfectly PSF-matched subtraction leaves them) and the noiseless point-source light;
+    the noiseless static reference per band, and the light-curve truth (one row per image and epoch)."""
 
     images: np.ndarray
+    difference: np.ndarray  # images minus the static scene seen at each epoch's own PSF
     points: np.ndarray
     reference: dict  # band -> (ny, nx)
     light_curve_rows: list
@@ -90,6 +92,7 @@ class EpochRenderer:
         magnitudes = _source_magnitudes(system, source_times)
         n = grid.size
         images = np.zeros((len(epochs), n, n), np.float32)
+        difference = np.zeros((len(epochs), n, n), np.float32)
         points = np.zeros((len(epochs), n, n), np.float32)
         rows = []
         for e, (band, conditions) in enumerate(zip(epochs.band, epochs.conditions)):
@@ -110,15 +113,15 @@ class EpochRenderer:
                                      source_time=float(source_times[e, k]), magnification=mu,
                                      unlensed_magnitude=float(unlensed[k]), flux=float(flux[k]),
                                      magnitude=float(unlensed[k]) - 2.5 * math.log10(abs(mu)) if flux[k] > 0 else math.inf))
-            signal = pixels(scipy_fft.irfft2(transform * convolver.kernel_ft, convolver.fast_shape))
+            static_pixels = pixels(scipy_fft.irfft2(transform * convolver.kernel_ft, convolver.fast_shape))
+            signal = static_pixels
             if point_pixels is not None:
                 signal = signal + point_pixels
                 points[e] = point_pixels
-            neighbours = rendering.neighbour_images().get(band)
-            if neighbours is not None:
-                signal = signal + neighbours
             images[e] = add_noise(signal, conditions, epoch_noise_seed(system, e))[0]
-        return EpochImages(images=images, points=points, reference=reference, light_curve_rows=rows)
+            difference[e] = images[e] - static_pixels
+        return EpochImages(images=images, difference=difference, points=points, reference=reference,
+                           light_curve_rows=rows)
 
 
 def _source_magnitudes(system, times: np.ndarray) -> dict | None:

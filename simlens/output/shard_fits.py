@@ -15,6 +15,7 @@ MASK             (n_systems, n_bands, ny, nx) uint8    1 where the lensed source
 PSF              (n_systems, n_bands, 25, 25) float32  effective PSF per system and band, unit sum
 REFERENCE        (n_systems, n_bands, ny, nx) float32  noiseless static scene, no point source ([survey.cadence])
 EPOCH_IMAGES     (n_systems, n_epochs, ny, nx) float32 observed image at each epoch ([survey.cadence])
+EPOCH_DIFFERENCE (n_systems, n_epochs, ny, nx) float32 EPOCH_IMAGES less the static scene at each epoch's PSF
 EPOCH_POINTS     (n_systems, n_epochs, ny, nx) float32 noiseless point-source images at each epoch (output.noiseless)
 TRUTH            table, one row per system             the truth catalogue's rows for this shard
 SUBHALOS         table, one row per subhalo            subhalos of this shard's lenses (by system_id)
@@ -45,7 +46,7 @@ from .atomic import atomic_path
 __all__ = ["write_shard", "read_shard", "PLANES"]
 
 PLANES = ("IMAGES", "SOURCE", "LENS", "NEIGHBOURS", "VARIANCE", "MASK", "PSF", "REFERENCE", "EPOCH_IMAGES",
-          "EPOCH_POINTS")
+          "EPOCH_DIFFERENCE", "EPOCH_POINTS")
 
 
 def write_shard(path: Path, cubes: dict, truth: Table, header: dict, extra_tables: dict | None = None) -> None:

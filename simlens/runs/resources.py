@@ -108,11 +108,11 @@ def estimate_resources(recipe: Recipe) -> ResourceEstimate:
                 (nb * n**2 * 8 * 8, "survey.cutout_size"),
         }
         per_system = nb * n**2 * bytes_per_pixel + psf_bytes
-        if survey.cadence is not None:  # EPOCH_IMAGES (and EPOCH_POINTS), REFERENCE
+        if survey.cadence is not None:  # EPOCH_IMAGES, EPOCH_DIFFERENCE (and EPOCH_POINTS), REFERENCE
             from ..transients.cadence import survey_epochs
 
             n_epochs = len(survey_epochs(recipe))
-            epoch_bytes = (n_epochs * (1 + output.noiseless) + nb) * n**2 * 4
+            epoch_bytes = (n_epochs * (2 + output.noiseless) + nb) * n**2 * 4
             terms[f"the epoch cubes of a {shard}-system shard ({n_epochs} epochs)"] = (
                 2 * shard * epoch_bytes, "output.shard_size, or fewer epochs ([survey.cadence])")
             terms["the epoch images of one system"] = (n_epochs * n**2 * 4 * 3, "fewer epochs ([survey.cadence])")

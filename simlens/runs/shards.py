@@ -100,6 +100,7 @@ def _render_shard(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
     epochs = sampler.epochs
     if epochs is not None:
         cubes["EPOCH_IMAGES"] = np.zeros((spec.n_systems, len(epochs), n, n), np.float32)
+        cubes["EPOCH_DIFFERENCE"] = np.zeros((spec.n_systems, len(epochs), n, n), np.float32)
         cubes["REFERENCE"] = np.zeros(shape, np.float32)
         if output.noiseless:
             cubes["EPOCH_POINTS"] = np.zeros((spec.n_systems, len(epochs), n, n), np.float32)
@@ -128,6 +129,7 @@ def _render_shard(recipe: Recipe, run_folder: Path, spec: ShardSpec) -> ShardRes
             psf_cube[k, b] = observed.psf
         if epochs is not None:
             cubes["EPOCH_IMAGES"][k] = rendered.epochs.images
+            cubes["EPOCH_DIFFERENCE"][k] = rendered.epochs.difference
             if "EPOCH_POINTS" in cubes:
                 cubes["EPOCH_POINTS"][k] = rendered.epochs.points
             for b, band in enumerate(survey.band_names):
