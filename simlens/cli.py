@@ -8,7 +8,7 @@
                   [--match-radius ARCSEC]
     simlens inject IMAGE.fits [IMAGE.fits ...] --recipe RECIPE --lenses CATALOG [--bands g,r,i] [--psf PSF.fits] [--out DIR]
     simlens gallery RUN_DIR [--where "COLUMN OP VALUE" ...] [--missed SCORES --threshold T] [--sort COLUMN]
-    simlens forecast RECIPE [--area DEG2] [--n N] [--rules collett2015|collett2015_matched|selection|multiply_imaged] [--out DIR]
+    simlens forecast RECIPE [--area DEG2] [--n N] [--rules collett2015|...|om10_supernova] [--out DIR]
 
 Every error prints one line (``simlens: error: ...``), never a traceback unless ``--debug`` is given.
 Exit status: 0 success; 1 a run that failed or a verify that found damage; 2 an input error (a
@@ -94,6 +94,14 @@ def _check(args) -> int:
         from .runs.fields import describe_fields
 
         print(f"  fields: {describe_fields(recipe)}")
+    if survey.cadence is not None:
+        from .transients.cadence import five_sigma_depth, survey_epochs
+
+        epochs = survey_epochs(recipe)
+        per_band = ", ".join(f"{b} {epochs.band.count(b)} (median depth "
+                             f"{np.median([five_sigma_depth(c) for c in epochs.conditions if c.name == b]):.2f})"
+                             for b in survey.band_names if b in epochs.band)
+        print(f"  epochs: {len(epochs)} visits from MJD {epochs.time[0]:.1f} to {epochs.time[-1]:.1f}: {per_band}")
     cells = recipe.grid_shape
     grid_text = " x ".join(str(n) for n in cells) if cells else "none"
     print(f"  {recipe.count} systems, seed {recipe.seed}; grid cells: {grid_text}")
@@ -171,6 +179,9 @@ def _forecast(args) -> int:
           f"deflectors drawn ({result.galaxies_per_deg2:.4g} per deg^2)")
     print(f"  {result.per_deg2:.3g} +- {result.sampling_error_per_deg2:.2g} (sampling) lenses per deg^2; "
           f"{result.in_area:.4g} +- {result.poisson_error_in_area:.2g} (Poisson) in {result.area:g} deg^2")
+    if result.window_days:
+        print(f"  maxima in a window of {result.window_days:g} days: {result.per_year:.4g} per year in "
+              f"{result.area:g} deg^2")
     for column in ("einstein_radius", "multiplicity"):
         table = result.breakdown(column)
         if column == "multiplicity":
@@ -333,9 +344,10 @@ def build_parser() -> argparse.ArgumentParser:
     fc.add_argument("--area", type=float, default=1.0, help="survey area in deg^2 (default 1)")
     fc.add_argument("--n", type=int, default=20000, help="deflector galaxies to draw (default 20000)")
     fc.add_argument("--rules", default="collett2015",
-                    choices=("collett2015", "collett2015_matched", "selection", "multiply_imaged"),
+                    choices=("collett2015", "collett2015_matched", "selection", "multiply_imaged", "om10_supernova"),
                     help="detectability: Collett (2015)'s rule set (or with the matched-filter S/N), the recipe's "
-                         "own [selection] cuts, or every multiply imaged source (the optical depth)")
+                         "own [selection] cuts, every multiply imaged source (the optical depth), or Oguri & "
+                         "Marshall (2010)'s for lensed supernovae (recipes with source.supernova.rate)")
     fc.add_argument("--seed", type=int, help="random seed (overrides the recipe's)")
     fc.add_argument("--out", help="output folder (default: outputs/forecast_<recipe name>)")
     fc.add_argument("--overwrite", action="store_true", help="replace an earlier forecast in --out")

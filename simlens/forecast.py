@@ -21,6 +21,16 @@ it.  A system is *detectable* by a rule set:
   rendered where a cut needs them); the detectable share is accepted systems over candidates.
 - ``multiply_imaged``: every multiply imaged source, no cut: the lensing optical depth times the
   source density (the limit Turner, Ostriker & Gott 1984 give in closed form).
+- ``om10_supernova`` (recipes with ``source.supernova.rate``; the criteria of Oguri & Marshall 2010,
+  MNRAS 405, 2579, as recalled: from memory): a multiply imaged supernova whose images are
+  separated by at least 2/3 of the reference band's FWHM and whose second brightest image (third
+  brightest of a quad) is brighter than the survey's limit: here at one visit at least of the
+  reference band, against that visit's 5-sigma depth, at the image's own delay (OM10 ask it at
+  maximum; the visits add the seasons and the weather).  Its counts are per year: the supernovae
+  drawn are those with maxima in the survey's span (plus the peak margins), scaled to 365.25 days.  Lensed supernovae are rare (a few in
+  a million deflectors), so they are drawn at SUPERNOVA_DRAW_DENSITY per arcmin^2 and the counts
+  divided by that boost: exact while a deflector's caustics rarely hold two of them (the kept
+  first one undercounts by about half the mean number inside, 0.5 % at theta_E = 1.5").
 
 The rate is the deflectors' sky density times the detectable share; its errors are the sampling
 error (Poisson on the detected count) and the Poisson scatter of the count in the survey's area.
@@ -43,7 +53,10 @@ from .recipe import Recipe
 __all__ = ["RULE_SETS", "Forecast", "forecast", "estimated_source_view", "SourceView", "forecast_recipe",
            "write_forecast"]
 
-RULE_SETS = ("collett2015", "collett2015_matched", "selection", "multiply_imaged")
+RULE_SETS = ("collett2015", "collett2015_matched", "selection", "multiply_imaged", "om10_supernova")
+SEPARATION_IN_FWHM = 2.0 / 3.0  # Oguri & Marshall 2010 (from memory)
+SUPERNOVA_DRAW_DENSITY = 10.0  # per arcmin^2: lensed supernovae drawn boosted to this density
+SUPERNOVA_RULES = ("om10_supernova", "multiply_imaged")
 DETECTION_SNR = 20.0  # Collett 2015
 MIN_MAGNIFICATION = 3.0  # Collett 2015
 RING_COVERAGE = 0.75  # lensed light around this share of the azimuth is a ring (common practice)
@@ -60,12 +73,17 @@ MULTIPLICITIES = ("double", "quad", "ring")
 def forecast_recipe(recipe: Recipe, rules: str) -> Recipe:
     """The recipe as a forecast draws it: sky mode, no negatives, neighbours or fields; under
     ``collett2015`` without the recipe's own cuts (the rule set is the selection)."""
-    if recipe.lens.population is None or (recipe.source.counts is None and recipe.source.position.density is None):
+    supernova_rate = recipe.source.supernova is not None and recipe.source.supernova.rate is not None
+    if recipe.lens.population is None or (recipe.source.counts is None and recipe.source.position.density is None
+                                          and not supernova_rate):
         raise SimlensError(f"{recipe.origin}: a forecast needs populations with rates: a [lens.population] table "
-                           "(the velocity dispersion function) and a [source.counts] table (number counts) or "
-                           "source.position.density")
+                           "(the velocity dispersion function) and a [source.counts] table (number counts), "
+                           "source.position.density or source.supernova.rate")
     if rules not in RULE_SETS:
         raise SimlensError(f"unknown rule set {rules!r}; choose from {', '.join(RULE_SETS)}")
+    if (rules == "om10_supernova" and not supernova_rate) or (supernova_rate and rules not in SUPERNOVA_RULES):
+        raise SimlensError(f"{recipe.origin}: a supernova rate (source.supernova.rate) goes with the rule sets "
+                           f"{' and '.join(SUPERNOVA_RULES)}, and om10_supernova with a supernova rate alone")
     from .recipe.schema import NegativeSettings, SelectionSettings
 
     source = dataclasses.replace(recipe.source, position=dataclasses.replace(recipe.source.position, mode="sky"))
@@ -154,14 +172,46 @@ def _collett_detection(system, survey, band_names, matched: bool = False) -> dic
                 ring=best.ring, n_images=_image_count(system, survey, scene.deflector))
 
 
-def _image_count(system, survey, deflector) -> int:
+def _images(system, survey, deflector):
     """Images of the source centre, searched as the renderer searches them."""
     from .imaging.render import image_search_windows, pixel_grid_for
     from .lensing.lens_equation import find_images
 
     windows = image_search_windows(system.einstein_radius, system.mass_q, math.hypot(system.source_x, system.source_y),
                                    pixel_grid_for(system, survey), whole_cutout=bool(system.line_of_sight))
-    return len(find_images(deflector, system.source_x, system.source_y, windows))
+    return find_images(deflector, system.source_x, system.source_y, windows)
+
+
+def _image_count(system, survey, deflector) -> int:
+    return len(_images(system, survey, deflector))
+
+
+def _supernova_detection(system, survey, band: str, visits: tuple) -> dict | None:
+    """The detection record of a lensed supernova under ``om10_supernova``, or None; ``visits``:
+    the times and 5-sigma depths of the band's visits."""
+    if not (system.lensing and system.multiply_imaged and system.transient_kind == "sn_ia"):
+        return None
+    from .imaging.scene import build_scene
+
+    deflector = build_scene(system).deflector
+    images = _images(system, survey, deflector)
+    n = len(images)
+    if n < 2:
+        return None
+    x, y = np.asarray(images.x), np.asarray(images.y)
+    separation = float(np.max(np.hypot(x[:, None] - x[None, :], y[:, None] - y[None, :])))
+    if separation < SEPARATION_IN_FWHM * system.band(band).psf_fwhm:
+        return None
+    times, depths = visits
+    counted = np.argsort(-np.abs(np.asarray(images.magnification)))[2 if n >= 4 else 1]  # 2nd brightest, 3rd of a quad
+    from .lensing.lens_equation import time_delays
+
+    delay = time_delays(deflector, images, system.source_x, system.source_y, system.days_per_arcsec2)[counted]
+    unlensed = system.light_curve.magnitudes_at(times - delay)[band]
+    if not np.any(unlensed - 2.5 * math.log10(abs(float(images.magnification[counted]))) <= depths):
+        return None
+    return dict(band=band, snr=math.nan, matched_snr=math.nan, magnification=float(np.abs(images.magnification).sum()),
+                ring=False, n_images=n)
 
 
 @dataclass
@@ -174,6 +224,8 @@ class Forecast:
     galaxies_per_deg2: float  # of the deflector population
     area: float  # deg^2
     detections: Table  # one row per detectable system
+    window_days: float | None = None  # transients: the window the drawn events' maxima fall in
+    boost: float = 1.0  # the drawn source density over the population's (rare transients)
 
     @property
     def detected(self) -> int:
@@ -181,12 +233,12 @@ class Forecast:
 
     @property
     def per_deg2(self) -> float:
-        return self.galaxies_per_deg2 * self.detected / self.drawn
+        return self.galaxies_per_deg2 * self.detected / self.drawn / self.boost
 
     @property
     def sampling_error_per_deg2(self) -> float:
         """The rate's error from the finite draw (Poisson on the detected count)."""
-        return self.galaxies_per_deg2 * math.sqrt(max(self.detected, 1)) / self.drawn
+        return self.galaxies_per_deg2 * math.sqrt(max(self.detected, 1)) / self.drawn / self.boost
 
     @property
     def in_area(self) -> float:
@@ -199,7 +251,7 @@ class Forecast:
 
     def breakdown(self, column: str) -> Table:
         """Counts and rates per deg^2 in bins of ``column`` (or per multiplicity)."""
-        per_system = self.galaxies_per_deg2 / self.drawn
+        per_system = self.galaxies_per_deg2 / self.drawn / self.boost
         if column == "multiplicity":
             values = list(self.detections["multiplicity"]) if self.detected else []
             counts = [values.count(kind) for kind in MULTIPLICITIES]
@@ -211,11 +263,20 @@ class Forecast:
         return Table({f"{column}_low": edges[:-1], f"{column}_high": edges[1:], "detected": counts,
                       "per_deg2": counts * per_system})
 
+    @property
+    def per_year(self) -> float:
+        """Transients: the lenses found in ``area`` per year of observing (nan for static sources)."""
+        return self.in_area * 365.25 / self.window_days if self.window_days else math.nan
+
     def summary(self) -> dict:
-        return {"recipe": self.recipe_name, "rules": self.rules, "drawn": self.drawn, "detected": self.detected,
-                "deflectors_per_deg2": self.galaxies_per_deg2, "lenses_per_deg2": self.per_deg2,
-                "sampling_error_per_deg2": self.sampling_error_per_deg2, "area_deg2": self.area,
-                "lenses_in_area": self.in_area, "poisson_error_in_area": self.poisson_error_in_area}
+        out = {"recipe": self.recipe_name, "rules": self.rules, "drawn": self.drawn, "detected": self.detected,
+               "deflectors_per_deg2": self.galaxies_per_deg2, "lenses_per_deg2": self.per_deg2,
+               "sampling_error_per_deg2": self.sampling_error_per_deg2, "area_deg2": self.area,
+               "lenses_in_area": self.in_area, "poisson_error_in_area": self.poisson_error_in_area}
+        if self.window_days:
+            out.update(window_days=self.window_days, density_boost=self.boost, lenses_in_area_per_year=self.per_year,
+                       sampling_error_per_year=self.sampling_error_per_deg2 * self.area * 365.25 / self.window_days)
+        return out
 
 
 def forecast(recipe: Recipe, n: int, area: float, rules: str = "collett2015", progress=None) -> Forecast:
@@ -230,12 +291,27 @@ def forecast(recipe: Recipe, n: int, area: float, rules: str = "collett2015", pr
         raise SimlensError(f"--area must be positive, got {area}")
     drawn_recipe = forecast_recipe(recipe, rules).with_overrides(count=n)
     sampler = PopulationSampler(drawn_recipe)
+    boost = 1.0
+    if sampler.supernova_redshifts is not None:  # rare: drawn denser, counted at the population's density
+        density = sampler.source_density
+        boost = max(1.0, SUPERNOVA_DRAW_DENSITY / density)
+        position = dataclasses.replace(drawn_recipe.source.position, density=density * boost)
+        drawn_recipe = dataclasses.replace(drawn_recipe, source=dataclasses.replace(drawn_recipe.source, position=position))
+        sampler = PopulationSampler(drawn_recipe)
     galaxies = sampler.deflectors.sky_density() / DEGREE2_PER_STERADIAN
     survey, rows, drawn = drawn_recipe.survey, [], 0
     band_names = survey.band_names
     counts = drawn_recipe.source.counts
     counts_band = (counts.band if counts is not None else None) or drawn_recipe.reference_band
     reference = drawn_recipe.reference_band
+    window = limit = None
+    if sampler.supernova_redshifts is not None:
+        from .transients.cadence import five_sigma_depth
+
+        epochs = sampler.epochs
+        window = epochs.span_days + 2.0 * drawn_recipe.source.supernova.peak_margin
+        visits = np.array([b == reference for b in epochs.band])
+        limit = (epochs.time[visits], np.array([five_sigma_depth(c) for c, v in zip(epochs.conditions, visits) if v]))
     chunk = 5000
     for start in range(0, n, chunk):
         ids = range(start, min(start + chunk, n))
@@ -254,6 +330,8 @@ def forecast(recipe: Recipe, n: int, area: float, rules: str = "collett2015", pr
                     found = (dict(band="", snr=math.nan, matched_snr=math.nan, magnification=math.nan, ring=False,
                                   n_images=_image_count(system, survey, build_scene(system).deflector))
                              if system.lensing and system.multiply_imaged else None)
+                elif rules == "om10_supernova":
+                    found = _supernova_detection(system, survey, reference, limit)
                 else:
                     found = _collett_detection(system, survey, band_names, matched=rules == "collett2015_matched")
                 if found is not None:
@@ -265,7 +343,7 @@ def forecast(recipe: Recipe, n: int, area: float, rules: str = "collett2015", pr
     table = Table(rows=rows, names=names) if rows else Table(names=names, dtype=[int, float, float, float, float, str,
                                                                                    float, float, float, int, str])
     return Forecast(recipe_name=recipe.name, rules=rules, drawn=drawn, galaxies_per_deg2=galaxies, area=area,
-                    detections=table)
+                    detections=table, window_days=window, boost=boost)
 
 
 def _row(system, found: dict, magnitude_band: str) -> tuple:

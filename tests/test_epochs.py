@@ -203,3 +203,15 @@ def test_epoch_gallery_draws_the_lit_epochs(epoch_run):
     from matplotlib.image import imread
 
     assert imread(files[0]).shape[0] > 500
+
+
+def test_per_system_files_hold_every_epoch(tmp_path):
+    text = (EPOCH_RECIPE.replace("count = 4", "count = 1").replace("length = 400.0", "length = 6.0")
+            .replace("per_system_files = false", "per_system_files = true"))
+    simlens.run(parse_recipe(text), tmp_path / "run")
+    with fits.open(tmp_path / "run" / "cutouts" / "system_000000.fits") as hdul:
+        names = [h.name for h in hdul]
+        assert "R_REF" in names and [n for n in names if n.startswith("EPOCH_")] == [f"EPOCH_{k:04d}" for k in range(7)]
+        assert [hdul[f"EPOCH_{k:04d}"].header["MJD-OBS"] for k in range(7)] == [61000.0 + k for k in range(7)]
+        with fits.open(tmp_path / "run" / "shards" / "shard_00000.fits") as shard:
+            np.testing.assert_array_equal(hdul["EPOCH_0003"].data, shard["EPOCH_IMAGES"].data[0, 3])

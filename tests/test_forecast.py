@@ -109,3 +109,48 @@ def test_a_recipe_without_rates_is_refused(capsys, tmp_path):
     recipe_path.write_text(SMALL_RECIPE)
     assert main(["forecast", str(recipe_path), "--n", "10", "--out", str(tmp_path / "o")]) == 2
     assert "needs populations with rates" in capsys.readouterr().err
+
+
+def test_lensed_supernovae_without_cuts_are_the_rate_times_the_optical_depth(monkeypatch):
+    # N = int dN_SN/dz/dOmega tau(z) dz: the supernova rate (Dilday et al. 2010, from memory; its
+    # density checked in tests/test_transients.py) times TOG84's optical depth of non-evolving SIS
+    # deflectors, tau(z_s) = (16 pi^3 / 30) n <sigma^4> D_C(z_s)^3 / c^4, by scipy quadrature.
+    from astropy import constants, units as u
+
+    from .test_placement import BASE
+
+    text = BASE.replace("count = 10", "count = 100") + """
+[lens.population]
+velocity_function = "choi2007"
+redshift_range = [0.001, 1.2]
+velocity_dispersion_range = [200.0, 300.0]
+[survey.cadence]
+length = 365.25
+[source.supernova]
+rate = "dilday2010"
+redshift_range = [0.2, 1.2]
+peak_margin = 0.0
+host = false
+[source.position]
+mode = "sky"
+"""
+    text = text.replace("[survey.bands.r]", "[survey.bands.r]\nrevisit = 5.0\nfilter = \"LSST_r\"", 1)
+    recipe = parse_recipe(text.replace("[source]\nredshift = 2.0\n", "[source]\n"))
+    # drawn at 40 per arcmin^2 (boosted 740 times): two in one lens's caustics stay rare (< 2 %)
+    monkeypatch.setattr("simlens.forecast.SUPERNOVA_DRAW_DENSITY", 40.0)
+    result = forecast(recipe, 30000, 1.0, "multiply_imaged")
+    sampler = PopulationSampler(recipe)
+    cosmo = recipe.cosmology.build()
+    vdf = VELOCITY_FUNCTIONS["choi2007"]
+    n = vdf.density(cosmo.h) * vdf.fraction_between(200.0, 300.0)
+    c = constants.c.to_value(u.km / u.s)
+    population = sampler.supernova_redshifts
+    per_sr = population.per_steradian
+    z = np.linspace(0.2, 1.2, 401)
+    weights = np.gradient(population._cdf, population._z)
+    density_z = np.interp(z, population._z, weights) * per_sr  # dN/dz/dOmega
+    tau = 16 * np.pi**3 / 30 * n * vdf.moment(4, 200.0, 300.0) * cosmo.comoving_distance(z).value ** 3 / c**4
+    expected = integrate.trapezoid(density_z * tau, z) / DEGREE2_PER_STERADIAN  # per deg^2 over the year
+    assert result.window_days == pytest.approx(365.25)
+    assert result.per_deg2 == pytest.approx(expected, abs=4 * result.sampling_error_per_deg2)
+    assert result.sampling_error_per_deg2 < 0.1 * expected

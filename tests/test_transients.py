@@ -201,3 +201,63 @@ def test_visits_file_gives_the_epochs(tmp_path):
     (tmp_path / "visits.txt").write_text("61002.5 z\n")
     with pytest.raises(Exception, match="is not a band"):
         load_recipe(recipe_path)
+
+
+def test_supernova_rate_density_and_redshifts_against_astropy_and_scipy():
+    # N/Omega = int r_V(z) T / (1+z) dV_C/dz/dOmega dz (Hogg 1999; Dilday et al. 2010's rate, from
+    # memory): astropy's Planck18 volume element and scipy's quadrature against the tabulation.
+    from scipy import integrate, stats
+
+    from simlens.cosmology import DistanceTable
+    from simlens.transients.rates import ARCMIN2_PER_STERADIAN, SUPERNOVA_RATES, SupernovaPopulation
+
+    rate = SUPERNOVA_RATES["dilday2010"]
+    population = SupernovaPopulation(rate, DistanceTable(Planck18), Planck18.h, (0.05, 1.5), 365.25)
+
+    def per_steradian(z):
+        return (2.69e-5 * (Planck18.h / 0.7) ** 3 * (1 + z) ** 1.5 / (1 + z)
+                * Planck18.differential_comoving_volume(z).value)
+
+    total, _ = integrate.quad(per_steradian, 0.05, 1.5)
+    assert population.sky_density == pytest.approx(total / ARCMIN2_PER_STERADIAN, rel=2e-3)
+    z = population.draw_redshift(np.random.default_rng(1).uniform(size=20000))
+    grid = np.linspace(0.05, 1.5, 301)
+    cumulative = np.concatenate([[0.0], np.cumsum([integrate.quad(per_steradian, a, b)[0]
+                                                   for a, b in zip(grid[:-1], grid[1:])])]) / total
+    assert stats.kstest(z, lambda x: np.interp(x, grid, cumulative)).pvalue > 0.01
+
+
+SN_SKY_RECIPE = CADENCE_RECIPE.replace("""[source]
+redshift = 1.0
+magnitude = 23.0""", """[source]
+magnitude = 23.0""") + """
+[source.supernova]
+rate = "dilday2010"
+redshift_range = [0.1, 1.2]
+[source.position]
+mode = "sky"
+"""
+
+
+def test_sky_mode_supernovae_take_the_rate_density_and_redshifts():
+    from simlens.transients.rates import SUPERNOVA_RATES, SupernovaPopulation
+
+    recipe = parse_recipe(SN_SKY_RECIPE.replace("[lens]\nredshift = 0.4", "[lens]\nredshift = 0.05"))
+    sampler = simlens_sampler(recipe)
+    # the cadence's 1000 days and the default peak_margin of 60 days on both sides
+    expected = SupernovaPopulation(SUPERNOVA_RATES["dilday2010"], sampler.distances, Planck18.h, (0.1, 1.2),
+                                   1000.0 + 120.0).sky_density
+    assert sampler.epochs.span_days == 1000.0
+    assert sampler.source_density == pytest.approx(expected, rel=1e-9)
+    systems = sampler.draw_many(range(40))
+    z = np.array([s.z_source for s in systems])
+    assert np.all((z >= 0.1) & (z <= 1.2)) and len(set(z)) == 40
+    assert all(s.transient_kind == "sn_ia" for s in systems)
+    with pytest.raises(Exception, match="source.redshift: is set together with source.supernova.rate"):
+        parse_recipe(SN_SKY_RECIPE.replace("[source]\n", "[source]\nredshift = 1.0\n"))
+
+
+def simlens_sampler(recipe):
+    from simlens.truth.sampler import PopulationSampler
+
+    return PopulationSampler(recipe)

@@ -99,9 +99,13 @@ def _check_colours(recipe: Recipe) -> None:
     _check_either(origin, "lens.light", lens.light.scaling is not None, "scaling",
                   {"magnitude": lens.light.magnitude, "half_light_radius": lens.light.half_light_radius},
                   colors=lens.light.colors)
+    rated = source.supernova is not None and source.supernova.rate is not None
+    if rated and source.redshift is not None:
+        raise RecipeError(origin, "source.redshift", "is set together with source.supernova.rate, which draws it",
+                          "source.supernova.redshift_range")
     _check_either(origin, "source", source.counts is not None, "counts",
-                  {"redshift": source.redshift, "magnitude": source.magnitude,
-                   "half_light_radius": source.half_light_radius}, colors=source.colors)
+                  {"magnitude": source.magnitude, "half_light_radius": source.half_light_radius,
+                   **({} if rated else {"redshift": source.redshift})}, colors=source.colors)
     if source.counts is not None and source.clumps.colors:
         raise RecipeError(origin, "source.clumps.colors", "is set together with source.counts",
                           "source.clumps.template (colours come from templates with source.counts)")
@@ -263,7 +267,8 @@ def _check_line_of_sight_and_subhalos(recipe: Recipe) -> None:
 def _check_redshifts(recipe: Recipe) -> None:
     origin, lens, source = recipe.origin, recipe.lens, recipe.source
     z_lens = lens.population.redshift_range if lens.population is not None else lens.redshift.support
-    z_source = source.counts.redshift_range if source.counts is not None else source.redshift.support
+    z_source = (source.counts.redshift_range if source.counts is not None else
+                source.supernova.redshift_range if source.redshift is None else source.redshift.support)
     if source.position.mode is None and z_source[0] <= z_lens[1]:
         raise RecipeError(origin, "source.counts.redshift_range" if source.counts is not None else "source.redshift",
                           f"can be {z_source[0]:g}, not behind lenses at redshift up to {z_lens[1]:g} "
@@ -286,9 +291,10 @@ def _check_position(recipe: Recipe) -> None:
                           "either radius_in_einstein_radii, or x and y")
     if (pos.x is None) != (pos.y is None):
         raise RecipeError(origin, "source.position", "gives only one of x and y", "both x and y")
-    if pos.mode == "sky" and pos.density is None and recipe.source.counts is None:
+    rated = recipe.source.supernova is not None and recipe.source.supernova.rate is not None
+    if pos.mode == "sky" and pos.density is None and recipe.source.counts is None and not rated:
         raise RecipeError(origin, "source.position.density", "is missing for mode = 'sky'",
-                          "a source density (arcmin^-2), or a [source.counts] table")
+                          "a source density (arcmin^-2), a [source.counts] table or source.supernova.rate")
     if pos.mode != "sky" and pos.density is not None:
         raise RecipeError(origin, "source.position.density", "applies to mode = 'sky' only",
                           "remove it, or set mode = 'sky'")
@@ -388,6 +394,16 @@ def _check_transients(recipe: Recipe) -> None:
         raise RecipeError(origin, varying[0], "needs the survey's epochs", "a [survey.cadence] table")
     if varying:
         _require_filters(recipe, f"{varying[0]} (its colours come from its spectrum)")
+    supernova = source.supernova
+    if supernova is not None and supernova.rate is not None:
+        if source.counts is not None:
+            raise RecipeError(origin, "source.supernova.rate", "is set together with [source.counts]",
+                              "explicit host galaxies (source.magnitude, ...): the rate gives the redshifts")
+        if supernova.fraction < 1 or source.position.density is not None:
+            key = "fraction" if supernova.fraction < 1 else "density"
+            raise RecipeError(origin, f"source.supernova.{key}" if key == "fraction" else "source.position.density",
+                              "is set together with source.supernova.rate, which gives every source and their density",
+                              "no fraction below 1, no density")
     if cadence is None:
         return
     if recipe.field is not None:

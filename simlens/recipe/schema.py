@@ -480,6 +480,11 @@ class SupernovaSettings:
     fraction: float = number(1.0, low=0, high=1,
                              doc="share of systems whose point source is the supernova; the others have "
                                  "the [source.quasar], if given, or none")
+    rate: str = text(optional=True, choices=("dilday2010",),
+                     doc="draw the supernovae's redshifts (instead of source.redshift) and, in sky mode, "
+                         "their sky density from a published volumetric rate over the epochs' window")
+    redshift_range: tuple = interval((0.02, 1.5), low=0.001, high=3.0,
+                                     doc="with a rate: the supernovae's redshifts")
 
 
 @dataclass(frozen=True, kw_only=True)

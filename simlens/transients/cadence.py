@@ -40,6 +40,12 @@ class Epochs:
     time: np.ndarray  # MJD
     band: tuple  # band name per epoch
     conditions: tuple  # BandConditions per epoch
+    start: float = math.nan  # the survey's span (MJD): the cadence's first night and start + length,
+    end: float = math.nan  # or a visits file's first and last visit
+
+    @property
+    def span_days(self) -> float:
+        return self.end - self.start
 
     def __len__(self) -> int:
         return int(self.time.size)
@@ -145,7 +151,10 @@ def survey_epochs(recipe: Recipe) -> Epochs:
     conditions = []
     for k in order:  # conditions in time order, so that they follow the visits
         conditions.append(_visit_conditions(recipe, bands[k], rng, factors, optics, given.get(int(k))))
-    return Epochs(time=np.asarray(times)[order], band=tuple(bands[k] for k in order), conditions=tuple(conditions))
+    time = np.asarray(times)[order]
+    start, end = ((float(time[0]), float(time[-1])) if cadence.visits is not None
+                  else (cadence.start, cadence.start + cadence.length))
+    return Epochs(time=time, band=tuple(bands[k] for k in order), conditions=tuple(conditions), start=start, end=end)
 
 
 def _visit_conditions(recipe: Recipe, name: str, rng, factors: dict, optics: dict, given) -> BandConditions:

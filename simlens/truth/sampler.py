@@ -54,6 +54,7 @@ from .streams import SYSTEM_STREAMS, grid_cell, system_streams
 from ..populations.photometry import load_filter
 from ..transients.cadence import survey_epochs
 from ..transients.supernova import SpectralTimeSeries, SupernovaModel, stretched_peak_magnitude
+from ..transients.rates import SUPERNOVA_RATES, SupernovaPopulation
 from ..transients.variability import MACLEOD_SF_INF, MACLEOD_TAU, DampedRandomWalk
 
 QUASAR_I_WAVELENGTH_NM = 750.0  # the rest wavelength of M_i in the variability relations (SDSS i, about)
@@ -144,6 +145,12 @@ class PopulationSampler:
             spectra = (SpectralTimeSeries.from_file(Path(base) / source.supernova.spectra)
                        if source.supernova.spectra is not None else SpectralTimeSeries.simplified_ia())
             self.supernovae = SupernovaModel(spectra, {b: load_filter(f, base) for b, f in filters.items()})
+        self.supernova_redshifts = None
+        if source.supernova is not None and source.supernova.rate is not None:
+            margin = source.supernova.peak_margin
+            self.supernova_redshifts = SupernovaPopulation(
+                SUPERNOVA_RATES[source.supernova.rate], self.distances, self.cosmology.h,
+                source.supernova.redshift_range, self.epochs.span_days + 2.0 * margin)
         self._rest_wavelengths = ({b: load_filter(f, base).mean_wavelength for b, f in filters.items()}
                                   if source.quasar is not None and source.quasar.variability is not None else {})
 
@@ -157,6 +164,8 @@ class PopulationSampler:
         density = self.recipe.source.position.density
         if density is not None:
             return density
+        if self.supernova_redshifts is not None:
+            return self.supernova_redshifts.sky_density
         return self.source_model.sky_density if self.source_model is not None else math.nan
 
     # -- the public entry points ---------------------------------------------------------------
@@ -514,14 +523,13 @@ class PopulationSampler:
 
     def _supernova(self, v: dict, z_source: float, rng) -> dict:
         """A type Ia supernova at the source centre: its stretch, peak (stretch-luminosity relation)
-        and the time of its maximum, uniform from ``peak_margin`` before the first epoch to as long
-        after the last, so that some maxima fall outside the epochs."""
+        and the time of its maximum, uniform from ``peak_margin`` before the survey's span to as
+        long after it, so that some maxima fall outside the epochs."""
         settings = self.recipe.source.supernova
         stretch = v["source.supernova.stretch"]
         peak = stretched_peak_magnitude(v["source.supernova.peak_absolute_magnitude"], stretch,
                                         settings.stretch_luminosity)
-        t = self.epochs.time
-        peak_time = float(rng.uniform(t[0] - settings.peak_margin, t[-1] + settings.peak_margin))
+        peak_time = float(rng.uniform(self.epochs.start - settings.peak_margin, self.epochs.end + settings.peak_margin))
         curve = self.supernovae.light_curve(z_source, stretch, peak, float(self.distances.distmod(z_source)), peak_time)
         return dict(transient_kind="sn_ia", light_curve=curve, transient_peak_mjd=peak_time, transient_stretch=stretch,
                     transient_peak_absolute_magnitude=peak)
@@ -975,7 +983,8 @@ class _PairQueue:
     def __init__(self, sampler: PopulationSampler, rngs: list):
         self.sampler, self.rngs = sampler, rngs
         self.lens_mode = sampler.mode == "lens"
-        self.bulk = sampler.deflectors is not None or sampler.source_model is not None
+        self.bulk = (sampler.deflectors is not None or sampler.source_model is not None
+                     or sampler.supernova_redshifts is not None)
         self.size = sampler.GEOMETRY_BATCH if (self.bulk and self.lens_mode) else 1
         n = len(rngs)
         self.batch = {name: np.zeros((n, self.size)) for name in ("sigma", "z_lens", "z_source", "m")}
@@ -992,7 +1001,8 @@ class _PairQueue:
     def _new_batches(self, rows: np.ndarray, values: dict, picks: np.ndarray) -> None:
         """Fresh batches for rows ``rows`` (``picks``: their places in ``values``)."""
         s, n = self.sampler, self.size
-        calls = (2 if s.deflectors is not None else 0) + (2 if s.source_model is not None else 0) + self.lens_mode
+        calls = ((2 if s.deflectors is not None else 0) + (2 if s.source_model is not None else 0) + self.lens_mode
+                 + (s.supernova_redshifts is not None))
         u = (np.stack([self.rngs[k].uniform(size=calls * n) for k in rows]).reshape(rows.size, calls, n)
              if calls else np.zeros((rows.size, 0, n)))
         c = 0
@@ -1007,6 +1017,10 @@ class _PairQueue:
             m = s.source_model.counts.draw(*settings.magnitude_range, u[:, c])
             z_s = s.source_model.redshifts.draw(m, *settings.redshift_range, u[:, c + 1])
             c += 2
+        elif s.supernova_redshifts is not None:  # the supernova rate's redshifts
+            m = np.full((rows.size, n), math.nan)
+            z_s = s.supernova_redshifts.draw_redshift(u[:, c])
+            c += 1
         else:
             m = np.full((rows.size, n), math.nan)
             z_s = np.repeat(values["source.redshift"][picks][:, None], n, axis=1)
