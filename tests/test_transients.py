@@ -261,3 +261,24 @@ def simlens_sampler(recipe):
     from simlens.truth.sampler import PopulationSampler
 
     return PopulationSampler(recipe)
+
+
+def test_band_light_curve_tables_are_dilated_and_shifted(tmp_path):
+    # A user's light curves in the survey's bands: m_b(t) = M + DM + offset_b(p), p = (t - t_peak) /
+    # ((1 + z) s): the time dilation of an expanding universe (common practice) and no K-correction.
+    from simlens.transients.supernova import BandLightCurves
+
+    phases = np.arange(-15.0, 61.0, 1.0)
+    shape = -2.5 * np.log10(np.clip(template_b_flux(phases), 1e-12, None))
+    path = tmp_path / "curves.txt"
+    path.write_text("".join(f"{p} {band} {m + (0.3 if band == 'g' else 0.0)}\n"
+                            for band in ("g", "r") for p, m in zip(phases, shape)))
+    table = BandLightCurves.from_file(path, ("g", "r"))
+    curve = SupernovaModel(table, {}).light_curve(0.5, 1.2, -19.0, 42.0, peak_time=61000.0)
+    t = 61000.0 + 1.5 * 1.2 * np.array([-10.0, 0.0, 15.0])
+    m = curve.magnitudes_at(t)
+    expected = -19.0 + 42.0 + np.interp([-10.0, 0.0, 15.0], phases, shape)
+    assert np.allclose(m["r"], expected, atol=1e-9) and np.allclose(m["g"], expected + 0.3, atol=1e-9)
+    path.write_text("0 g 0.0\n1 g 0.1\n")
+    with pytest.raises(ValueError, match="band 'r' needs two phases"):
+        BandLightCurves.from_file(path, ("g", "r"))

@@ -392,7 +392,8 @@ def _check_transients(recipe: Recipe) -> None:
                                       and source.quasar.variability is not None)) if on]
     if varying and cadence is None:
         raise RecipeError(origin, varying[0], "needs the survey's epochs", "a [survey.cadence] table")
-    if varying:
+    if varying and not (source.supernova is not None and source.supernova.light_curves is not None
+                        and source.quasar is None):
         _require_filters(recipe, f"{varying[0]} (its colours come from its spectrum)")
     supernova = source.supernova
     if supernova is not None and supernova.rate is not None:
@@ -415,15 +416,23 @@ def _check_transients(recipe: Recipe) -> None:
     if cadence.visits is None and not any(b.revisit is not None for b in recipe.survey.bands):
         raise RecipeError(origin, "survey.cadence", "has no visits file and no band with a revisit gap",
                           "survey.bands.NAME.revisit = days, or survey.cadence.visits = 'file'")
-    if source.supernova is not None and source.supernova.spectra is not None:
+    if source.supernova is not None and source.supernova.spectra is not None and source.supernova.light_curves is not None:
+        raise RecipeError(origin, "source.supernova.light_curves", "is given together with spectra",
+                          "a spectral time series or light curves in the survey's bands")
+    if source.supernova is not None and (source.supernova.spectra or source.supernova.light_curves) is not None:
         base = Path(origin).parent if origin != "<recipe>" else Path(".")
-        from ..transients.supernova import SpectralTimeSeries
+        from ..transients.supernova import BandLightCurves, SpectralTimeSeries
 
+        key = "spectra" if source.supernova.spectra is not None else "light_curves"
         try:
-            SpectralTimeSeries.from_file(base / source.supernova.spectra)
+            if key == "spectra":
+                SpectralTimeSeries.from_file(base / source.supernova.spectra)
+            else:
+                BandLightCurves.from_file(base / source.supernova.light_curves, recipe.survey.band_names)
         except (OSError, ValueError) as exc:
-            raise RecipeError(origin, "source.supernova.spectra", str(exc),
-                              "'phase_day wavelength_nm f_lambda' lines, all wavelengths at every phase") from None
+            raise RecipeError(origin, f"source.supernova.{key}", str(exc),
+                              "'phase_day wavelength_nm f_lambda' lines, all wavelengths at every phase"
+                              if key == "spectra" else "'phase_day band magnitude_offset' lines for every band") from None
     from ..transients.cadence import survey_epochs
 
     survey_epochs(recipe)  # refuses no visits, too many, grids over conditions, bad visit files

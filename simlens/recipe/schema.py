@@ -476,6 +476,9 @@ class SupernovaSettings:
                                 doc="maxima fall uniformly from this long before the first epoch to this long after the last")
     spectra: str = text(optional=True, doc="a spectral time series file ('phase_day wavelength_nm f_lambda' "
                                            "lines), relative to the recipe (default: the built-in simplified one)")
+    light_curves: str = text(optional=True, doc="instead of a spectrum: light curves in the survey's bands, "
+                                                "'phase_day band magnitude_offset' lines (offsets from the peak "
+                                                "absolute magnitude, no K-correction), relative to the recipe")
     host: bool = flag(True, doc="keep the source galaxy as the supernova's host (false: a bare point source)")
     fraction: float = number(1.0, low=0, high=1,
                              doc="share of systems whose point source is the supernova; the others have "

@@ -20,7 +20,10 @@ smooth template with a rise of 18 days from explosion (Riess et al. 1999 and Hay
 give 17-19.5 days), Delta m_15(B) = 1.1 (a normal Ia, Phillips 1993), 2.0 mag at +30 days and
 0.014 mag/day at +60 to +100 days (figures from memory).  Its colours are those of the black body,
 right only to about 0.1-0.3 mag; no spectral lines, no second infrared maximum.  Give a measured
-spectral time series (``source.supernova.spectra``) where colours matter.
+spectral time series (``source.supernova.spectra``) where colours matter, or light curves in the
+survey's own bands (``source.supernova.light_curves``, :class:`BandLightCurves`: magnitude
+offsets from the peak absolute magnitude; the time axis still dilated by (1 + z) s, no
+K-correction but the table's).
 """
 
 from __future__ import annotations
@@ -32,7 +35,7 @@ import numpy as np
 
 from ..populations.photometry import Filter, _ab_integral, _HC_OVER_K_NM_K, load_filter
 
-__all__ = ["SpectralTimeSeries", "SupernovaModel", "TabulatedLightCurve", "REST_FRAME_B", "stretched_peak_magnitude"]
+__all__ = ["SpectralTimeSeries", "BandLightCurves", "SupernovaModel", "TabulatedLightCurve", "REST_FRAME_B", "stretched_peak_magnitude"]
 
 REST_FRAME_B = "ACS_wfc_F435W"  # GalSim's curve standing in for Johnson B
 
@@ -155,24 +158,79 @@ class TabulatedLightCurve:
         return out
 
 
-class SupernovaModel:
-    """Light curves of type Ia supernovae in a survey's bands from one spectral time series."""
+@dataclass(frozen=True, eq=False)
+class BandLightCurves:
+    """A user's light curves in the survey's bands: ``offsets[band]`` (mag) added to the peak
+    absolute magnitude at rest-frame ``phase`` (days from maximum), as the survey sees a
+    supernova (its K-corrections, if any, are the table's: no spectrum is redshifted)."""
 
-    def __init__(self, spectra: SpectralTimeSeries, filters: dict[str, Filter]):
+    name: str
+    phase: np.ndarray
+    offsets: dict
+
+    @classmethod
+    def from_file(cls, path: str | Path, bands) -> "BandLightCurves":
+        """A table of ``phase_day  band  magnitude_offset`` lines (``#`` comments), every band of
+        ``bands``; each band's offsets are interpolated linearly onto the union of the phases
+        (no light outside its own)."""
+        rows = {}
+        try:
+            lines = Path(path).read_text(encoding="utf-8").splitlines()
+        except (OSError, UnicodeDecodeError) as exc:
+            raise ValueError(f"light-curve table {path}: cannot be read ({type(exc).__name__})") from None
+        for number, line in enumerate(lines, 1):
+            words = line.split("#", 1)[0].split()
+            if not words:
+                continue
+            try:
+                if len(words) != 3:
+                    raise ValueError
+                phase, offset = float(words[0]), float(words[2])
+                if not (np.isfinite(phase) and np.isfinite(offset)):
+                    raise ValueError
+            except ValueError:
+                raise ValueError(f"light-curve table {path} line {number}: not 'phase_day band magnitude_offset'") from None
+            rows.setdefault(words[1], []).append((phase, offset))
+        missing = [b for b in bands if b not in rows or len(rows[b]) < 2]
+        if missing:
+            raise ValueError(f"light-curve table {path}: band {missing[0]!r} needs two phases at least")
+        grid = np.unique(np.concatenate([[p for p, _ in rows[b]] for b in bands]))
+        offsets = {}
+        for b in bands:
+            p, m = np.array(sorted(rows[b])).T
+            if np.any(np.diff(p) <= 0):
+                raise ValueError(f"light-curve table {path}: band {b!r} repeats a phase")
+            flux = np.interp(grid, p, 10 ** (-0.4 * m), left=0.0, right=0.0)
+            with np.errstate(divide="ignore"):
+                offsets[b] = -2.5 * np.log10(flux)
+        return cls(name=str(path), phase=grid, offsets=offsets)
+
+
+class SupernovaModel:
+    """Light curves of type Ia supernovae in a survey's bands: from a spectral time series
+    redshifted through the filters, or from a user's :class:`BandLightCurves`."""
+
+    def __init__(self, spectra: SpectralTimeSeries | BandLightCurves, filters: dict[str, Filter]):
         self.spectra, self.filters = spectra, dict(filters)
-        rest_b = load_filter(REST_FRAME_B)
-        peak = int(np.argmin(np.abs(spectra.phase)))
-        self._rest_b_peak = float(spectra.band_magnitudes({"B": rest_b}, 0.0)["B"][peak])
+        self._rest_b_peak = 0.0
+        if isinstance(spectra, SpectralTimeSeries):
+            peak = int(np.argmin(np.abs(spectra.phase)))
+            self._rest_b_peak = float(spectra.band_magnitudes({"B": load_filter(REST_FRAME_B)}, 0.0)["B"][peak])
+
+    def _offsets(self, z: float) -> dict:
+        if isinstance(self.spectra, BandLightCurves):
+            return self.spectra.offsets
+        return {b: m - self._rest_b_peak for b, m in self.spectra.band_magnitudes(self.filters, z).items()}
 
     def light_curve(self, z: float, stretch: float, peak_absolute_magnitude: float, distance_modulus: float,
                     peak_time: float) -> TabulatedLightCurve:
         """The supernova's magnitudes in every band at the observer times of the series' phases
         (``peak_time + (1 + z) s phase``)."""
-        offsets = self.spectra.band_magnitudes(self.filters, z)
-        base = peak_absolute_magnitude + distance_modulus - self._rest_b_peak
+        base = peak_absolute_magnitude + distance_modulus
         times = peak_time + (1.0 + z) * stretch * self.spectra.phase
         return TabulatedLightCurve(times=tuple(float(t) for t in times),
-                                   magnitudes=tuple((b, tuple(float(m) for m in base + o)) for b, o in offsets.items()))
+                                   magnitudes=tuple((b, tuple(float(m) for m in base + o))
+                                                    for b, o in self._offsets(z).items()))
 
 
 def stretched_peak_magnitude(m0: float, stretch: float, alpha: float) -> float:

@@ -53,7 +53,7 @@ from .psf import band_fwhm, band_optics, major_axis_fwhm, padding_for, psf_shear
 from .streams import SYSTEM_STREAMS, grid_cell, system_streams
 from ..populations.photometry import load_filter
 from ..transients.cadence import survey_epochs
-from ..transients.supernova import SpectralTimeSeries, SupernovaModel, stretched_peak_magnitude
+from ..transients.supernova import BandLightCurves, SpectralTimeSeries, SupernovaModel, stretched_peak_magnitude
 from ..transients.rates import SUPERNOVA_RATES, SupernovaPopulation
 from ..transients.variability import MACLEOD_SF_INF, MACLEOD_TAU, DampedRandomWalk
 
@@ -142,8 +142,10 @@ class PopulationSampler:
         self.epochs = survey_epochs(recipe) if recipe.survey.cadence is not None else None
         self.supernovae = None
         if source.supernova is not None:
-            spectra = (SpectralTimeSeries.from_file(Path(base) / source.supernova.spectra)
-                       if source.supernova.spectra is not None else SpectralTimeSeries.simplified_ia())
+            settings = source.supernova
+            spectra = (SpectralTimeSeries.from_file(Path(base) / settings.spectra) if settings.spectra is not None else
+                       BandLightCurves.from_file(Path(base) / settings.light_curves, recipe.survey.band_names)
+                       if settings.light_curves is not None else SpectralTimeSeries.simplified_ia())
             self.supernovae = SupernovaModel(spectra, {b: load_filter(f, base) for b, f in filters.items()})
         self.supernova_redshifts = None
         if source.supernova is not None and source.supernova.rate is not None:
