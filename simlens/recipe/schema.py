@@ -468,7 +468,8 @@ class VariabilitySettings:
 class SupernovaSettings:
     peak_absolute_magnitude: Parameter = parameter(
         -19.4, low=-22, high=-16, unit="mag",
-        doc="rest-frame B (AB) at maximum for stretch 1: -19.3 Vega (H0 = 70) is common practice")
+        doc="rest-frame B (AB) at maximum for stretch 1: about -19.3 Vega for H0 = 70 (Riess et al. 1998, "
+            "Perlmutter et al. 1999; from memory)")
     stretch: Parameter = parameter(1.0, low=0.5, high=1.6, doc="time-axis stretch s (Perlmutter et al. 1997)")
     stretch_luminosity: float = number(1.5, low=0, high=5,
                                        doc="alpha of M = M_0 - alpha (s - 1) (about 1.5: Goldhaber et al. 2001, from memory)")
