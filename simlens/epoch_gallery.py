@@ -1,13 +1,14 @@
 """Pictures of a run with epochs: for each system, a strip of its epochs and its images' light curves.
 
 Each strip panel is one epoch's ideal difference image (EPOCH_DIFFERENCE: the observed image less
-the static scene seen with that epoch's PSF, what a perfect PSF-matched subtraction leaves),
-divided by that visit's sky noise, so that the panels read as signal-to-noise: grey from -3 sigma
-to a common upper level (the brightest panel's 99.8th percentile, at least 10 sigma), asinh-stretched.  The epochs shown are spread evenly over those in
-which the point source has at least 5 % of its brightest light (all epochs if it never has); the
-truth images are marked on the first panel.  Under the strip, each image's true magnitude at every
-epoch (``light_curves.ecsv``), one line per image, one colour per band, each visit's 5-sigma depth
-as a small triangle of its band's colour, the strip's epochs in grey.
+the static scene seen with that epoch's PSF, what a perfect PSF-matched subtraction leaves), divided
+by that visit's sky noise, so that the panels read as signal-to-noise: grey from -3 sigma to a
+common upper level (the brightest panel's 99.8th percentile, at least 10 sigma), asinh-stretched.
+The epochs shown are spread evenly over those in which the point source has at least 5 % of its
+brightest light (all epochs if it never has); the truth images are marked on the first panel. Under
+the strip, each image's true magnitude at every epoch (``light_curves.ecsv``), one line per image,
+one colour per band, each visit's 5-sigma depth as a small triangle of its band's colour, the
+strip's epochs in grey.
 """
 
 from __future__ import annotations

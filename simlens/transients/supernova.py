@@ -35,7 +35,8 @@ import numpy as np
 
 from ..populations.photometry import Filter, _ab_integral, _HC_OVER_K_NM_K, load_filter
 
-__all__ = ["SpectralTimeSeries", "BandLightCurves", "SupernovaModel", "TabulatedLightCurve", "REST_FRAME_B", "stretched_peak_magnitude"]
+__all__ = ["SpectralTimeSeries", "BandLightCurves", "SupernovaModel", "TabulatedLightCurve", "REST_FRAME_B",
+           "stretched_peak_magnitude"]
 
 REST_FRAME_B = "ACS_wfc_F435W"  # GalSim's curve standing in for Johnson B
 
