@@ -344,10 +344,12 @@ def build_parser() -> argparse.ArgumentParser:
     fc.add_argument("--area", type=float, default=1.0, help="survey area in deg^2 (default 1)")
     fc.add_argument("--n", type=int, default=20000, help="deflector galaxies to draw (default 20000)")
     fc.add_argument("--rules", default="collett2015",
-                    choices=("collett2015", "collett2015_matched", "selection", "multiply_imaged", "om10_supernova"),
+                    choices=("collett2015", "collett2015_matched", "selection", "multiply_imaged", "om10_supernova",
+                             "om10_quasar"),
                     help="detectability: Collett (2015)'s rule set (or with the matched-filter S/N), the recipe's "
                          "own [selection] cuts, every multiply imaged source (the optical depth), or Oguri & "
-                         "Marshall (2010)'s for lensed supernovae (recipes with source.supernova.rate)")
+                         "Marshall (2010)'s for lensed supernovae (source.supernova.rate) or quasars "
+                         "(source.quasar.luminosity_function)")
     fc.add_argument("--seed", type=int, help="random seed (overrides the recipe's)")
     fc.add_argument("--out", help="output folder (default: outputs/forecast_<recipe name>)")
     fc.add_argument("--overwrite", action="store_true", help="replace an earlier forecast in --out")

@@ -24,11 +24,15 @@ it.  A system is *detectable* by a rule set:
 - ``om10_supernova`` (recipes with ``source.supernova.rate``; the criteria of Oguri & Marshall 2010,
   MNRAS 405, 2579, as recalled: from memory): a multiply imaged supernova whose images are
   separated by at least 2/3 of the reference band's FWHM and whose second brightest image (third
-  brightest of a quad) is brighter than the survey's limit: here at one visit at least of the
+  brightest of a quad) is brighter than the survey's limit: here in one visit at least of the
   reference band, against that visit's 5-sigma depth, at the image's own delay (OM10 ask it at
   maximum; the visits add the seasons and the weather).  Its counts are per year: the supernovae
-  drawn are those with maxima in the survey's span (plus the peak margins), scaled to 365.25 days.  Lensed supernovae are rare (a few in
-  a million deflectors), so they are drawn at SUPERNOVA_DRAW_DENSITY per arcmin^2 and the counts
+  drawn are those with maxima in the survey's span (plus the peak margins), scaled to 365.25 days.
+- ``om10_quasar`` (recipes with ``source.quasar.luminosity_function``; OM10's criteria, from
+  memory): images at least 2/3 of the FWHM apart, a double's fainter image at least a tenth of the
+  brighter, and the fainter image of a double (third brightest of a quad) brighter than the
+  reference band's 10-sigma point-source depth.  Lensed supernovae and quasars are rare (a few
+  in a million deflectors), so they are drawn at RARE_SOURCE_DRAW_DENSITY per arcmin^2 and the counts
   divided by that boost: exact while a deflector's caustics rarely hold two of them (the kept
   first one undercounts by about half the mean number inside, 0.5 % at theta_E = 1.5").
 
@@ -53,10 +57,11 @@ from .recipe import Recipe
 __all__ = ["RULE_SETS", "Forecast", "forecast", "estimated_source_view", "SourceView", "forecast_recipe",
            "write_forecast"]
 
-RULE_SETS = ("collett2015", "collett2015_matched", "selection", "multiply_imaged", "om10_supernova")
+RULE_SETS = ("collett2015", "collett2015_matched", "selection", "multiply_imaged", "om10_supernova", "om10_quasar")
 SEPARATION_IN_FWHM = 2.0 / 3.0  # Oguri & Marshall 2010 (from memory)
-SUPERNOVA_DRAW_DENSITY = 10.0  # per arcmin^2: lensed supernovae drawn boosted to this density
-SUPERNOVA_RULES = ("om10_supernova", "multiply_imaged")
+RARE_SOURCE_DRAW_DENSITY = 10.0  # per arcmin^2: supernovae and quasars drawn boosted to this density
+MIN_FLUX_RATIO = 0.1  # om10_quasar: a double's fainter image over its brighter (Oguri & Marshall 2010, from memory)
+TEN_SIGMA = 2.5 * math.log10(2.0)  # a 10-sigma depth is this much brighter than the 5-sigma one
 DETECTION_SNR = 20.0  # Collett 2015
 MIN_MAGNIFICATION = 3.0  # Collett 2015
 RING_COVERAGE = 0.75  # lensed light around this share of the azimuth is a ring (common practice)
@@ -73,20 +78,24 @@ MULTIPLICITIES = ("double", "quad", "ring")
 def forecast_recipe(recipe: Recipe, rules: str) -> Recipe:
     """The recipe as a forecast draws it: sky mode, no negatives, neighbours or fields; under
     ``collett2015`` without the recipe's own cuts (the rule set is the selection)."""
-    supernova_rate = recipe.source.supernova is not None and recipe.source.supernova.rate is not None
-    if recipe.lens.population is None or (recipe.source.counts is None and recipe.source.position.density is None
-                                          and not supernova_rate):
+    source = recipe.source
+    rare = ("supernova" if source.supernova is not None and source.supernova.rate is not None else
+            "quasar" if source.quasar is not None and source.quasar.luminosity_function is not None else None)
+    if recipe.lens.population is None or (source.counts is None and source.position.density is None and rare is None):
         raise SimlensError(f"{recipe.origin}: a forecast needs populations with rates: a [lens.population] table "
                            "(the velocity dispersion function) and a [source.counts] table (number counts), "
-                           "source.position.density or source.supernova.rate")
+                           "source.position.density, source.supernova.rate or source.quasar.luminosity_function")
     if rules not in RULE_SETS:
         raise SimlensError(f"unknown rule set {rules!r}; choose from {', '.join(RULE_SETS)}")
-    if (rules == "om10_supernova" and not supernova_rate) or (supernova_rate and rules not in SUPERNOVA_RULES):
-        raise SimlensError(f"{recipe.origin}: a supernova rate (source.supernova.rate) goes with the rule sets "
-                           f"{' and '.join(SUPERNOVA_RULES)}, and om10_supernova with a supernova rate alone")
+    if rules.startswith("om10_") or rare is not None:
+        allowed = (f"om10_{rare}", "multiply_imaged") if rare else ()
+        if rules not in allowed:
+            raise SimlensError(f"{recipe.origin}: the rule sets om10_supernova and om10_quasar go with a supernova "
+                               "rate (source.supernova.rate) or a quasar luminosity function; such a recipe takes "
+                               "its own or multiply_imaged")
     from .recipe.schema import NegativeSettings, SelectionSettings
 
-    source = dataclasses.replace(recipe.source, position=dataclasses.replace(recipe.source.position, mode="sky"))
+    source = dataclasses.replace(source, position=dataclasses.replace(source.position, mode="sky"))
     changes = dict(source=source, negatives=NegativeSettings(), neighbours=None, field=None)
     if rules != "selection":  # the rule set is the selection
         changes["selection"] = dataclasses.replace(SelectionSettings(), max_candidates=recipe.selection.max_candidates)
@@ -186,22 +195,55 @@ def _image_count(system, survey, deflector) -> int:
     return len(_images(system, survey, deflector))
 
 
-def _supernova_detection(system, survey, band: str, visits: tuple) -> dict | None:
-    """The detection record of a lensed supernova under ``om10_supernova``, or None; ``visits``:
-    the times and 5-sigma depths of the band's visits."""
-    if not (system.lensing and system.multiply_imaged and system.transient_kind == "sn_ia"):
+def _separated_images(system, survey, band: str):
+    """``(images, deflector)`` of a multiply imaged system whose images are at least
+    SEPARATION_IN_FWHM of the band's FWHM apart, or None."""
+    if not (system.lensing and system.multiply_imaged):
         return None
     from .imaging.scene import build_scene
 
     deflector = build_scene(system).deflector
     images = _images(system, survey, deflector)
-    n = len(images)
-    if n < 2:
+    if len(images) < 2:
         return None
     x, y = np.asarray(images.x), np.asarray(images.y)
     separation = float(np.max(np.hypot(x[:, None] - x[None, :], y[:, None] - y[None, :])))
     if separation < SEPARATION_IN_FWHM * system.band(band).psf_fwhm:
         return None
+    return images, deflector
+
+
+def _quasar_detection(system, survey, band: str, limit: float) -> dict | None:
+    """The detection record of a lensed quasar under ``om10_quasar``, or None: images apart by
+    2/3 of the FWHM, a double's flux ratio at least MIN_FLUX_RATIO, and its fainter image (a
+    quad's third brightest) brighter than ``limit``."""
+    if system.quasar_magnitudes is None:
+        return None
+    found = _separated_images(system, survey, band)
+    if found is None:
+        return None
+    images = found[0]
+    n = len(images)
+    flux = np.sort(np.abs(np.asarray(images.magnification)))[::-1]
+    if n < 4 and flux[1] < MIN_FLUX_RATIO * flux[0]:
+        return None
+    counted = system.quasar_magnitudes[band] - 2.5 * math.log10(flux[2 if n >= 4 else 1])
+    if not counted <= limit:
+        return None
+    return dict(band=band, snr=math.nan, matched_snr=math.nan, magnification=float(flux.sum()), ring=False,
+                n_images=n)
+
+
+def _supernova_detection(system, survey, band: str, visits: tuple) -> dict | None:
+    """The detection record of a lensed supernova under ``om10_supernova``, or None; ``visits``:
+    the times and 5-sigma depths of the band's visits."""
+    if system.transient_kind != "sn_ia":
+        return None
+    found = _separated_images(system, survey, band)
+    if found is None:
+        return None
+    images, deflector = found
+    n = len(images)
     times, depths = visits
     counted = np.argsort(-np.abs(np.asarray(images.magnification)))[2 if n >= 4 else 1]  # 2nd brightest, 3rd of a quad
     from .lensing.lens_equation import time_delays
@@ -292,9 +334,10 @@ def forecast(recipe: Recipe, n: int, area: float, rules: str = "collett2015", pr
     drawn_recipe = forecast_recipe(recipe, rules).with_overrides(count=n)
     sampler = PopulationSampler(drawn_recipe)
     boost = 1.0
-    if sampler.supernova_redshifts is not None:  # rare: drawn denser, counted at the population's density
+    if sampler.supernova_redshifts is not None or sampler.quasar_population is not None:  # rare: drawn denser,
+        # counted at the population's density
         density = sampler.source_density
-        boost = max(1.0, SUPERNOVA_DRAW_DENSITY / density)
+        boost = max(1.0, RARE_SOURCE_DRAW_DENSITY / density)
         position = dataclasses.replace(drawn_recipe.source.position, density=density * boost)
         drawn_recipe = dataclasses.replace(drawn_recipe, source=dataclasses.replace(drawn_recipe.source, position=position))
         sampler = PopulationSampler(drawn_recipe)
@@ -304,10 +347,10 @@ def forecast(recipe: Recipe, n: int, area: float, rules: str = "collett2015", pr
     counts = drawn_recipe.source.counts
     counts_band = (counts.band if counts is not None else None) or drawn_recipe.reference_band
     reference = drawn_recipe.reference_band
-    window = limit = None
-    if sampler.supernova_redshifts is not None:
-        from .transients.cadence import five_sigma_depth
+    from .transients.cadence import five_sigma_depth
 
+    window = limit = None  # om10_quasar: each system's reference band gives its own limit
+    if sampler.supernova_redshifts is not None:
         epochs = sampler.epochs
         window = epochs.span_days + 2.0 * drawn_recipe.source.supernova.peak_margin
         visits = np.array([b == reference for b in epochs.band])
@@ -332,6 +375,9 @@ def forecast(recipe: Recipe, n: int, area: float, rules: str = "collett2015", pr
                              if system.lensing and system.multiply_imaged else None)
                 elif rules == "om10_supernova":
                     found = _supernova_detection(system, survey, reference, limit)
+                elif rules == "om10_quasar":
+                    found = _quasar_detection(system, survey, reference,
+                                              five_sigma_depth(system.band(reference)) - TEN_SIGMA)
                 else:
                     found = _collett_detection(system, survey, band_names, matched=rules == "collett2015_matched")
                 if found is not None:

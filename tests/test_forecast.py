@@ -137,7 +137,7 @@ mode = "sky"
     text = text.replace("[survey.bands.r]", "[survey.bands.r]\nrevisit = 5.0\nfilter = \"LSST_r\"", 1)
     recipe = parse_recipe(text.replace("[source]\nredshift = 2.0\n", "[source]\n"))
     # drawn at 40 per arcmin^2 (boosted 740 times): two in one lens's caustics stay rare (< 2 %)
-    monkeypatch.setattr("simlens.forecast.SUPERNOVA_DRAW_DENSITY", 40.0)
+    monkeypatch.setattr("simlens.forecast.RARE_SOURCE_DRAW_DENSITY", 40.0)
     result = forecast(recipe, 30000, 1.0, "multiply_imaged")
     sampler = PopulationSampler(recipe)
     cosmo = recipe.cosmology.build()

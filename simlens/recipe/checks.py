@@ -100,9 +100,23 @@ def _check_colours(recipe: Recipe) -> None:
                   {"magnitude": lens.light.magnitude, "half_light_radius": lens.light.half_light_radius},
                   colors=lens.light.colors)
     rated = source.supernova is not None and source.supernova.rate is not None
+    counted = source.quasar is not None and source.quasar.luminosity_function is not None
     if rated and source.redshift is not None:
         raise RecipeError(origin, "source.redshift", "is set together with source.supernova.rate, which draws it",
                           "source.supernova.redshift_range")
+    if counted and source.redshift is not None:
+        raise RecipeError(origin, "source.redshift", "is set together with source.quasar.luminosity_function, "
+                          "which draws it", "source.quasar.redshift_range")
+    if source.quasar is not None and (source.quasar.magnitude is None) != counted:
+        raise RecipeError(origin, "source.quasar.magnitude", "is missing" if not counted else
+                          "is set together with luminosity_function, which draws it",
+                          "a magnitude, or a luminosity_function with magnitude_range" if not counted
+                          else "source.quasar.magnitude_range")
+    if counted and (source.counts is not None or source.supernova is not None or source.position.density is not None):
+        raise RecipeError(origin, "source.quasar.luminosity_function", "is set together with [source.counts], "
+                          "[source.supernova] or source.position.density",
+                          "explicit host galaxies (source.magnitude, ...): the function gives redshifts and density")
+    rated = rated or counted
     _check_either(origin, "source", source.counts is not None, "counts",
                   {"magnitude": source.magnitude, "half_light_radius": source.half_light_radius,
                    **({} if rated else {"redshift": source.redshift})}, colors=source.colors)
@@ -267,8 +281,9 @@ def _check_line_of_sight_and_subhalos(recipe: Recipe) -> None:
 def _check_redshifts(recipe: Recipe) -> None:
     origin, lens, source = recipe.origin, recipe.lens, recipe.source
     z_lens = lens.population.redshift_range if lens.population is not None else lens.redshift.support
-    z_source = (source.counts.redshift_range if source.counts is not None else
-                source.supernova.redshift_range if source.redshift is None else source.redshift.support)
+    z_source = (source.counts.redshift_range if source.counts is not None else source.redshift.support
+                if source.redshift is not None else source.supernova.redshift_range if source.supernova is not None
+                else source.quasar.redshift_range)
     if source.position.mode is None and z_source[0] <= z_lens[1]:
         raise RecipeError(origin, "source.counts.redshift_range" if source.counts is not None else "source.redshift",
                           f"can be {z_source[0]:g}, not behind lenses at redshift up to {z_lens[1]:g} "
@@ -291,10 +306,12 @@ def _check_position(recipe: Recipe) -> None:
                           "either radius_in_einstein_radii, or x and y")
     if (pos.x is None) != (pos.y is None):
         raise RecipeError(origin, "source.position", "gives only one of x and y", "both x and y")
-    rated = recipe.source.supernova is not None and recipe.source.supernova.rate is not None
+    rated = ((recipe.source.supernova is not None and recipe.source.supernova.rate is not None)
+             or (recipe.source.quasar is not None and recipe.source.quasar.luminosity_function is not None))
     if pos.mode == "sky" and pos.density is None and recipe.source.counts is None and not rated:
         raise RecipeError(origin, "source.position.density", "is missing for mode = 'sky'",
-                          "a source density (arcmin^-2), a [source.counts] table or source.supernova.rate")
+                          "a source density (arcmin^-2), a [source.counts] table, source.supernova.rate or "
+                          "source.quasar.luminosity_function")
     if pos.mode != "sky" and pos.density is not None:
         raise RecipeError(origin, "source.position.density", "applies to mode = 'sky' only",
                           "remove it, or set mode = 'sky'")

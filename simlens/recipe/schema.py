@@ -493,8 +493,17 @@ class SupernovaSettings:
 
 @dataclass(frozen=True, kw_only=True)
 class QuasarSettings:
-    magnitude: Parameter = parameter(low=0, high=40, unit="mag",
-                                     doc="unlensed AB magnitude of the point source, reference band")
+    magnitude: Parameter = parameter(optional=True, low=0, high=40, unit="mag",
+                                     doc="unlensed AB magnitude of the point source, reference band "
+                                         "(required unless luminosity_function)")
+    luminosity_function: str = text(optional=True, choices=("richards2005",),
+                                    doc="draw the quasars' redshifts and magnitudes (instead of source.redshift "
+                                        "and magnitude) and, in sky mode, their density from a published "
+                                        "luminosity function")
+    magnitude_range: tuple = interval((16.0, 24.0), low=10, high=30, unit="mag",
+                                      doc="with a luminosity function: the reference band's magnitudes")
+    redshift_range: tuple = interval((0.3, 5.0), low=0.01, high=7.0,
+                                     doc="with a luminosity function: the quasars' redshifts")
     spectral_index: float = number(-0.44, low=-3, high=2,
                                    doc="f_nu ~ nu^index (Vanden Berk et al. 2001, from memory); colours from it")
     host: bool = flag(True, doc="keep the source galaxy as the quasar's host (false: a bare point source)")

@@ -54,6 +54,7 @@ from .streams import SYSTEM_STREAMS, grid_cell, system_streams
 from ..populations.photometry import load_filter
 from ..transients.cadence import survey_epochs
 from ..transients.supernova import BandLightCurves, SpectralTimeSeries, SupernovaModel, stretched_peak_magnitude
+from ..populations.quasars import QUASAR_LUMINOSITY_FUNCTIONS, QuasarPopulation
 from ..transients.rates import SUPERNOVA_RATES, SupernovaPopulation
 from ..transients.variability import MACLEOD_SF_INF, MACLEOD_TAU, DampedRandomWalk
 
@@ -153,6 +154,12 @@ class PopulationSampler:
             self.supernova_redshifts = SupernovaPopulation(
                 SUPERNOVA_RATES[source.supernova.rate], self.distances, self.cosmology.h,
                 source.supernova.redshift_range, self.epochs.span_days + 2.0 * margin)
+        self.quasar_population = None
+        if source.quasar is not None and source.quasar.luminosity_function is not None:
+            q = source.quasar
+            self.quasar_population = QuasarPopulation(
+                QUASAR_LUMINOSITY_FUNCTIONS[q.luminosity_function], self.distances, self.cosmology.h, q.redshift_range,
+                q.magnitude_range, load_filter(filters[recipe.reference_band], base).mean_wavelength, q.spectral_index)
         self._rest_wavelengths = ({b: load_filter(f, base).mean_wavelength for b, f in filters.items()}
                                   if source.quasar is not None and source.quasar.variability is not None else {})
 
@@ -168,6 +175,8 @@ class PopulationSampler:
             return density
         if self.supernova_redshifts is not None:
             return self.supernova_redshifts.sky_density
+        if self.quasar_population is not None:
+            return self.quasar_population.sky_density
         return self.source_model.sky_density if self.source_model is not None else math.nan
 
     # -- the public entry points ---------------------------------------------------------------
@@ -451,7 +460,8 @@ class PopulationSampler:
         quasar_mags, transient = None, {}
         if source_settings.quasar is not None and not is_supernova:
             colours = self.quasar_colours.colors(z_source)
-            quasar_mags = {b: v["source.quasar.magnitude"] + colours[b] for b in band_names}
+            magnitude = g.anchor_magnitude if self.quasar_population is not None else v["source.quasar.magnitude"]
+            quasar_mags = {b: magnitude + colours[b] for b in band_names}
         if is_supernova:
             transient = self._supernova(v, z_source, streams["transient"])
         elif quasar_mags is not None and source_settings.quasar.variability is not None:
@@ -986,7 +996,7 @@ class _PairQueue:
         self.sampler, self.rngs = sampler, rngs
         self.lens_mode = sampler.mode == "lens"
         self.bulk = (sampler.deflectors is not None or sampler.source_model is not None
-                     or sampler.supernova_redshifts is not None)
+                     or sampler.supernova_redshifts is not None or sampler.quasar_population is not None)
         self.size = sampler.GEOMETRY_BATCH if (self.bulk and self.lens_mode) else 1
         n = len(rngs)
         self.batch = {name: np.zeros((n, self.size)) for name in ("sigma", "z_lens", "z_source", "m")}
@@ -1004,7 +1014,7 @@ class _PairQueue:
         """Fresh batches for rows ``rows`` (``picks``: their places in ``values``)."""
         s, n = self.sampler, self.size
         calls = ((2 if s.deflectors is not None else 0) + (2 if s.source_model is not None else 0) + self.lens_mode
-                 + (s.supernova_redshifts is not None))
+                 + (s.supernova_redshifts is not None) + 3 * (s.quasar_population is not None))
         u = (np.stack([self.rngs[k].uniform(size=calls * n) for k in rows]).reshape(rows.size, calls, n)
              if calls else np.zeros((rows.size, 0, n)))
         c = 0
@@ -1019,6 +1029,9 @@ class _PairQueue:
             m = s.source_model.counts.draw(*settings.magnitude_range, u[:, c])
             z_s = s.source_model.redshifts.draw(m, *settings.redshift_range, u[:, c + 1])
             c += 2
+        elif s.quasar_population is not None:  # the luminosity function's redshifts and magnitudes
+            z_s, m = s.quasar_population.draw(u[:, c], u[:, c + 1], u[:, c + 2])
+            c += 3
         elif s.supernova_redshifts is not None:  # the supernova rate's redshifts
             m = np.full((rows.size, n), math.nan)
             z_s = s.supernova_redshifts.draw_redshift(u[:, c])
