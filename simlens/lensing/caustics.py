@@ -88,7 +88,8 @@ def polygon_area(x, y):
     x, y = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
     if x.shape[-1] < 3:
         return 0.0 if x.ndim == 1 else np.zeros(x.shape[:-1])
-    cross = np.sum(x * np.roll(y, -1, axis=-1) - np.roll(x, -1, axis=-1) * y, axis=-1)
+    cross = (np.sum(x[..., :-1] * y[..., 1:] - x[..., 1:] * y[..., :-1], axis=-1)
+             + x[..., -1] * y[..., 0] - x[..., 0] * y[..., -1])  # the closing edge
     area = 0.5 * np.abs(cross)
     return float(area) if x.ndim == 1 else area
 

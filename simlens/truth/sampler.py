@@ -50,7 +50,7 @@ from ..recipe.distributions import Fixed, Grid
 from .conditions import BandConditions
 from .record import Clump, LensEnvelope, LineOfSightGalaxy, SecondSource, Subhalo, System
 from .psf import band_fwhm, band_optics, major_axis_fwhm, padding_for, psf_shear, seeing_factors
-from .streams import SYSTEM_STREAMS, grid_cell, system_streams
+from .streams import SYSTEM_STREAMS, grid_cell, system_streams_many
 from ..populations.photometry import load_filter
 from ..transients.cadence import survey_epochs
 from ..transients.supernova import BandLightCurves, SpectralTimeSeries, SupernovaModel, stretched_peak_magnitude
@@ -212,7 +212,7 @@ class PopulationSampler:
         ids = [int(i) for i in system_ids]
         for start in range(0, len(ids), self.BLOCK_SIZE):
             block = ids[start:start + self.BLOCK_SIZE]
-            streams = [system_streams(self.recipe.seed, i, SYSTEM_STREAMS, 0) for i in block]
+            streams = system_streams_many(self.recipe.seed, block, SYSTEM_STREAMS)
             geometries = _GeometryPhase(self, block, streams).run()
             if any(g is None for g, _ in geometries):  # sky mode takes every candidate
                 raise ValueError("draw_lensed: a candidate was rejected; use draw_many")
@@ -235,7 +235,7 @@ class PopulationSampler:
         done: dict[int, System] = {}
         pending = ids
         while pending:
-            streams = [system_streams(self.recipe.seed, i, SYSTEM_STREAMS, candidate[i]) for i in pending]
+            streams = system_streams_many(self.recipe.seed, pending, SYSTEM_STREAMS, [candidate[i] for i in pending])
             outcomes = self._candidates(pending, [candidate[i] for i in pending], streams)
             still = []
             for i, (system, counts) in zip(pending, outcomes):
@@ -683,6 +683,25 @@ class _Geometry:
     days_per_arcsec2: float = math.nan
 
 
+class _RowValues(Mapping):
+    """One system's parameter values (``key path -> float``), read from the arrays of all rows on
+    use: most systems of a forecast are never finished, so never read."""
+
+    __slots__ = ("_values", "_row")
+
+    def __init__(self, values: dict, row: int):
+        self._values, self._row = values, row
+
+    def __getitem__(self, path: str) -> float:
+        return float(self._values[path][self._row])
+
+    def __iter__(self):
+        return iter(self._values)
+
+    def __len__(self) -> int:
+        return len(self._values)
+
+
 class _GeometryPhase:
     """The deflector, the source redshift and the source's place, tried several times within each
     candidate's streams (in lens mode a deflector whose caustics miss the source is replaced
@@ -731,7 +750,7 @@ class _GeometryPhase:
                 self.result[k] = (None, self._counts(k))
             active, values = active[found], {p: a[found] for p, a in values.items()}
             sigma, z_lens, z_source, anchor = sigma[found], z_lens[found], z_source[found], anchor[found]
-            rows = [{path: float(a[j]) for path, a in values.items()} for j in range(active.size)]
+            rows = [_RowValues(values, j) for j in range(active.size)]
             behind = z_source > z_lens
             ratio = np.where(behind, s.distances.distance_ratio(np.minimum(z_lens, z_source), z_source), 0.0)
             theta_e = sis_einstein_radius(sigma, ratio)
@@ -851,8 +870,7 @@ class _GeometryPhase:
         The candidate's drawn source properties are that source's (every source is alike in law)."""
         density = self.sampler.source_density / 3600.0  # per arcsec^2
         counts = [int(physics[j].poisson(density * math.pi * radius[t] ** 2)) for t, j in enumerate(todo)]
-        points = [np.array([_uniform_in_disc(float(radius[t]), physics[j]) for _ in range(max(n, 1))])
-                  for t, (j, n) in enumerate(zip(todo, counts))]
+        points = [_uniform_points_in_disc(float(radius[t]), max(n, 1), physics[j]) for t, (j, n) in enumerate(zip(todo, counts))]
         rows = np.repeat(todo, [len(p) for p in points])
         xy = np.concatenate(points)
         inside = caustics.multiply_imaged(rows, xy[:, 0], xy[:, 1])  # all rows' points at once
@@ -1008,7 +1026,7 @@ class _PairQueue:
     NAMES = ("source_in_front", "cross_section", "einstein_radius")
 
     def nonzero_rejections(self, k: int) -> dict:
-        return {name: int(c) for name, c in zip(self.NAMES, self.counts[k]) if c}
+        return {name: c for name, c in zip(self.NAMES, self.counts[k].tolist()) if c}
 
     def _new_batches(self, rows: np.ndarray, values: dict, picks: np.ndarray) -> None:
         """Fresh batches for rows ``rows`` (``picks``: their places in ``values``)."""
@@ -1121,6 +1139,17 @@ def _uniform_in_annulus(r_in: float, r_out: float, rng) -> tuple[float, float]:
 
 def _uniform_in_disc(radius: float, rng) -> tuple[float, float]:
     return _uniform_in_annulus(0.0, radius, rng)
+
+
+def _uniform_points_in_disc(radius: float, n: int, rng) -> np.ndarray:
+    """``n`` points of :func:`_uniform_in_disc` (the same draws, in one call), shape ``(n, 2)``."""
+    u = rng.random(2 * n)
+    out = np.empty((n, 2))
+    for k in range(n):
+        r = math.sqrt(u[2 * k] * radius**2)
+        phi = 2.0 * math.pi * u[2 * k + 1]
+        out[k] = r * math.cos(phi), r * math.sin(phi)
+    return out
 
 
 def _merge_counts(a: Mapping[str, int], b: Mapping[str, int]) -> dict:
