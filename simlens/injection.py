@@ -313,14 +313,15 @@ def select_lens_galaxies(image: SurveyImage, recipe: Recipe, band: str, psf_fwhm
     ``gini_min``; Abraham et al. 2003, Lotz et al. 2004 use Gini to separate early types -- the cut is
     common practice, from memory); the ``max_lenses`` brightest.  The mass follows the light's
     moments: axis ratio 1/elongation, angle = the orientation (CCW from +x).  Redshifts are drawn
-    from the recipe's lens population; velocity dispersions follow from the Faber-Jackson relation
-    of ``[lens.light.scaling]`` (its defaults otherwise) with the galaxy's magnitude, the distance
-    modulus and the early-type K-correction through the band's filter (none without a filter)."""
+    from the recipe's lens population; velocity dispersions follow from the galaxy's magnitude, the distance
+    modulus and the early-type K-correction through the band's filter (none without a filter) by
+    the relations of ``[lens.light.scaling]`` (the mean sigma given M of Bernardi et al. 2003's
+    joint law, or the Faber-Jackson relation inverted; the joint law without the table)."""
     from astropy.stats import sigma_clipped_stats
     from photutils.segmentation import SourceCatalog, detect_sources
 
     from .populations.photometry import kcorrection
-    from .populations.scaling_relations import FaberJackson
+    from .populations.scaling_relations import EarlyTypeJointDistribution, FaberJackson
 
     _, median, std = sigma_clipped_stats(image.data)
     data = image.data - median
@@ -341,8 +342,11 @@ def select_lens_galaxies(image: SurveyImage, recipe: Recipe, band: str, psf_fwhm
     if not chosen:
         raise SimlensError(f"{image.path}: no galaxy passes the automatic lens selection; give --lenses CATALOG")
     scaling = recipe.lens.light.scaling
-    fj = (FaberJackson(scaling.faber_jackson_slope, scaling.faber_jackson_magnitude, scaling.faber_jackson_sigma, 0.0)
-          if scaling is not None else FaberJackson(scatter=0.0))
+    if scaling is None or scaling.relations == "bernardi2003":
+        sigma_at = EarlyTypeJointDistribution().mean_sigma_given_magnitude
+    else:
+        fj = FaberJackson(scaling.faber_jackson_slope, scaling.faber_jackson_magnitude, scaling.faber_jackson_sigma, 0.0)
+        sigma_at = fj.mean_sigma
     filt = recipe.survey.band(band).filter
     rest = scaling.rest_filter if scaling is not None else "LSST_r"
     k_table = kcorrection("elliptical", filt, rest) if filt is not None else None
@@ -355,7 +359,7 @@ def select_lens_galaxies(image: SurveyImage, recipe: Recipe, band: str, psf_fwhm
         z = float(redshifts[index])
         magnitude = image.zero_point - 2.5 * math.log10(float(source.segment_flux))
         absolute = magnitude - float(distances.distmod(z)) - (k_table(z) if k_table else 0.0)
-        sigma = fj.reference_sigma * 10 ** (-(absolute - fj.magnitude_at_reference) / (2.5 * fj.slope))
+        sigma = float(sigma_at(absolute))
         rows.append({"ra": ra, "dec": dec, "x_pixel": x, "y_pixel": y, "z_lens": z,
                      "velocity_dispersion": float(np.clip(sigma, 50.0, 500.0)),
                      "mass_q": float(np.clip(1.0 / float(source.elongation), 0.2, 1.0)),

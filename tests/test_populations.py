@@ -15,7 +15,7 @@ from simlens.cosmology import DistanceTable
 from simlens.populations.photometry import KCorrection, Template, ab_magnitude_offset, load_filter
 from simlens.truth.sampler import PopulationSampler
 from simlens.recipe import parse_recipe
-from simlens.populations.scaling_relations import FaberJackson, FundamentalPlane, NumberCounts, RedshiftGivenMagnitude, SizeLuminosity
+from simlens.populations.scaling_relations import EarlyTypeJointDistribution, FaberJackson, FundamentalPlane, NumberCounts, RedshiftGivenMagnitude, SizeLuminosity
 from simlens.populations.velocity_function import VELOCITY_FUNCTIONS, DeflectorPopulation
 
 from .conftest import PHYSICAL_RECIPE
@@ -128,6 +128,36 @@ def test_fundamental_plane_sample_recovers_the_published_coefficients():
     assert slope == pytest.approx(-2.5 * 4.0, abs=0.3)
     # Scatter of the drawn radii about the plane: the 0.1 dex requested.
     assert np.std(np.log10(radius / mean_r)) == pytest.approx(0.1, rel=0.05)
+
+
+def test_joint_early_type_law_reproduces_bernardi_2003_moments_and_plane():
+    # Bernardi et al. (2003b, AJ 125, 1849, r*, from memory): (M, log R_e, log sigma) trivariate
+    # Gaussian, means -21.15, 0.36, 2.20, dispersions 0.84, 0.25, 0.11, correlations rho_RM = -0.88,
+    # rho_VM = -0.77, rho_RV = 0.54.  Galaxies drawn given sigma, with sigma from its marginal, must
+    # show those moments again (numpy's sample statistics).
+    joint = EarlyTypeJointDistribution()
+    rng = np.random.default_rng(31)
+    n = 200_000
+    log_sigma = rng.normal(2.20, 0.11, n)
+    magnitude, log_r = joint.draw_given_sigma(10 ** log_sigma, rng.standard_normal((n, 2)))
+    data = np.vstack([magnitude, log_r, log_sigma])
+    assert data.mean(axis=1) == pytest.approx([-21.15, 0.36, 2.20], abs=0.005)
+    assert data.std(axis=1) == pytest.approx([0.84, 0.25, 0.11], rel=0.01)
+    rho = np.corrcoef(data)
+    assert (rho[0, 1], rho[0, 2], rho[1, 2]) == pytest.approx((-0.88, -0.77, 0.54), abs=0.01)
+    # The thinnest direction of the drawn (log R_e, log sigma, mu_e) is the fundamental plane fitted
+    # independently by Bernardi et al. (2003c, AJ 125, 1866): log R_e = 1.49 log sigma + 0.30 mu_e + c
+    # (from memory), so galaxies scatter about the plane, not across it.
+    mu = FundamentalPlane.mean_surface_brightness(magnitude, 10 ** log_r)
+    values, vectors = np.linalg.eigh(np.cov(np.vstack([log_r, log_sigma, mu])))
+    normal = vectors[:, 0]
+    assert -normal[1] / normal[0] == pytest.approx(1.49, abs=0.05)
+    assert -normal[2] / normal[0] == pytest.approx(0.30, abs=0.01)
+    assert math.sqrt(values[0]) < 0.07  # dex-like thickness; the relation's long axes are 0.1-0.9
+    # The inverse relation, sigma given M, is Bernardi's L ~ sigma^3.91 within its error (from memory).
+    m = np.array([-21.0, -23.0])
+    slope = 2.0 / (2.5 * np.diff(np.log10(joint.mean_sigma_given_magnitude(m)))[0])  # M falls by 2
+    assert slope == pytest.approx(3.91, abs=0.2)
 
 
 def test_size_luminosity_slopes_are_those_of_shen_2003():

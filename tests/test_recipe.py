@@ -65,6 +65,10 @@ MALFORMED = [
     (edit_physical('template = "irregular"', 'colors = { g = 0.1 }'), "source.clumps.colors", ["source.counts"]),
     (edit_physical("[output]", '[selection]\nmin_arc_snr = 5.0\narc_snr_band = "z"\n[output]'),
      "selection.arc_snr_band", ["'z'", "'g', 'r'"]),
+    (edit_physical("[lens.light.scaling]\n", "[lens.light.scaling]\nplane_c = -8.0\n"), "lens.light.scaling.plane_c",
+     ["relations = \"faber_jackson_plane\""]),
+    (edit_physical("[lens.light.scaling]\n", '[lens.light.scaling]\nrelations = "faber_jackson_plane"\nplane_c = 0.0\n'),
+     "lens.light.scaling", ["outside 0.1-100 kpc", "published plane"]),
     (edit("[source]\n", "[lens.light.scaling]\n[source]\n"), "lens.light.magnitude",
      ["is set together with [lens.light.scaling]"]),
 ]

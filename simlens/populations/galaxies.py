@@ -15,7 +15,7 @@ import numpy as np
 
 from ..cosmology import ARCSEC_PER_RADIAN, DistanceTable
 from .photometry import kcorrection
-from .scaling_relations import (SUN_ABSOLUTE_MAGNITUDE_R, FaberJackson, FundamentalPlane, NumberCounts,
+from .scaling_relations import (SUN_ABSOLUTE_MAGNITUDE_R, EarlyTypeJointDistribution, FaberJackson, FundamentalPlane, NumberCounts,
                                 RedshiftGivenMagnitude, SizeLuminosity, UVSizeLuminosity)
 
 __all__ = ["LensLight", "LensLightModel", "SourcePhotometry", "SourceModel", "PointSourceColours",
@@ -112,7 +112,8 @@ class LensLight:
 
 
 class LensLightModel:
-    """Faber-Jackson luminosity, fundamental-plane size and an early-type template, from sigma."""
+    """Luminosity and size from sigma (Bernardi et al. 2003's joint law, or Faber-Jackson then the
+    fundamental plane) and colours from an early-type template."""
 
     def __init__(self, settings, distances: DistanceTable, band_filters: Mapping[str, str], base: str):
         self.settings = settings
@@ -120,6 +121,7 @@ class LensLightModel:
         self.faber_jackson = FaberJackson(settings.faber_jackson_slope, settings.faber_jackson_magnitude,
                                           settings.faber_jackson_sigma, settings.faber_jackson_scatter)
         self.plane = FundamentalPlane(settings.plane_a, settings.plane_b, settings.plane_c, settings.plane_scatter)
+        self.joint = EarlyTypeJointDistribution() if settings.relations == "bernardi2003" else None
         self.k = _BandK({b: kcorrection(settings.template, f, settings.rest_filter, base)
                          for b, f in band_filters.items()})
 
@@ -133,9 +135,13 @@ class LensLightModel:
         the same galaxies as :meth:`draw` given a generator that yields those normals."""
         s = self.settings
         sigma, z = np.asarray(sigma, dtype=float), np.asarray(z, dtype=float)
-        fj, plane = self.faber_jackson, self.plane
-        today = fj.mean_magnitude(sigma) + fj.scatter * normals[:, 0]  # the z = 0 relations'
-        r_kpc = 10 ** (plane.mean_log_radius(sigma, today) + plane.scatter * normals[:, 1])
+        if self.joint is not None:  # the z = 0 relations'
+            today, log_r = self.joint.draw_given_sigma(sigma, normals[:, :2])
+        else:
+            fj, plane = self.faber_jackson, self.plane
+            today = fj.mean_magnitude(sigma) + fj.scatter * normals[:, 0]
+            log_r = plane.mean_log_radius(sigma, today) + plane.scatter * normals[:, 1]
+        r_kpc = 10 ** log_r
         absolute = today - s.luminosity_evolution * z  # passive brightening; size and mass as today
         modulus = self.distances.distmod(z)
         k = self.k.at_many(z)

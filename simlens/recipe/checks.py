@@ -237,9 +237,19 @@ def _check_lens_scaling(recipe: Recipe) -> None:
     import numpy as np
 
     from ..populations.scaling_relations import FaberJackson, FundamentalPlane
+    from .schema import FABER_JACKSON_PLANE_KEYS, LensLightScalingSettings
 
     s = recipe.lens.light.scaling
     if s is None:
+        return
+    if s.relations != "faber_jackson_plane":
+        defaults = LensLightScalingSettings()
+        changed = [k for k in FABER_JACKSON_PLANE_KEYS if getattr(s, k) != getattr(defaults, k)]
+        if changed:
+            raise RecipeError(recipe.origin, f"lens.light.scaling.{changed[0]}",
+                              f"{', '.join(changed)} only apply with relations = \"faber_jackson_plane\"; "
+                              f"relations = \"{s.relations}\" draws luminosity and size from its own joint law",
+                              "add relations = \"faber_jackson_plane\" to use your coefficients, or remove them")
         return
     fj = FaberJackson(s.faber_jackson_slope, s.faber_jackson_magnitude, s.faber_jackson_sigma, 0.0)
     with np.errstate(all="ignore"):

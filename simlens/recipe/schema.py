@@ -342,6 +342,10 @@ class ShearSettings:
 
 VELOCITY_FUNCTION_NAMES = tuple(VELOCITY_FUNCTIONS)  # simlens.populations.velocity_function
 TEMPLATE_NAMES = tuple(TEMPLATES)  # simlens.populations.photometry
+LENS_LIGHT_RELATIONS = ("bernardi2003", "faber_jackson_plane")
+# the keys of [lens.light.scaling] read only by relations = "faber_jackson_plane"
+FABER_JACKSON_PLANE_KEYS = ("faber_jackson_slope", "faber_jackson_magnitude", "faber_jackson_sigma",
+                            "faber_jackson_scatter", "plane_a", "plane_b", "plane_c", "plane_scatter")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -359,7 +363,12 @@ class DeflectorPopulationSettings:
 class LensLightScalingSettings:
     template: str = text("elliptical", choices=TEMPLATE_NAMES, doc="spectral template of the lens light")
     rest_filter: str = text("LSST_r", doc="rest-frame filter of the relations (r band)")
-    faber_jackson_slope: float = number(4.0, low=1, high=8, doc="L ~ sigma^slope (Faber & Jackson 1976)")
+    relations: str = text("bernardi2003", choices=LENS_LIGHT_RELATIONS,
+                          doc="bernardi2003: luminosity and size given sigma from the joint (M, R_e, sigma) "
+                              "Gaussian of Bernardi et al. 2003 (on the fundamental plane, correlated scatter); "
+                              "faber_jackson_plane: M from the faber_jackson_* keys, then R_e from the plane_* keys")
+    faber_jackson_slope: float = number(4.0, low=1, high=8, doc="L ~ sigma^slope (Faber & Jackson 1976); this and "
+                                        "the keys to plane_scatter only with relations = faber_jackson_plane")
     faber_jackson_magnitude: float = number(-21.6, low=-25, high=-17, unit="mag",
                                             doc="rest-frame absolute magnitude (AB) at the reference sigma")
     faber_jackson_sigma: float = number(200.0, low=100, high=400, unit="km/s", doc="reference sigma")
@@ -367,7 +376,7 @@ class LensLightScalingSettings:
     plane_a: float = number(1.49, low=0, high=5, doc="fundamental plane: log R_e = a log sigma + b mu_e + c")
     plane_b: float = number(0.30, low=0.2, low_open=True, high=1.0, doc="fundamental plane b (mu_e in mag/arcsec^2)")
     plane_c: float = number(-8.778, low=-30, high=30, doc="fundamental plane c (R_e in kpc)")
-    plane_scatter: float = number(0.1, low=0, high=1, doc="scatter of log10 R_e (dex)")
+    plane_scatter: float = number(0.1, low=0, high=1, doc="scatter of log10 R_e at fixed sigma and M (dex)")
     q_scatter: float = number(0.11, low=0, high=0.5,
                               doc="q_mass / q_light ~ N(1, this) (Koopmans et al. 2006, SLACS: 0.99 +- 0.11, "
                                   "from memory)")
