@@ -54,9 +54,7 @@ def system_streams(seed: int, system_id: int, names: Sequence[str], candidate: i
     ``names``, never on which process draws the system or in which order.  ``candidate`` numbers the
     redraws of a system that selection cuts rejected (0: the first draw).
     """
-    key = (int(system_id),) if candidate == 0 else (int(system_id), int(candidate))
-    root = np.random.SeedSequence(entropy=int(seed), spawn_key=key)
-    return _Streams(names, root.generate_state(2 * len(names), np.uint64))
+    return system_streams_many(seed, [system_id], names, [candidate])[0]
 
 
 def system_streams_many(seed: int, system_ids: Sequence[int], names: Sequence[str],
