@@ -17,10 +17,16 @@ def test_states_equal_numpy_seed_sequence(seed):
         assert np.array_equal(state, expected), key
 
 
-def test_many_streams_draw_what_single_streams_draw():
+def test_many_streams_draw_what_numpy_seed_sequences_give():
+    # the reference: Philox keyed by numpy's SeedSequence(seed, spawn_key=(id,) or (id, candidate))
     ids, candidates = [0, 3, 10**6, 17], [0, 0, 2, 5]
     many = system_streams_many(7, ids, SYSTEM_STREAMS, candidates)
     for streams, i, c in zip(many, ids, candidates):
+        key = (i,) if c == 0 else (i, c)
+        state = np.random.SeedSequence(entropy=7, spawn_key=key).generate_state(2 * len(SYSTEM_STREAMS), np.uint64)
         one = system_streams(7, i, SYSTEM_STREAMS, c)
         for name in ("parameters", "physics", "transient"):
-            assert np.array_equal(streams[name].uniform(size=5), one[name].uniform(size=5))
+            k = SYSTEM_STREAMS.index(name)
+            expected = np.random.Generator(np.random.Philox(key=state[2 * k:2 * k + 2])).uniform(size=5)
+            assert np.array_equal(streams[name].uniform(size=5), expected)
+            assert np.array_equal(one[name].uniform(size=5), expected)
